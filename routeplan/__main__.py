@@ -1,0 +1,5 @@
+"""``python -m routeplan``."""
+
+from .cli import main
+
+main()

@@ -1,0 +1,351 @@
+"""The ``routeplan`` command: a thin layer of click commands over the library.
+
+Each command parses its options, calls one library function and renders the result. Library
+modules are imported inside the commands, so ``routeplan --help`` stays fast and never
+imports torch. Exit codes: 0 success, 2 bad input or usage, 1 internal fault.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+import traceback
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import click
+
+EXIT_BAD_INPUT = 2
+EXIT_FAULT = 1
+
+
+class BadInput(click.ClickException):
+    """A library :class:`~routeplan.errors.InputError`, shown as one line, exit code 2."""
+
+    exit_code = EXIT_BAD_INPUT
+
+
+class _Group(click.Group):
+    """A click group that maps library errors to the exit codes of the contract."""
+
+    def invoke(self, ctx: click.Context) -> Any:
+        from .errors import InputError  # light: no numpy
+
+        try:
+            return super().invoke(ctx)
+        except InputError as exc:
+            if _debug(ctx):
+                traceback.print_exc()
+            raise BadInput(exc.one_line()) from None
+        except (click.exceptions.Exit, click.ClickException, click.Abort, KeyboardInterrupt, SystemExit):
+            raise
+        except Exception as exc:  # an internal fault: one line, exit 1
+            if _debug(ctx):
+                traceback.print_exc()
+            else:
+                click.echo(
+                    f"Internal error: {type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''} "
+                    "(run again with --debug for the traceback; please report it)",
+                    err=True,
+                )
+            ctx.exit(EXIT_FAULT)
+
+
+def _debug(ctx: click.Context) -> bool:
+    root = ctx.find_root()
+    return bool(root.obj and root.obj.debug)
+
+
+@dataclass
+class App:
+    """What every command needs: the workspace folder, the console and flags."""
+
+    folder: Path
+    debug: bool = False
+    quiet: bool = False
+    _console: Any = field(default=None, repr=False)
+
+    @property
+    def console(self):
+        """A rich console on stdout (created on first use)."""
+        if self._console is None:
+            from rich.console import Console
+
+            self._console = Console(highlight=False, soft_wrap=False)
+        return self._console
+
+    def workspace(self):
+        """Open the workspace (raises WorkspaceMissing with a hint)."""
+        from .workspace import Workspace
+
+        return Workspace.open(self.folder)
+
+    def say(self, text: str) -> None:
+        """Print a line unless --quiet."""
+        if not self.quiet:
+            self.console.print(text, markup=False)
+
+    def emit_json(self, data: Any) -> None:
+        """Write JSON to stdout (plain, for scripts)."""
+        click.echo(json.dumps(data, indent=2, sort_keys=False, default=_json_default))
+
+
+def _json_default(value: Any) -> Any:
+    if hasattr(value, "tolist"):
+        return value.tolist()
+    if isinstance(value, Path):
+        return str(value)
+    raise TypeError(f"not JSON-serialisable: {type(value).__name__}")
+
+
+pass_app = click.make_pass_decorator(App)
+json_option = click.option("--json", "as_json", is_flag=True, help="Print the result as JSON for scripts.")
+
+
+@click.group(cls=_Group, context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
+@click.option(
+    "--workspace",
+    "-w",
+    type=click.Path(file_okay=False, path_type=Path),
+    envvar="ROUTEPLAN_WORKSPACE",
+    default=Path("."),
+    show_default="current folder, or $ROUTEPLAN_WORKSPACE",
+    help="Folder that holds routeplan.sqlite.",
+)
+@click.option("--debug", is_flag=True, help="Show tracebacks of errors.")
+@click.option("--quiet", "-q", is_flag=True, help="Print less (no progress bars, no tables on success).")
+@click.version_option(package_name="routeplan", prog_name="routeplan")
+@click.pass_context
+def cli(ctx: click.Context, workspace: Path, debug: bool, quiet: bool) -> None:
+    """Plan which cases go to which expert, learn when the model should defer, and freeze a
+    routing policy that respects each expert's fee and capacity.
+
+    A workspace is a folder with one routeplan.sqlite file. A typical session:
+
+    \b
+        routeplan init --labels first,second,reject --error-cost 1
+        routeplan cases import tiles.csv --group-column kiln
+        routeplan truth import truth.csv
+        routeplan experts add kiln_master --fee 0.08 --capacity 0.2
+        routeplan answers import history.csv
+        routeplan status
+
+    Exit codes: 0 success, 2 bad input or usage (one line on stderr names the file, the line
+    and the problem; the workspace is left as it was), 1 internal fault.
+    """
+    ctx.obj = App(folder=workspace, debug=debug, quiet=quiet)
+
+
+# --------------------------------------------------------------------------- init
+
+
+@cli.command()
+@click.option("--labels", required=True, help="The label set, comma separated, e.g. first,second,reject.")
+@click.option(
+    "--error-cost",
+    type=float,
+    default=1.0,
+    show_default=True,
+    help="What one wrong decision costs, in the unit of fees and budgets.",
+)
+@json_option
+@pass_app
+def init(app: App, labels: str, error_cost: float, as_json: bool) -> None:
+    """Create a workspace (routeplan.sqlite) in the workspace folder.
+
+    Refuses to overwrite an existing workspace.
+
+    Example:
+
+    \b
+        routeplan --workspace tiles init --labels first,second,reject --error-cost 1
+    """
+    from .workspace import Workspace
+
+    with Workspace.create(app.folder, labels.split(","), error_cost=error_cost) as ws:
+        info = {"workspace": str(ws.folder.resolve()), "labels": ws.labels, "error_cost": ws.error_cost}
+    if as_json:
+        app.emit_json(info)
+    else:
+        app.say(f"Created workspace {info['workspace']} with labels {', '.join(info['labels'])} "
+                f"(one wrong decision costs {error_cost:g}).")
+
+
+# --------------------------------------------------------------------------- import groups
+
+
+def _report_imports(app: App, results: list, as_json: bool) -> None:
+    if as_json:
+        app.emit_json([r.to_dict() for r in results])
+    else:
+        for r in results:
+            app.say(r.message())
+
+
+@cli.group()
+def cases() -> None:
+    """Bring cases (feature vectors, optional truth and group) into the workspace."""
+
+
+@cases.command("import")
+@click.argument("file", type=click.Path(path_type=Path))
+@click.option("--id-column", default="case_id", show_default=True, help="Column with each case's unique id.")
+@click.option("--truth-column", default=None, help="Column of verified outcomes (default: 'truth' if present).")
+@click.option("--group-column", default=None, help="Column of groups (site, shift...) for competence tables; not a feature.")
+@click.option("--feature-columns", default=None, help="Comma-separated feature columns (default: every other numeric column).")
+@json_option
+@pass_app
+def cases_import(app, file, id_column, truth_column, group_column, feature_columns, as_json):
+    """Import a cases file (CSV or Parquet), all rows or none.
+
+    Feature columns are the file's other numeric columns unless --feature-columns names them;
+    the first import fixes them. Non-numeric columns are kept for display on expert sheets.
+
+    Example:
+
+    \b
+        routeplan cases import tiles.csv --id-column case_id --group-column kiln
+    """
+    from .ingest import import_cases
+
+    features = [c.strip() for c in feature_columns.split(",")] if feature_columns else None
+    with app.workspace() as ws:
+        result = import_cases(ws, file, id_column=id_column, truth_column=truth_column,
+                              group_column=group_column, feature_columns=features)
+    _report_imports(app, [result], as_json)
+
+
+@cli.group()
+def truth() -> None:
+    """Bring verified outcomes into the workspace."""
+
+
+@truth.command("import")
+@click.argument("file", type=click.Path(path_type=Path))
+@click.option("--replace", is_flag=True, help="Allow changing truth that is already stored.")
+@json_option
+@pass_app
+def truth_import(app, file, replace, as_json):
+    """Import verified outcomes: a CSV or Parquet file with columns case_id, truth.
+
+    Example:
+
+    \b
+        routeplan truth import truth.csv
+    """
+    from .ingest import import_truth
+
+    with app.workspace() as ws:
+        result = import_truth(ws, file, replace=replace)
+    _report_imports(app, [result], as_json)
+
+
+@cli.group()
+def experts() -> None:
+    """Add experts (annotators, reviewers) with their fee and capacity."""
+
+
+@experts.command("add")
+@click.argument("name")
+@click.option("--fee", type=float, required=True, help="Fee per case, in the unit of budgets and --error-cost.")
+@click.option("--capacity", type=float, default=1.0, show_default=True,
+              help="Largest share of routed cases this expert may take, in [0, 1].")
+@json_option
+@pass_app
+def experts_add(app, name, fee, capacity, as_json):
+    """Add an expert, or change the fee and capacity of one already there.
+
+    NAME must be safe as a file name (letters, digits, '_', '.', '-') and not 'model'.
+
+    Example:
+
+    \b
+        routeplan experts add kiln_master --fee 0.08 --capacity 0.2
+    """
+    from .ingest import add_expert
+
+    with app.workspace() as ws:
+        result = add_expert(ws, name, fee=fee, capacity=capacity)
+    _report_imports(app, [result], as_json)
+
+
+@experts.command("import")
+@click.argument("file", type=click.Path(path_type=Path))
+@json_option
+@pass_app
+def experts_import(app, file, as_json):
+    """Import several experts: a CSV or Parquet file with columns name, fee[, capacity].
+
+    Example:
+
+    \b
+        routeplan experts import experts.csv
+    """
+    from .ingest import import_experts
+
+    with app.workspace() as ws:
+        result = import_experts(ws, file)
+    _report_imports(app, [result], as_json)
+
+
+@cli.group()
+def answers() -> None:
+    """Bring experts' answers into the workspace."""
+
+
+@answers.command("import")
+@click.argument("files", nargs=-1, required=True, type=click.Path(path_type=Path))
+@click.option("--strict", is_flag=True, help="Refuse answers that no round asked for.")
+@json_option
+@pass_app
+def answers_import(app, files, strict, as_json):
+    """Import answer files (columns case_id, expert, answer), all files or none.
+
+    Answers to a round's assignments are linked to them; answers nobody asked for (a team's
+    historical answers) are kept as historical, outside the unbiased audit estimates.
+
+    Example:
+
+    \b
+        routeplan answers import answers/apprentice.csv answers/kiln_master.csv
+    """
+    from .ingest import import_answers
+
+    with app.workspace() as ws:
+        results = import_answers(ws, list(files), strict=strict)
+    _report_imports(app, results, as_json)
+
+
+# --------------------------------------------------------------------------- status
+
+
+@cli.command()
+@json_option
+@pass_app
+def status(app: App, as_json: bool) -> None:
+    """Show cases, experts, answers, rounds and spend.
+
+    Example:
+
+    \b
+        routeplan status --json
+    """
+    from .report import render_status
+
+    with app.workspace() as ws:
+        info = ws.status()
+    if as_json:
+        app.emit_json(info)
+    else:
+        app.console.print(render_status(info))
+
+
+def main() -> None:  # pragma: no cover - console entry for python -m
+    """Entry point for ``python -m routeplan``."""
+    cli(prog_name="routeplan")
+
+
+if __name__ == "__main__":  # pragma: no cover
+    main()

@@ -1,0 +1,1219 @@
+"""Competence tables: how good each expert (and the model) is, with honest uncertainty.
+
+Data model
+----------
+Label codes are ints ``0..K-1``; their names are passed separately as ``labels``.
+
+``answers`` is a long-form DataFrame, one row per answer:
+
+=========  ==================================================================
+column     meaning
+=========  ==================================================================
+case       int position into ``truth`` (or an id from ``truth.index`` when
+           ``truth`` is a Series with its own index)
+expert     expert name (str); ``"model"`` is reserved
+answer     int label code
+audit      bool, True where the assignment was drawn uniformly at random
+           (optional; missing means False)
+weight     optional float, inverse selection probability (NaN for
+           historical answers)
+=========  ==================================================================
+
+The same (case, expert) pair may occur more than once (an expert who rated a case
+several times): accuracy tables count every answer, the latent-truth model uses the
+counts, and the agreement tables use an expert's first answer on each case.
+
+``truth`` is an int array (or Series) over cases, -1 where unknown. ``model_pred``,
+``group`` and ``region`` are per-case arrays aligned with ``truth``.
+
+Bases
+-----
+Every figure states the answers it rests on:
+
+* ``truth`` (columns without prefix): every answer on a case whose truth is known.
+  This describes the answers as they were gathered; when the cases were chosen by
+  the acquisition it can be biased for the whole pool.
+* ``audit`` (columns prefixed ``audit_``): only answers flagged ``audit=True`` with
+  known truth. Audit assignments are drawn uniformly at random, so these are unbiased
+  for the pool. Where every such answer of an expert carries a finite positive
+  ``weight`` the figures are weighted (Hajek estimator) and intervals use Kish's
+  effective sample size; ``audit_weighted`` says so.
+* ``latent``: Dawid-Skene estimates, resting on every answer, truth or not.
+
+The model's rows use one pseudo-answer per case with a prediction; its audit basis is
+the cases that carry at least one audit answer, unweighted.
+
+Interval rule
+-------------
+Accuracies carry 95% Wilson score intervals (configurable). An interval wider than
+``max_width`` (default 0.2, i.e. the accuracy is known no better than about +/-0.1)
+is flagged ``too_wide``: too coarse to rank experts whose accuracies usually differ by
+a few points, so gather more audit answers before acting on it.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from numpy.typing import ArrayLike, NDArray
+from scipy import sparse
+from scipy.special import logsumexp
+from sklearn.cluster import KMeans
+from sklearn.preprocessing import StandardScaler
+from sklearn.utils import check_array
+
+from routeplan.stats import (
+    _normal_interval,
+    _z_value,
+    fleiss_kappa,
+    kappa_from_confusion,
+    wilson_interval,
+)
+
+__all__ = [
+    "MODEL",
+    "BASES",
+    "CompetenceReport",
+    "DawidSkeneResult",
+    "agreement_table",
+    "competence_report",
+    "confusion_matrices",
+    "dawid_skene",
+    "expert_accuracy_table",
+    "fleiss_for_shared",
+    "latent_accuracy_table",
+    "per_class_table",
+    "region_summary",
+    "regions_from_features",
+]
+
+MODEL = "model"
+"""Reserved name of the model's row in every table."""
+
+BASES = {
+    "truth": "every answer on a case with known truth (describes the answers gathered)",
+    "audit": "audit answers only (assignment drawn uniformly at random): unbiased for the pool",
+    "latent": "Dawid-Skene latent-truth estimate from every answer, with or without truth",
+}
+"""What each basis named in the tables rests on."""
+
+_BY_CHOICES = ("class", "group", "region")
+
+
+# --------------------------------------------------------------------------- preparation
+
+
+@dataclass(frozen=True)
+class _Prepared:
+    """Validated long-form answers, the model appended as a pseudo-expert."""
+
+    names: list[str]
+    labels: list[str]
+    code: NDArray[np.int64]
+    case: NDArray[np.int64]
+    answer: NDArray[np.int64]
+    audit: NDArray[np.bool_]
+    audit_weight: NDArray[np.float64]
+    audit_weighted: NDArray[np.bool_]
+    truth: NDArray[np.int64]
+    model_pred: NDArray[np.int64] | None
+    fees: NDArray[np.float64]
+
+    @property
+    def n_classes(self) -> int:
+        """Number of classes K."""
+        return len(self.labels)
+
+    @property
+    def truth_of(self) -> NDArray[np.int64]:
+        """Truth of each answer's case (-1 where unknown)."""
+        return self.truth[self.case]
+
+
+def _check_answers(answers: pd.DataFrame) -> pd.DataFrame:
+    """Check the answers frame has the required columns and no missing values."""
+    if not isinstance(answers, pd.DataFrame):
+        raise TypeError("answers must be a pandas DataFrame")
+    missing = [c for c in ("case", "expert", "answer") if c not in answers.columns]
+    if missing:
+        raise ValueError(f"answers lacks column(s) {missing}; need case, expert, answer")
+    if answers[["case", "expert", "answer"]].isna().any().any():
+        raise ValueError("answers has missing case, expert or answer values")
+    return answers
+
+
+def _int_column(values: Any, name: str) -> NDArray[np.int64]:
+    """Return values as int64, refusing non-integral numbers."""
+    arr = np.asarray(values)
+    if arr.size and not np.issubdtype(arr.dtype, np.integer):
+        num = pd.to_numeric(pd.Series(arr), errors="coerce").to_numpy(dtype=float)
+        if np.any(~np.isfinite(num)) or np.any(num != np.round(num)):
+            raise ValueError(f"{name} must hold integers")
+        arr = num
+    return arr.astype(np.int64)
+
+
+def _case_positions(case: Any, truth: Any, n_cases: int) -> NDArray[np.int64]:
+    """Map answer case ids to positions in truth (by truth's index when it has its own)."""
+    if isinstance(truth, pd.Series) and not truth.index.equals(pd.RangeIndex(n_cases)):
+        if not truth.index.is_unique:
+            raise ValueError("truth's index must be unique case ids")
+        pos = truth.index.get_indexer(pd.Index(np.asarray(case)))
+        if np.any(pos < 0):
+            bad = np.asarray(case)[pos < 0][0]
+            raise ValueError(f"answers name case {bad!r}, which is not in truth's index")
+        return pos.astype(np.int64)
+    pos = _int_column(case, "answers['case']")
+    if pos.size and (pos.min() < 0 or pos.max() >= n_cases):
+        raise ValueError(f"answers['case'] must be positions 0..{n_cases - 1} into truth")
+    return pos
+
+
+def _infer_labels(
+    labels: Any, n_classes: int | None, *codes: NDArray[np.int64]
+) -> list[str]:
+    """Resolve label names and K from the arguments or, failing that, from the codes."""
+    if labels is not None:
+        names = [str(x) for x in labels]
+        if n_classes is not None and n_classes != len(names):
+            raise ValueError("labels and n_classes disagree")
+        return names
+    if n_classes is None:
+        highest = max((int(c.max()) for c in codes if c.size), default=0)
+        n_classes = highest + 1
+    if int(n_classes) != n_classes or n_classes < 1:
+        raise ValueError(f"n_classes must be a positive integer, got {n_classes!r}")
+    return [str(k) for k in range(int(n_classes))]
+
+
+def _check_range(codes: NDArray[np.int64], k: int, name: str, allow_missing: bool) -> None:
+    """Refuse codes outside 0..K-1 (or -1 when missing is allowed)."""
+    low = -1 if allow_missing else 0
+    if codes.size and (codes.min() < low or codes.max() >= k):
+        extra = " or -1" if allow_missing else ""
+        raise ValueError(f"{name} holds codes outside 0..{k - 1}{extra}")
+
+
+def _fee_array(fees: Any, names: list[str]) -> NDArray[np.float64]:
+    """Fee of each name (nan where unknown and for the model)."""
+    out = np.full(len(names), np.nan)
+    if fees is None:
+        return out
+    if not isinstance(fees, (Mapping, pd.Series)):
+        raise TypeError("fees must map expert names to fees")
+    for i, name in enumerate(names):
+        if name != MODEL and name in fees:
+            fee = float(fees[name])
+            if not np.isfinite(fee) or fee < 0:
+                raise ValueError(f"fee of {name!r} must be finite and >= 0, got {fee!r}")
+            out[i] = fee
+    return out
+
+
+def _audit_weights(
+    code: NDArray[np.int64], audit: NDArray[np.bool_], has_truth: NDArray[np.bool_],
+    weight: NDArray[np.float64], n_names: int,
+) -> tuple[NDArray[np.float64], NDArray[np.bool_]]:
+    """Per-answer audit weights, used for a name only when all its scored audit answers have one."""
+    scored = audit & has_truth
+    usable = np.isfinite(weight) & (weight > 0)
+    n_bad = np.bincount(code[scored & ~usable], minlength=n_names)
+    n_scored = np.bincount(code[scored], minlength=n_names)
+    weighted = (n_bad == 0) & (n_scored > 0)
+    w = np.where(weighted[code] & usable, weight, 1.0)
+    return w, weighted
+
+
+def _prepare(
+    answers: pd.DataFrame,
+    truth: Any,
+    *,
+    model_pred: Any = None,
+    labels: Any = None,
+    n_classes: int | None = None,
+    fees: Any = None,
+) -> _Prepared:
+    """Validate the public inputs and build the long arrays every table uses."""
+    answers = _check_answers(answers)
+    t = _int_column(truth, "truth").ravel()
+    case = _case_positions(answers["case"].to_numpy(), truth, t.size)
+    answer = _int_column(answers["answer"].to_numpy(), "answers['answer']")
+    pred = None if model_pred is None else _int_column(model_pred, "model_pred").ravel()
+    if pred is not None and pred.size != t.size:
+        raise ValueError("model_pred must have one entry per case, aligned with truth")
+    names_list = _infer_labels(labels, n_classes, t, answer, *(() if pred is None else (pred,)))
+    k = len(names_list)
+    _check_range(answer, k, "answers['answer']", allow_missing=False)
+    _check_range(t, k, "truth", allow_missing=True)
+    if pred is not None:
+        _check_range(pred, k, "model_pred", allow_missing=True)
+    code, experts = pd.factorize(answers["expert"].astype(str), sort=True)
+    names = [str(e) for e in experts]
+    if MODEL in names and pred is not None:
+        raise ValueError(f"{MODEL!r} is reserved for the model; rename that expert")
+    audit = (
+        answers["audit"].fillna(False).to_numpy(dtype=bool)
+        if "audit" in answers.columns else np.zeros(len(answers), dtype=bool)
+    )
+    weight = (
+        pd.to_numeric(answers["weight"], errors="coerce").to_numpy(dtype=float)
+        if "weight" in answers.columns else np.full(len(answers), np.nan)
+    )
+    code = code.astype(np.int64)
+    if pred is not None:
+        code, case, answer, audit, weight, names = _append_model(
+            code, case, answer, audit, weight, names, pred
+        )
+    w, weighted = _audit_weights(code, audit, t[case] >= 0, weight, len(names))
+    return _Prepared(
+        names=names, labels=names_list, code=code, case=case, answer=answer, audit=audit,
+        audit_weight=w, audit_weighted=weighted, truth=t, model_pred=pred,
+        fees=_fee_array(fees, names),
+    )
+
+
+def _append_model(
+    code: NDArray[np.int64], case: NDArray[np.int64], answer: NDArray[np.int64],
+    audit: NDArray[np.bool_], weight: NDArray[np.float64], names: list[str],
+    pred: NDArray[np.int64],
+) -> tuple[Any, ...]:
+    """Append one pseudo-answer per predicted case under the name 'model'."""
+    audit_case = np.zeros(pred.size, dtype=bool)
+    audit_case[case[audit]] = True
+    m_case = np.flatnonzero(pred >= 0)
+    return (
+        np.concatenate([code, np.full(m_case.size, len(names), dtype=np.int64)]),
+        np.concatenate([case, m_case]),
+        np.concatenate([answer, pred[m_case]]),
+        np.concatenate([audit, audit_case[m_case]]),
+        np.concatenate([weight, np.full(m_case.size, np.nan)]),
+        [*names, MODEL],
+    )
+
+
+# --------------------------------------------------------------------------- core counting
+
+
+def _confusions(
+    row: NDArray[np.int64], t: NDArray[np.int64], a: NDArray[np.int64],
+    w: NDArray[np.float64], n_rows: int, k: int,
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Weighted and squared-weight confusion tensors of shape (n_rows, K, K)."""
+    key = (row * k + t) * k + a
+    size = n_rows * k * k
+    c = np.bincount(key, weights=w, minlength=size).reshape(n_rows, k, k)
+    c2 = np.bincount(key, weights=w * w, minlength=size).reshape(n_rows, k, k)
+    return c, c2
+
+
+def _effective_n(total: NDArray[np.float64], total_sq: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Kish effective sample size (sum w)^2 / sum w^2 (0 where empty)."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(total_sq > 0, total**2 / total_sq, 0.0)
+
+
+def _rate_interval(
+    hits: NDArray[np.float64], total: NDArray[np.float64], n_eff: NDArray[np.float64],
+    confidence: float,
+) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
+    """(Weighted) proportion with a Wilson interval on the effective sample size."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        rate = np.where(total > 0, hits / total, np.nan)
+    low, high = wilson_interval(np.nan_to_num(rate) * n_eff, n_eff, confidence)
+    return rate, np.atleast_1d(low), np.atleast_1d(high)
+
+
+def _paired_saving(
+    row: NDArray[np.int64], expert_wrong: NDArray[np.float64],
+    model_wrong: NDArray[np.float64], w: NDArray[np.float64], n_rows: int, z: float,
+) -> dict[str, NDArray[np.float64]]:
+    """Per row: model accuracy and mean (model wrong - expert wrong) with a normal interval."""
+    ok = ~np.isnan(model_wrong)
+    r, wp = row[ok], w[ok]
+    d = model_wrong[ok] - expert_wrong[ok]
+    s_w = np.bincount(r, weights=wp, minlength=n_rows)
+    s_w2 = np.bincount(r, weights=wp * wp, minlength=n_rows)
+    s_d = np.bincount(r, weights=wp * d, minlength=n_rows)
+    s_d2 = np.bincount(r, weights=wp * d * d, minlength=n_rows)
+    s_m = np.bincount(r, weights=wp * model_wrong[ok], minlength=n_rows)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        mean = np.where(s_w > 0, s_d / s_w, np.nan)
+        var = np.maximum(s_d2 / s_w - mean**2, 0.0)
+        model_acc = np.where(s_w > 0, 1.0 - s_m / s_w, np.nan)
+    low, high = _normal_interval(mean, var, _effective_n(s_w, s_w2), z)
+    return {"model_accuracy": model_acc, "saving": mean, "saving_low": low, "saving_high": high}
+
+
+def _model_wrong(prep: _Prepared) -> NDArray[np.float64]:
+    """Whether the model is wrong on each answer's case (nan where unknown)."""
+    t = prep.truth_of
+    if prep.model_pred is None:
+        return np.full(t.size, np.nan)
+    p = prep.model_pred[prep.case]
+    return np.where((p >= 0) & (t >= 0), (p != t).astype(float), np.nan)
+
+
+def _basis_columns(
+    prep: _Prepared, row: NDArray[np.int64], mask: NDArray[np.bool_],
+    w: NDArray[np.float64], fee: NDArray[np.float64], n_rows: int, *,
+    error_cost: float, confidence: float, max_width: float,
+) -> dict[str, NDArray[Any]]:
+    """Every figure of the accuracy table for one basis (answers in ``mask``)."""
+    r, t, a, wm = row[mask], prep.truth_of[mask], prep.answer[mask], w[mask]
+    c, c2 = _confusions(r, t, a, wm, n_rows, prep.n_classes)
+    total, total_sq = c.sum(axis=(1, 2)), c2.sum(axis=(1, 2))
+    correct = np.trace(c, axis1=1, axis2=2)
+    n_eff = _effective_n(total, total_sq)
+    acc, low, high = _rate_interval(correct, total, n_eff, confidence)
+    pair = _paired_saving(
+        r, (t != a).astype(float), _model_wrong(prep)[mask], wm, n_rows, _z_value(confidence)
+    )
+    saving = {k: pair[k] * error_cost for k in ("saving", "saving_low", "saving_high")}
+    with np.errstate(divide="ignore", invalid="ignore"):
+        per_fee = {k: np.where(fee > 0, v / fee, np.nan) for k, v in saving.items()}
+    return {
+        "n_scored": np.bincount(r, minlength=n_rows),
+        "n_effective": n_eff,
+        "n_correct": correct if np.any(wm != 1.0) else np.rint(correct).astype(np.int64),
+        "accuracy": acc,
+        "accuracy_low": low,
+        "accuracy_high": high,
+        "too_wide": ~(high - low <= max_width),
+        "kappa": np.atleast_1d(kappa_from_confusion(c)),
+        "model_accuracy": pair["model_accuracy"],
+        "cost_saved_per_case": saving["saving"],
+        "cost_saved_low": saving["saving_low"],
+        "cost_saved_high": saving["saving_high"],
+        "value_per_fee": per_fee["saving"],
+        "value_low": per_fee["saving_low"],
+        "value_high": per_fee["saving_high"],
+    }
+
+
+# --------------------------------------------------------------------------- levels
+
+
+def _levels(
+    prep: _Prepared, by: str | None, group: Any, region: Any
+) -> tuple[NDArray[np.int64], list[Any], str | None]:
+    """Level code of each answer (-1: left out), the level names and the level column."""
+    n = prep.code.size
+    if by is None:
+        return np.zeros(n, dtype=np.int64), [None], None
+    if by not in _BY_CHOICES:
+        raise ValueError(f"by must be one of {_BY_CHOICES} or None, got {by!r}")
+    if by == "class":
+        return prep.truth_of, list(prep.labels), "class"
+    values = group if by == "group" else region
+    if values is None:
+        raise ValueError(f"by={by!r} needs the per-case {by} array")
+    per_case = pd.Series(np.asarray(values).ravel())
+    if per_case.size != prep.truth.size:
+        raise ValueError(f"{by} must have one entry per case, aligned with truth")
+    if by == "region":
+        per_case = pd.Series(_int_column(per_case.to_numpy(), "region"))
+    codes, uniques = pd.factorize(per_case, sort=True, use_na_sentinel=True)
+    return codes.astype(np.int64)[prep.case], list(uniques), by
+
+
+def _validate_options(error_cost: float, confidence: float, max_width: float) -> None:
+    """Check the numeric options shared by the tables."""
+    if not np.isfinite(error_cost) or error_cost <= 0:
+        raise ValueError(f"error_cost must be a positive number, got {error_cost!r}")
+    _z_value(confidence)
+    if not 0 < max_width <= 1:
+        raise ValueError(f"max_width must be in (0, 1], got {max_width!r}")
+
+
+def _accuracy_from_prepared(
+    prep: _Prepared, *, by: str | None, group: Any, region: Any, error_cost: float,
+    confidence: float, max_width: float,
+) -> pd.DataFrame:
+    """Build the accuracy table from prepared arrays."""
+    _validate_options(error_cost, confidence, max_width)
+    level, level_names, level_col = _levels(prep, by, group, region)
+    n_levels = len(level_names)
+    keep = level >= 0
+    row = np.where(keep, prep.code * n_levels + level, 0)
+    n_rows = len(prep.names) * n_levels
+    name_of_row = np.repeat(np.arange(len(prep.names)), n_levels)
+    fee = prep.fees[name_of_row]
+    scored = keep & (prep.truth_of >= 0)
+    opts = {"error_cost": error_cost, "confidence": confidence, "max_width": max_width}
+    ones = np.ones(prep.code.size)
+    main = _basis_columns(prep, row, scored, ones, fee, n_rows, **opts)
+    audit = _basis_columns(prep, row, scored & prep.audit, prep.audit_weight, fee, n_rows, **opts)
+    frame: dict[str, Any] = {"expert": [prep.names[i] for i in name_of_row]}
+    if level_col is not None:
+        frame[level_col] = [level_names[j] for j in np.tile(np.arange(n_levels), len(prep.names))]
+    frame["n_answered"] = np.bincount(row[keep], minlength=n_rows)
+    frame["fee"] = fee
+    frame.update(main)
+    frame["audit_weighted"] = prep.audit_weighted[name_of_row]
+    frame.update({f"audit_{k}": v for k, v in audit.items()})
+    table = pd.DataFrame(frame)
+    table = table[table["n_answered"] > 0].reset_index(drop=True)
+    table.attrs["basis"] = {"": BASES["truth"], "audit_": BASES["audit"]}
+    return table
+
+
+def expert_accuracy_table(
+    answers: pd.DataFrame,
+    truth: ArrayLike,
+    *,
+    fees: Mapping[str, float] | pd.Series | None = None,
+    model_pred: ArrayLike | None = None,
+    error_cost: float = 1.0,
+    by: str | None = None,
+    labels: list[str] | None = None,
+    n_classes: int | None = None,
+    group: ArrayLike | None = None,
+    region: ArrayLike | None = None,
+    confidence: float = 0.95,
+    max_width: float = 0.2,
+) -> pd.DataFrame:
+    """Accuracy of each expert and of the model, with intervals and fee-adjusted value.
+
+    Accuracy carries a Wilson score interval (Wilson, JASA 1927); agreement with truth
+    is Cohen's kappa (Cohen, Educ. Psychol. Meas. 1960). The fee-adjusted value is the
+    expected error cost saved per unit of fee by asking the expert instead of letting
+    the model decide, on the same answers:
+    ``(model error rate - expert error rate) * error_cost / fee``, with a paired
+    normal-approximation interval.
+
+    Parameters
+    ----------
+    answers : DataFrame
+        Long-form answers (see the module docstring): case, expert, answer[, audit, weight].
+    truth : array-like of int of shape (n_cases,)
+        True label code of each case, -1 where unknown.
+    fees : mapping of str to float, default=None
+        Fee per answer of each expert, in the unit of ``error_cost``.
+    model_pred : array-like of int of shape (n_cases,), default=None
+        The model's label code per case (-1 where none); adds the ``"model"`` row and
+        the model comparison columns.
+    error_cost : float, default=1.0
+        Cost of one wrong decision.
+    by : {"class", "group", "region"}, default=None
+        Split each row by true class, by ``group`` or by ``region``.
+    labels : list of str, default=None
+        Label names; their number fixes K.
+    n_classes : int, default=None
+        K when ``labels`` is not given; inferred from the codes otherwise.
+    group, region : array-like of shape (n_cases,), default=None
+        Per-case group (e.g. site or shift) and region (see `regions_from_features`).
+    confidence : float, default=0.95
+        Confidence level of every interval.
+    max_width : float, default=0.2
+        Accuracy intervals wider than this are flagged ``too_wide``.
+
+    Returns
+    -------
+    DataFrame
+        One row per expert and the model (per (expert, level) with ``by``), rows
+        with no answers dropped. Columns: ``expert``, the level column (named after
+        ``by``), ``n_answered`` (answers given, known truth or not), ``fee``, then for
+        the truth basis ``n_scored, n_effective, n_correct, accuracy, accuracy_low,
+        accuracy_high, too_wide, kappa, model_accuracy, cost_saved_per_case,
+        cost_saved_low, cost_saved_high, value_per_fee, value_low, value_high``, then
+        ``audit_weighted`` and the same figures on the audit basis prefixed
+        ``audit_``. ``value_*`` is nan where the fee is zero or unknown; the model
+        columns are nan without ``model_pred``. ``attrs["basis"]`` describes the
+        prefixes.
+    """
+    prep = _prepare(
+        answers, truth, model_pred=model_pred, labels=labels, n_classes=n_classes, fees=fees
+    )
+    return _accuracy_from_prepared(
+        prep, by=by, group=group, region=region, error_cost=error_cost,
+        confidence=confidence, max_width=max_width,
+    )
+
+
+# --------------------------------------------------------------------------- per class, confusion
+
+
+def _basis_mask_weights(
+    prep: _Prepared, basis: str
+) -> tuple[NDArray[np.bool_], NDArray[np.float64]]:
+    """Answers and weights a basis rests on."""
+    scored = prep.truth_of >= 0
+    if basis == "truth":
+        return scored, np.ones(prep.code.size)
+    if basis == "audit":
+        return scored & prep.audit, prep.audit_weight
+    raise ValueError(f"basis must be 'truth' or 'audit', got {basis!r}")
+
+
+def _per_class_from_prepared(prep: _Prepared, basis: str, confidence: float) -> pd.DataFrame:
+    """Build the per-class table from prepared arrays."""
+    mask, w = _basis_mask_weights(prep, basis)
+    k, n_names = prep.n_classes, len(prep.names)
+    c, c2 = _confusions(
+        prep.code[mask], prep.truth_of[mask], prep.answer[mask], w[mask], n_names, k
+    )
+    n, _ = _confusions(
+        prep.code[mask], prep.truth_of[mask], prep.answer[mask], np.ones(mask.sum()), n_names, k
+    )
+    diag = np.diagonal(c, axis1=1, axis2=2)
+    rows, cols = c.sum(axis=2), c.sum(axis=1)
+    recall = _rate_interval(diag, rows, _effective_n(rows, c2.sum(axis=2)), confidence)
+    precision = _rate_interval(diag, cols, _effective_n(cols, c2.sum(axis=1)), confidence)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        f1 = 2 * recall[0] * precision[0] / (recall[0] + precision[0])
+    flat = {
+        "support": np.rint(n.sum(axis=2)).astype(np.int64), "recall": recall[0],
+        "recall_low": recall[1], "recall_high": recall[2],
+        "n_predicted": np.rint(n.sum(axis=1)).astype(np.int64), "precision": precision[0],
+        "precision_low": precision[1], "precision_high": precision[2], "f1": f1,
+    }
+    table = pd.DataFrame({
+        "expert": np.repeat(prep.names, k),
+        "class": np.tile(prep.labels, n_names),
+        **{key: np.asarray(v).reshape(-1) for key, v in flat.items()},
+    })
+    table.insert(2, "basis", basis)
+    keep = np.repeat(n.sum(axis=(1, 2)) > 0, k)
+    return table[keep].reset_index(drop=True)
+
+
+def per_class_table(
+    answers: pd.DataFrame,
+    truth: ArrayLike,
+    *,
+    model_pred: ArrayLike | None = None,
+    labels: list[str] | None = None,
+    n_classes: int | None = None,
+    basis: str = "truth",
+    confidence: float = 0.95,
+) -> pd.DataFrame:
+    """Recall and precision of each expert and the model per class, with Wilson intervals.
+
+    Parameters
+    ----------
+    answers, truth, model_pred, labels, n_classes
+        As in `expert_accuracy_table`.
+    basis : {"truth", "audit"}, default="truth"
+        Which answers the figures rest on (see the module docstring).
+    confidence : float, default=0.95
+        Confidence level of the Wilson intervals (Wilson, JASA 1927).
+
+    Returns
+    -------
+    DataFrame
+        One row per (expert, class) for experts with scored answers: ``expert, class,
+        basis, support`` (answers whose truth is the class), ``recall, recall_low,
+        recall_high, n_predicted`` (answers giving the class), ``precision,
+        precision_low, precision_high, f1``. Rates are nan where undefined.
+    """
+    _z_value(confidence)
+    prep = _prepare(answers, truth, model_pred=model_pred, labels=labels, n_classes=n_classes)
+    return _per_class_from_prepared(prep, basis, confidence)
+
+
+def _confusions_from_prepared(prep: _Prepared, basis: str) -> dict[str, NDArray[Any]]:
+    """Confusion matrix per name from prepared arrays."""
+    mask, w = _basis_mask_weights(prep, basis)
+    k, n_names = prep.n_classes, len(prep.names)
+    c, _ = _confusions(prep.code[mask], prep.truth_of[mask], prep.answer[mask], w[mask], n_names, k)
+    unweighted = basis == "truth" or not prep.audit_weighted.any()
+    if unweighted:
+        c = np.rint(c).astype(np.int64)
+    return {name: c[i] for i, name in enumerate(prep.names) if c[i].sum() > 0}
+
+
+def confusion_matrices(
+    answers: pd.DataFrame,
+    truth: ArrayLike,
+    *,
+    model_pred: ArrayLike | None = None,
+    labels: list[str] | None = None,
+    n_classes: int | None = None,
+    basis: str = "truth",
+) -> dict[str, NDArray[Any]]:
+    """Confusion matrix of each expert and of the model against truth.
+
+    Parameters
+    ----------
+    answers, truth, model_pred, labels, n_classes
+        As in `expert_accuracy_table`.
+    basis : {"truth", "audit"}, default="truth"
+        Which answers the counts rest on.
+
+    Returns
+    -------
+    dict of str to ndarray of shape (K, K)
+        Keyed by expert name (and ``"model"``), true classes on rows and answers on
+        columns, for every name with scored answers. Counts are int64; on the audit
+        basis with weights they are weighted float counts.
+    """
+    prep = _prepare(answers, truth, model_pred=model_pred, labels=labels, n_classes=n_classes)
+    return _confusions_from_prepared(prep, basis)
+
+
+# --------------------------------------------------------------------------- agreement
+
+
+def _first_answer_matrix(
+    answers: pd.DataFrame, n_classes: int
+) -> tuple[NDArray[np.int64], list[str]]:
+    """Dense (n_cases, n_experts) matrix of each expert's first answer per case (-1: none)."""
+    answers = _check_answers(answers)
+    answer = _int_column(answers["answer"].to_numpy(), "answers['answer']")
+    _check_range(answer, n_classes, "answers['answer']", allow_missing=False)
+    case, _ = pd.factorize(answers["case"])
+    expert, names = pd.factorize(answers["expert"].astype(str), sort=True)
+    matrix = np.full((int(case.max(initial=-1)) + 1, len(names)), -1, dtype=np.int64)
+    # reversed assignment: the earliest answer of a repeated (case, expert) pair wins
+    matrix[case[::-1], expert[::-1]] = answer[::-1]
+    return matrix, [str(n) for n in names]
+
+
+def _kappa_pair(x: NDArray[np.int64], y: NDArray[np.int64], k: int) -> tuple[int, float, float]:
+    """Shared count, observed agreement and Cohen's kappa of two answer columns."""
+    both = (x >= 0) & (y >= 0)
+    c = np.bincount(x[both] * k + y[both], minlength=k * k).reshape(k, k)
+    n = int(both.sum())
+    agree = float(np.trace(c) / n) if n else float("nan")
+    return n, agree, float(kappa_from_confusion(c))
+
+
+def agreement_table(answers: pd.DataFrame, n_classes: int) -> pd.DataFrame:
+    """Pairwise Cohen's kappa between experts on the cases both answered.
+
+    Cohen, J. (1960), "A coefficient of agreement for nominal scales", Educational and
+    Psychological Measurement 20(1):37-46. No truth is needed. An expert who answered
+    a case several times contributes the first answer.
+
+    Parameters
+    ----------
+    answers : DataFrame
+        Long-form answers with columns case, expert, answer.
+    n_classes : int
+        Number of classes K.
+
+    Returns
+    -------
+    DataFrame
+        One row per expert pair (``expert_a < expert_b``): ``expert_a, expert_b,
+        n_shared, agreement`` (observed share of equal answers), ``kappa``; nan where
+        the pair shares no case or kappa is undefined.
+    """
+    matrix, names = _first_answer_matrix(answers, int(n_classes))
+    rows = []
+    for i in range(len(names)):
+        for j in range(i + 1, len(names)):
+            n, agree, kappa = _kappa_pair(matrix[:, i], matrix[:, j], int(n_classes))
+            rows.append((names[i], names[j], n, agree, kappa))
+    columns = ["expert_a", "expert_b", "n_shared", "agreement", "kappa"]
+    return pd.DataFrame(rows, columns=columns)
+
+
+def fleiss_for_shared(
+    answers: pd.DataFrame,
+    n_classes: int,
+    *,
+    experts: list[str] | None = None,
+    min_raters: int = 3,
+    min_cases: int = 10,
+) -> pd.DataFrame:
+    """Fleiss' kappa over cases that three or more experts all answered.
+
+    Fleiss, J. L. (1971), "Measuring nominal scale agreement among many raters",
+    Psychological Bulletin 76(5):378-382. The statistic needs the same raters' count on
+    every case, so cases are grouped by the exact set of experts who answered them;
+    with ``experts`` given, one kappa is computed for those experts over every case
+    all of them answered (other experts' answers ignored). Each expert's first answer
+    per case is used.
+
+    Parameters
+    ----------
+    answers : DataFrame
+        Long-form answers with columns case, expert, answer.
+    n_classes : int
+        Number of classes K.
+    experts : list of str, default=None
+        A fixed panel of experts; by default every rater set is considered.
+    min_raters : int, default=3
+        Smallest rater set reported.
+    min_cases : int, default=10
+        Smallest number of shared cases reported.
+
+    Returns
+    -------
+    DataFrame
+        One row per rater set, most shared cases first: ``experts`` (comma-joined
+        names), ``n_raters, n_cases, kappa``. Empty when no set qualifies.
+    """
+    k = int(n_classes)
+    matrix, names = _first_answer_matrix(answers, k)
+    if experts is not None:
+        unknown = sorted(set(experts) - set(names))
+        if unknown:
+            raise ValueError(f"experts {unknown} gave no answers")
+        cols = [names.index(e) for e in experts]
+        matrix, names = matrix[:, cols], list(experts)
+        matrix = matrix[np.all(matrix >= 0, axis=1)]
+    answered = matrix >= 0
+    n_raters = answered.sum(axis=1)
+    mask_ids, set_code = np.unique(answered, axis=0, return_inverse=True)
+    counts = np.zeros((matrix.shape[0], k), dtype=np.int64)
+    for j in range(matrix.shape[1]):
+        ok = answered[:, j]
+        counts[np.flatnonzero(ok), matrix[ok, j]] += 1
+    rows = []
+    for s, members in enumerate(mask_ids):
+        idx = np.flatnonzero(set_code.ravel() == s)
+        if members.sum() < max(min_raters, 2) or idx.size < max(min_cases, 1):
+            continue
+        joined = ", ".join(n for n, m in zip(names, members) if m)
+        rows.append((joined, int(n_raters[idx[0]]), int(idx.size), fleiss_kappa(counts[idx])))
+    table = pd.DataFrame(rows, columns=["experts", "n_raters", "n_cases", "kappa"])
+    return table.sort_values("n_cases", ascending=False, kind="stable").reset_index(drop=True)
+
+
+# --------------------------------------------------------------------------- Dawid-Skene
+
+
+@dataclass(frozen=True)
+class DawidSkeneResult:
+    """Latent-truth estimates of the Dawid-Skene model.
+
+    Attributes
+    ----------
+    experts : list of str
+        Expert names, in the order of ``confusion``.
+    cases : ndarray of shape (n_cases,)
+        Case ids (sorted unique ``answers['case']``), in the order of ``posterior``.
+    class_prior : ndarray of shape (K,)
+        Estimated class proportions.
+    confusion : ndarray of shape (M, K, K)
+        ``confusion[j, k, l]``: probability that expert j answers l when the truth is k.
+    posterior : ndarray of shape (n_cases, K)
+        Probability of each class for each case given all answers.
+    most_likely : ndarray of shape (n_cases,)
+        Most probable class of each case.
+    n_answers : ndarray of shape (M,)
+        Answers each expert gave.
+    n_iter : int
+        EM iterations run.
+    converged : bool
+        Whether the largest parameter change fell below ``tol``.
+    log_likelihood : float
+        Log-likelihood of the answers (and of the known truth) at the estimates.
+    """
+
+    experts: list[str]
+    cases: NDArray[Any]
+    class_prior: NDArray[np.float64]
+    confusion: NDArray[np.float64]
+    posterior: NDArray[np.float64]
+    most_likely: NDArray[np.int64]
+    n_answers: NDArray[np.int64]
+    n_iter: int
+    converged: bool
+    log_likelihood: float
+
+    def expert_accuracy(self) -> NDArray[np.float64]:
+        """Estimated accuracy of each expert on the pool: ``sum_k prior_k * confusion[j, k, k]``."""
+        diag = np.diagonal(self.confusion, axis1=1, axis2=2)
+        return diag @ self.class_prior
+
+
+def _ds_counts(
+    answers: pd.DataFrame, n_classes: int
+) -> tuple[sparse.csr_matrix, NDArray[Any], list[str], NDArray[np.int64]]:
+    """Sparse (n_cases, M*K) answer counts, case ids, expert names and answers per expert."""
+    answers = _check_answers(answers)
+    answer = _int_column(answers["answer"].to_numpy(), "answers['answer']")
+    _check_range(answer, n_classes, "answers['answer']", allow_missing=False)
+    case, case_ids = pd.factorize(answers["case"], sort=True)
+    expert, names = pd.factorize(answers["expert"].astype(str), sort=True)
+    counts = sparse.csr_matrix(
+        (np.ones(answer.size), (case, expert * n_classes + answer)),
+        shape=(len(case_ids), len(names) * n_classes),
+    )
+    counts.sum_duplicates()
+    n_answers = np.bincount(expert, minlength=len(names))
+    return counts, np.asarray(case_ids), [str(n) for n in names], n_answers
+
+
+def _ds_m_step(
+    counts: sparse.csr_matrix, post: NDArray[np.float64], n_experts: int, k: int,
+    smoothing: float,
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Class prior and confusion matrices from posteriors (with additive smoothing)."""
+    prior = (post.sum(axis=0) + smoothing) / (post.shape[0] + k * smoothing)
+    joint = np.asarray(counts.T @ post).reshape(n_experts, k, k).transpose(0, 2, 1) + smoothing
+    return prior, joint / joint.sum(axis=2, keepdims=True)
+
+
+def _ds_log_joint(
+    counts: sparse.csr_matrix, prior: NDArray[np.float64], conf: NDArray[np.float64]
+) -> NDArray[np.float64]:
+    """log p(class) + log p(answers | class), shape (n_cases, K)."""
+    m, k, _ = conf.shape
+    log_conf = np.log(conf).transpose(0, 2, 1).reshape(m * k, k)
+    return np.log(prior)[None, :] + np.asarray(counts @ log_conf)
+
+
+def _clamp(post: NDArray[np.float64], known: NDArray[np.int64]) -> NDArray[np.float64]:
+    """Set the posterior of cases with known truth to that class."""
+    rows = np.flatnonzero(known >= 0)
+    post[rows] = 0.0
+    post[rows, known[rows]] = 1.0
+    return post
+
+
+def _ds_known(case_ids: NDArray[Any], truth: Any, k: int) -> NDArray[np.int64]:
+    """Known truth of each DS case (-1 where unknown or no truth given)."""
+    if truth is None:
+        return np.full(case_ids.size, -1, dtype=np.int64)
+    t = _int_column(truth, "truth").ravel()
+    _check_range(t, k, "truth", allow_missing=True)
+    return t[_case_positions(case_ids, truth, t.size)]
+
+
+def dawid_skene(
+    answers: pd.DataFrame,
+    n_classes: int,
+    *,
+    truth: ArrayLike | None = None,
+    max_iter: int = 100,
+    tol: float = 1e-6,
+    smoothing: float = 0.01,
+) -> DawidSkeneResult:
+    """Latent truth and per-expert confusion matrices by EM.
+
+    Dawid, A. P. and Skene, A. M. (1979), "Maximum likelihood estimation of observer
+    error-rates using the EM algorithm", Journal of the Royal Statistical Society,
+    Series C (Applied Statistics) 28(1):20-28. Each case has a latent class drawn from
+    the class proportions; each expert answers independently given it, through their
+    own confusion matrix; repeated answers by one expert on one case enter as counts.
+    EM starts, as in the paper, from each case's share of answers per class. Known
+    truth, when given, fixes those cases' classes (a semi-supervised variant).
+
+    Parameters
+    ----------
+    answers : DataFrame
+        Long-form answers with columns case, expert, answer; repeated (case, expert)
+        rows are allowed.
+    n_classes : int
+        Number of classes K.
+    truth : array-like of int, default=None
+        Truth per case as in `expert_accuracy_table` (-1 unknown); cases are then
+        positions (or index ids) into it.
+    max_iter : int, default=100
+        Most EM iterations.
+    tol : float, default=1e-6
+        Stop when no class proportion or confusion entry moves more than this.
+    smoothing : float, default=0.01
+        Pseudo-count added to every class and confusion cell in the M-step, so that
+        no estimate is exactly 0 (the EM then maximises a smoothed likelihood).
+
+    Returns
+    -------
+    DawidSkeneResult
+    """
+    k = int(n_classes)
+    if k < 2 or max_iter < 1 or tol <= 0 or smoothing < 0:
+        raise ValueError("need n_classes >= 2, max_iter >= 1, tol > 0 and smoothing >= 0")
+    counts, case_ids, names, n_answers = _ds_counts(answers, k)
+    known = _ds_known(case_ids, truth, k)
+    per_case = np.asarray(counts @ np.tile(np.eye(k), (len(names), 1)))
+    post = _clamp(per_case / per_case.sum(axis=1, keepdims=True), known)
+    prior, conf = _ds_m_step(counts, post, len(names), k, smoothing)
+    converged, n_iter = False, 0
+    for n_iter in range(1, max_iter + 1):
+        log_joint = _ds_log_joint(counts, prior, conf)
+        post = _clamp(np.exp(log_joint - logsumexp(log_joint, axis=1, keepdims=True)), known)
+        new_prior, new_conf = _ds_m_step(counts, post, len(names), k, smoothing)
+        change = max(np.abs(new_prior - prior).max(), np.abs(new_conf - conf).max())
+        prior, conf = new_prior, new_conf
+        if change < tol:
+            converged = True
+            break
+    log_joint = _ds_log_joint(counts, prior, conf)
+    post = _clamp(np.exp(log_joint - logsumexp(log_joint, axis=1, keepdims=True)), known)
+    return DawidSkeneResult(
+        experts=names, cases=case_ids, class_prior=prior, confusion=conf, posterior=post,
+        most_likely=post.argmax(axis=1).astype(np.int64), n_answers=n_answers,
+        n_iter=n_iter, converged=converged,
+        log_likelihood=_ds_log_likelihood(log_joint, known),
+    )
+
+
+def _ds_log_likelihood(log_joint: NDArray[np.float64], known: NDArray[np.int64]) -> float:
+    """Marginal log-likelihood over unknown cases plus the joint at known ones."""
+    unknown = known < 0
+    rows = np.flatnonzero(~unknown)
+    return float(logsumexp(log_joint[unknown], axis=1).sum() + log_joint[rows, known[rows]].sum())
+
+
+def latent_accuracy_table(result: DawidSkeneResult) -> pd.DataFrame:
+    """Each expert's accuracy on the pool as estimated by the Dawid-Skene model.
+
+    Parameters
+    ----------
+    result : DawidSkeneResult
+        The output of `dawid_skene`.
+
+    Returns
+    -------
+    DataFrame
+        ``expert, basis`` (always ``"latent"``), ``n_answers, latent_accuracy``
+        (``sum_k prior_k * confusion[j, k, k]``; no interval).
+    """
+    return pd.DataFrame({
+        "expert": result.experts,
+        "basis": "latent",
+        "n_answers": result.n_answers,
+        "latent_accuracy": result.expert_accuracy(),
+    })
+
+
+# --------------------------------------------------------------------------- regions
+
+
+def regions_from_features(
+    X: ArrayLike, n_regions: int = 6, random_state: int | np.random.Generator | None = 0
+) -> NDArray[np.int64]:
+    """Cluster cases into regions of the feature space for the per-region tables.
+
+    k-means (Lloyd, IEEE Trans. Inf. Theory 1982; k-means++ seeding, Arthur and
+    Vassilvitskii, SODA 2007, through scikit-learn) on features standardised to zero
+    mean and unit variance, so that no feature dominates by its unit.
+
+    Parameters
+    ----------
+    X : array-like of shape (n_cases, n_features)
+        Case features; finite.
+    n_regions : int, default=6
+        Number of regions; at most n_cases.
+    random_state : int, Generator or None, default=0
+        Seed of the k-means initialisation; fixed by default so the regions are stable.
+
+    Returns
+    -------
+    ndarray of int of shape (n_cases,)
+        Region code 0..n_regions-1 of each case.
+    """
+    data = check_array(X, dtype=np.float64)
+    if int(n_regions) != n_regions or not 1 <= n_regions <= data.shape[0]:
+        raise ValueError(f"n_regions must be an integer in 1..{data.shape[0]}, got {n_regions!r}")
+    if isinstance(random_state, np.random.Generator):
+        random_state = int(random_state.integers(2**31 - 1))
+    scaled = StandardScaler().fit_transform(data)
+    km = KMeans(n_clusters=int(n_regions), n_init=4, random_state=random_state)
+    return km.fit_predict(scaled).astype(np.int64)
+
+
+def region_summary(
+    X: ArrayLike, region: ArrayLike, feature_names: list[str] | None = None
+) -> pd.DataFrame:
+    """Size and mean features of each region, to tell the user where a region lies.
+
+    Parameters
+    ----------
+    X : array-like of shape (n_cases, n_features)
+        Case features in their own units.
+    region : array-like of int of shape (n_cases,)
+        Region codes, e.g. from `regions_from_features`.
+    feature_names : list of str, default=None
+        Column names; ``x0, x1, ...`` by default.
+
+    Returns
+    -------
+    DataFrame
+        One row per region: ``region, n_cases`` and the mean of each feature.
+    """
+    data = check_array(X, dtype=np.float64)
+    reg = _int_column(region, "region").ravel()
+    if reg.size != data.shape[0]:
+        raise ValueError("region must have one entry per row of X")
+    names = feature_names or [f"x{j}" for j in range(data.shape[1])]
+    if len(names) != data.shape[1]:
+        raise ValueError("feature_names must name every column of X")
+    frame = pd.DataFrame(data, columns=names).assign(region=reg)
+    means = frame.groupby("region", sort=True).mean()
+    means.insert(0, "n_cases", frame.groupby("region", sort=True).size())
+    return means.reset_index()
+
+
+# --------------------------------------------------------------------------- the report
+
+
+def _jsonable(value: Any) -> Any:
+    """Convert numpy / pandas values to plain JSON types (nan -> None)."""
+    if isinstance(value, pd.DataFrame):
+        return [
+            {str(c): _jsonable(v) for c, v in zip(value.columns, row)}
+            for row in value.itertuples(index=False, name=None)
+        ]
+    if isinstance(value, dict):
+        return {str(k): _jsonable(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple, np.ndarray)):
+        return [_jsonable(v) for v in value]
+    if isinstance(value, (np.bool_, bool)):
+        return bool(value)
+    if isinstance(value, (np.integer, int)):
+        return int(value)
+    if isinstance(value, (np.floating, float)):
+        return float(value) if np.isfinite(value) else None
+    if value is None or isinstance(value, str):
+        return value
+    return str(value)
+
+
+@dataclass(frozen=True)
+class CompetenceReport:
+    """Every competence table for one set of answers.
+
+    Attributes
+    ----------
+    labels : list of str
+        Label names, indexed by code.
+    accuracy : DataFrame
+        `expert_accuracy_table` without ``by``.
+    by_class, by_group, by_region : DataFrame or None
+        The same table split by true class, group and region (None when not asked for).
+    per_class : DataFrame
+        `per_class_table` on the truth basis.
+    confusion : dict of str to ndarray
+        `confusion_matrices` on the truth basis.
+    agreement : DataFrame
+        `agreement_table` between experts.
+    fleiss : DataFrame
+        `fleiss_for_shared` over rater sets of three or more.
+    latent : DawidSkeneResult or None
+        Dawid-Skene estimates (known truth fixed), when run.
+    latent_accuracy : DataFrame or None
+        `latent_accuracy_table` of ``latent``.
+    settings : dict
+        confidence, max_width, error_cost and the basis descriptions.
+    """
+
+    labels: list[str]
+    accuracy: pd.DataFrame
+    by_class: pd.DataFrame | None
+    by_group: pd.DataFrame | None
+    by_region: pd.DataFrame | None
+    per_class: pd.DataFrame
+    confusion: dict[str, NDArray[Any]]
+    agreement: pd.DataFrame
+    fleiss: pd.DataFrame
+    latent: DawidSkeneResult | None
+    latent_accuracy: pd.DataFrame | None
+    settings: dict[str, Any] = field(default_factory=dict)
+
+    def to_dict(self, *, include_cases: bool = True) -> dict[str, Any]:
+        """Plain-JSON form of the report (tables as lists of records, nan as null).
+
+        Parameters
+        ----------
+        include_cases : bool, default=True
+            Include the latent estimate of every case without known truth
+            (``case, most_likely, probability``); set False to keep the output small.
+
+        Returns
+        -------
+        dict
+            Serialisable by ``json.dumps``.
+        """
+        tables = ("accuracy", "by_class", "by_group", "by_region", "per_class",
+                  "agreement", "fleiss", "latent_accuracy")
+        out: dict[str, Any] = {"labels": list(self.labels), "settings": _jsonable(self.settings)}
+        out.update({name: _jsonable(getattr(self, name)) for name in tables})
+        out["confusion"] = _jsonable(self.confusion)
+        out["latent"] = None if self.latent is None else self._latent_dict(include_cases)
+        return out
+
+    def _latent_dict(self, include_cases: bool) -> dict[str, Any]:
+        """JSON form of the Dawid-Skene result."""
+        res = self.latent
+        assert res is not None
+        out = {
+            "class_prior": _jsonable(res.class_prior),
+            "confusion": {e: _jsonable(res.confusion[j]) for j, e in enumerate(res.experts)},
+            "n_iter": res.n_iter, "converged": res.converged,
+            "log_likelihood": _jsonable(res.log_likelihood),
+        }
+        if include_cases:
+            unknown = res.posterior.max(axis=1) < 1.0
+            out["cases"] = [
+                {"case": _jsonable(c), "most_likely": int(m), "probability": float(p)}
+                for c, m, p in zip(res.cases[unknown], res.most_likely[unknown],
+                                   res.posterior[unknown].max(axis=1))
+            ]
+        return out
+
+
+def _run_latent(answers: pd.DataFrame, prep: _Prepared, truth: Any, latent: str | bool) -> Any:
+    """Run Dawid-Skene when asked, or ('auto') when some answered case lacks truth."""
+    if latent not in ("auto", True, False):
+        raise ValueError(f"latent must be 'auto', True or False, got {latent!r}")
+    experts_only = prep.code < len(prep.names) - (prep.model_pred is not None)
+    needed = bool(np.any(prep.truth_of[experts_only] < 0))
+    if latent is False or (latent == "auto" and not needed) or prep.n_classes < 2:
+        return None
+    return dawid_skene(answers, prep.n_classes, truth=truth)
+
+
+def competence_report(
+    answers: pd.DataFrame,
+    truth: ArrayLike,
+    *,
+    labels: list[str] | None = None,
+    n_classes: int | None = None,
+    fees: Mapping[str, float] | pd.Series | None = None,
+    model_pred: ArrayLike | None = None,
+    error_cost: float = 1.0,
+    group: ArrayLike | None = None,
+    region: ArrayLike | None = None,
+    confidence: float = 0.95,
+    max_width: float = 0.2,
+    latent: str | bool = "auto",
+) -> CompetenceReport:
+    """Build every competence table at once.
+
+    Parameters
+    ----------
+    answers, truth, labels, n_classes, fees, model_pred, error_cost, group, region, \
+confidence, max_width
+        As in `expert_accuracy_table`.
+    latent : {"auto", True, False}, default="auto"
+        Run the Dawid-Skene latent-truth model (Dawid and Skene, Applied Statistics
+        1979) with known truth fixed; "auto" runs it when some answered case has no
+        known truth.
+
+    Returns
+    -------
+    CompetenceReport
+    """
+    prep = _prepare(
+        answers, truth, model_pred=model_pred, labels=labels, n_classes=n_classes, fees=fees
+    )
+    opts = {"error_cost": error_cost, "confidence": confidence, "max_width": max_width}
+
+    def split(by: str, values: Any) -> pd.DataFrame | None:
+        if by != "class" and values is None:
+            return None
+        return _accuracy_from_prepared(prep, by=by, group=group, region=region, **opts)
+
+    result = _run_latent(answers, prep, truth, latent)
+    k = prep.n_classes
+    return CompetenceReport(
+        labels=list(prep.labels),
+        accuracy=_accuracy_from_prepared(prep, by=None, group=None, region=None, **opts),
+        by_class=split("class", None), by_group=split("group", group),
+        by_region=split("region", region),
+        per_class=_per_class_from_prepared(prep, "truth", confidence),
+        confusion=_confusions_from_prepared(prep, "truth"),
+        agreement=agreement_table(answers, k), fleiss=fleiss_for_shared(answers, k),
+        latent=result, latent_accuracy=None if result is None else latent_accuracy_table(result),
+        settings={**opts, "bases": dict(BASES)},
+    )

@@ -1,0 +1,54 @@
+"""Named exceptions that reach the user.
+
+Every message says what went wrong and, where it helps, what to do next. The CLI turns
+:class:`InputError` (and its subclasses) into exit code 2 with one line on stderr; anything
+else escaping the library is an internal fault (exit code 1).
+"""
+
+from __future__ import annotations
+
+
+class RouteplanError(Exception):
+    """Base class of routeplan's own errors."""
+
+
+class InputError(RouteplanError):
+    """Bad input from the user: a file, an option or a name.
+
+    Parameters
+    ----------
+    message : str
+        What is wrong and, where it helps, what to do.
+    source : str, optional
+        The file (or option) the problem is in.
+    line : int, optional
+        1-based line of a text file (the header is line 1), or 1-based row of a Parquet file.
+    """
+
+    def __init__(self, message: str, *, source: str | None = None, line: int | None = None):
+        self.message = message
+        self.source = source
+        self.line = line
+        super().__init__(self.one_line())
+
+    def one_line(self) -> str:
+        """The message as one line: ``FILE line N: problem``."""
+        where = ""
+        if self.source is not None:
+            where = self.source
+            if self.line is not None:
+                where += f" line {self.line}"
+            where += ": "
+        return (where + self.message).replace("\n", " ").replace("\r", " ")
+
+
+class WorkspaceMissing(InputError):
+    """No routeplan workspace in the folder."""
+
+
+class WorkspaceExists(InputError):
+    """A workspace is already there; init refuses to overwrite it."""
+
+
+class NotFitted(InputError):
+    """A command needs a fitted model and there is none yet."""

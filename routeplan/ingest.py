@@ -1,0 +1,471 @@
+"""Importers: files the user brings -> checked rows -> one transaction in the workspace.
+
+Each importer reads the whole file, checks it against its JSON Schema and against the
+workspace (unknown cases or experts, labels outside the label set, conflicts with what is
+stored), and only then writes, in one transaction, with one journal entry. Re-importing a file
+with the same bytes is a no-op. Any problem raises :class:`~routeplan.errors.InputError`
+before anything is written.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Sequence
+
+import numpy as np
+import pandas as pd
+
+from .errors import InputError
+from .files import Table, check_rows, load_schema, read_table
+from .workspace import Workspace
+
+__all__ = [
+    "ImportResult",
+    "import_cases",
+    "import_truth",
+    "import_experts",
+    "add_expert",
+    "import_answers",
+]
+
+
+@dataclass
+class ImportResult:
+    """What an import did.
+
+    Attributes
+    ----------
+    kind : str
+        ``cases``, ``truth``, ``experts`` or ``answers``.
+    source : str
+        The file (or ``command line``).
+    rows : int
+        Records read.
+    added : int
+        Records written.
+    unchanged : int
+        Records already stored with the same content (skipped).
+    no_op : bool
+        True when the same bytes were imported before and nothing was done.
+    notes : dict
+        Importer-specific counts (e.g. ``historical`` answers, ``feature_columns``).
+    """
+
+    kind: str
+    source: str
+    rows: int = 0
+    added: int = 0
+    unchanged: int = 0
+    no_op: bool = False
+    notes: dict = field(default_factory=dict)
+
+    def message(self) -> str:
+        """One line for the terminal."""
+        if self.no_op:
+            return f"{self.source}: already imported (same bytes); nothing changed"
+        noun = {"cases": "case(s)", "truth": "truth value(s)", "experts": "expert(s)", "answers": "answer(s)"}[self.kind]
+        text = f"{self.source}: {self.added} {noun} added"
+        if self.unchanged:
+            text += f", {self.unchanged} already stored"
+        extras = [f"{k.replace('_', ' ')}: {v}" for k, v in self.notes.items() if isinstance(v, int) and v]
+        return text + (f" ({'; '.join(extras)})" if extras else "")
+
+    def to_dict(self) -> dict:
+        """Plain data for ``--json``."""
+        return dict(self.__dict__)
+
+
+# --------------------------------------------------------------------------- shared checks
+
+
+def _rename(table: Table, mapping: dict[str, str]) -> Table:
+    frame = table.frame.rename(columns=mapping)
+    return Table(frame, table.source, table.sha256, table.first_line, table.is_text,
+                 {mapping.get(k, k): v for k, v in table.numeric.items()})
+
+
+def _first_duplicate(values: pd.Series) -> tuple[int, int] | None:
+    """(position of a repeat, position of its first occurrence), or None."""
+    dup = values.duplicated(keep="first").to_numpy()
+    if not dup.any():
+        return None
+    at = int(np.argmax(dup))
+    first = int(np.argmax((values == values.iloc[at]).to_numpy()))
+    return at, first
+
+
+def _check_labels_in_set(table: Table, column: str, labels: Sequence[str]) -> None:
+    cells = table.frame[column]
+    bad = (cells.notna() & ~cells.isin(list(labels))).to_numpy()
+    if bad.any():
+        at = int(np.argmax(bad))
+        raise table.fail(
+            f"{column} {cells.iloc[at]!r} is not in the label set ({', '.join(labels)})", at
+        )
+
+
+def _check_known(table: Table, column: str, known: set[str], what: str, hint: str) -> None:
+    cells = table.frame[column]
+    bad = ~cells.isin(known).to_numpy()
+    if bad.any():
+        at = int(np.argmax(bad))
+        raise table.fail(f"unknown {what} {cells.iloc[at]!r}; {hint}", at)
+
+
+# --------------------------------------------------------------------------- cases
+
+
+def import_cases(
+    ws: Workspace,
+    path: str | Path,
+    *,
+    id_column: str = "case_id",
+    truth_column: str | None = None,
+    group_column: str | None = None,
+    feature_columns: Sequence[str] | None = None,
+) -> ImportResult:
+    """Import a cases file (CSV or Parquet).
+
+    Parameters
+    ----------
+    ws : Workspace
+    path : str or Path
+    id_column : str, default="case_id"
+        The column holding each case's unique id.
+    truth_column : str, optional
+        The column of verified outcomes (may be empty for some cases). Default: ``truth``
+        if the file has such a column.
+    group_column : str, optional
+        A column of groups (site, shift...) used by competence tables; not a feature.
+    feature_columns : sequence of str, optional
+        The feature columns. Default: every other column whose cells are all numbers. The
+        first import fixes the feature columns; later imports must carry the same ones.
+
+    Returns
+    -------
+    ImportResult
+    """
+    table = read_table(path)
+    result = ImportResult("cases", table.source)
+    if ws.seen_input("cases import", table.sha256):
+        result.no_op = True
+        return result
+    columns = list(table.frame.columns)
+    if truth_column is None and "truth" in columns:
+        truth_column = "truth"
+    mapping = {id_column: "case_id"}
+    for option, name, target in (("--truth-column", truth_column, "truth"), ("--group-column", group_column, "group")):
+        if name is not None:
+            if name not in columns:
+                raise InputError(f"{option} names '{name}', which is not in the header", source=table.source, line=1)
+            mapping[name] = target
+    if id_column not in columns:
+        raise InputError(
+            f"missing id column '{id_column}' (use --id-column to name another); the header has "
+            f"{', '.join(repr(c) for c in columns)}",
+            source=table.source,
+            line=1,
+        )
+    clash = [c for c in ("case_id", "truth", "group") if c in columns and c not in mapping]
+    if clash:
+        raise InputError(f"column '{clash[0]}' is reserved; rename it or map it with an option", source=table.source, line=1)
+    table = _rename(table, mapping)
+    features = _choose_features(ws, table, feature_columns)
+    parsed = check_rows(table, load_schema("cases-row"), numeric_columns=tuple(features))
+    frame = table.frame
+    dup = _first_duplicate(frame["case_id"])
+    if dup:
+        at, first = dup
+        raise table.fail(f"duplicate case_id {frame['case_id'].iloc[at]!r} (first on line {table.line_of(first)})", at)
+    if "truth" in frame.columns:
+        _check_labels_in_set(table, "truth", ws.labels)
+    stored = ws.existing_case_ids(frame["case_id"].tolist())
+    if stored:
+        at = int(np.argmax(frame["case_id"].isin(stored).to_numpy()))
+        raise table.fail(f"case_id {frame['case_id'].iloc[at]!r} is already in the workspace", at)
+    X = np.column_stack([parsed[name] for name in features]).astype("<f8")
+    rows = _case_rows(frame, X, features, ws.next_batch())
+    with ws.transaction():
+        if not ws.feature_columns:
+            ws.set_feature_columns(features)
+        ws.add_cases(rows)
+        ws.log("cases import", {"rows": len(frame), "features": features}, input_file=table.source, input_sha256=table.sha256)
+    result.rows = result.added = len(frame)
+    result.notes = {
+        "feature_columns": features,
+        "with_truth": int(frame["truth"].notna().sum()) if "truth" in frame.columns else 0,
+    }
+    return result
+
+
+def _choose_features(ws: Workspace, table: Table, requested: Sequence[str] | None) -> list[str]:
+    frame = table.frame
+    candidates = [c for c in frame.columns if c not in ("case_id", "truth", "group")]
+    fixed = ws.feature_columns
+    wanted = list(fixed) if fixed else (list(requested) if requested else None)
+    if wanted is not None:
+        missing = [c for c in wanted if c not in frame.columns]
+        if missing:
+            why = "the workspace's feature columns" if fixed else "--feature-columns"
+            raise InputError(f"missing feature column(s) {', '.join(repr(m) for m in missing)} ({why})", source=table.source, line=1)
+        return wanted
+    chosen = []
+    for name in candidates:
+        cells = frame[name]
+        present = cells.notna().to_numpy()
+        if name in table.numeric:
+            chosen.append(name)
+            continue
+        numbers = pd.to_numeric(cells, errors="coerce").notna().to_numpy()
+        if present.any() and (numbers | ~present).all():
+            chosen.append(name)
+        elif numbers[present].mean() >= 0.9 if present.any() else False:
+            at = int(np.argmax(present & ~numbers))
+            raise table.fail(f"column '{name}' holds {cells.iloc[at]!r} among numbers; fix the value or pass --feature-columns", at)
+    if not chosen:
+        raise InputError("no numeric feature columns found; pass --feature-columns", source=table.source, line=1)
+    return chosen
+
+
+def _case_rows(frame: pd.DataFrame, X: np.ndarray, features: list[str], batch: int) -> list[tuple]:
+    display_cols = [c for c in frame.columns if c not in ("case_id", "truth", "group") and c not in features]
+    n = len(frame)
+    truth = frame["truth"].tolist() if "truth" in frame.columns else [None] * n
+    group = frame["group"].tolist() if "group" in frame.columns else [None] * n
+    if display_cols:
+        records = frame[display_cols].to_dict(orient="records")
+        display = [json.dumps({k: v for k, v in r.items() if v is not None and v == v}) for r in records]
+    else:
+        display = [None] * n
+    blobs = [row.tobytes() for row in X]
+    ids = frame["case_id"].tolist()
+    return list(zip(ids, _none(truth), _none(group), blobs, display, [batch] * n))
+
+
+def _none(values: list) -> list:
+    return [None if (v is None or v != v) else v for v in values]
+
+
+# --------------------------------------------------------------------------- truth
+
+
+def import_truth(ws: Workspace, path: str | Path, *, replace: bool = False) -> ImportResult:
+    """Import verified outcomes (columns ``case_id``, ``truth``).
+
+    Parameters
+    ----------
+    ws : Workspace
+    path : str or Path
+    replace : bool, default=False
+        Allow changing a truth already stored (otherwise a conflict is an error).
+
+    Returns
+    -------
+    ImportResult
+    """
+    table = read_table(path)
+    result = ImportResult("truth", table.source)
+    if ws.seen_input("truth import", table.sha256):
+        result.no_op = True
+        return result
+    check_rows(table, load_schema("truth-row"))
+    frame = table.frame
+    _check_labels_in_set(table, "truth", ws.labels)
+    _check_pair_conflicts(table, ["case_id"], "truth")
+    frame = frame.drop_duplicates()
+    stored = ws.stored_truth(frame["case_id"].tolist())
+    _check_known(table, "case_id", set(stored), "case", "import it with 'routeplan cases import' first")
+    changes = []
+    for position, (case_id, truth) in zip(frame.index, zip(frame["case_id"], frame["truth"])):
+        old = stored[case_id]
+        if old == truth:
+            result.unchanged += 1
+            continue
+        if old is not None and not replace:
+            raise table.fail(f"truth {truth!r} for case {case_id!r} conflicts with the stored {old!r} (use --replace to change it)", position)
+        changes.append((case_id, truth))
+    result.rows = len(table.frame)
+    if changes:
+        with ws.transaction():
+            ws.set_truth(changes)
+            ws.log("truth import", {"rows": result.rows, "changed": len(changes)}, input_file=table.source, input_sha256=table.sha256)
+    result.added = len(changes)
+    return result
+
+
+def _check_pair_conflicts(table: Table, keys: list[str], value: str) -> None:
+    """Refuse rows that repeat a key with a different value (identical repeats are fine)."""
+    frame = table.frame
+    distinct = frame.drop_duplicates(subset=keys + [value])
+    clash = distinct.duplicated(subset=keys, keep="first")
+    if clash.any():
+        at = distinct.index[int(np.argmax(clash.to_numpy()))]
+        row = frame.loc[at]
+        key_text = ", ".join(f"{k} {row[k]!r}" for k in keys)
+        mask = np.ones(len(frame), dtype=bool)
+        for k in keys:
+            mask &= (frame[k] == row[k]).to_numpy()
+        first = int(np.argmax(mask))
+        raise table.fail(
+            f"conflicting {value} for {key_text}: {row[value]!r} here, {frame[value].iloc[first]!r} on line {table.line_of(first)}",
+            int(at),
+        )
+
+
+# --------------------------------------------------------------------------- experts
+
+
+def import_experts(ws: Workspace, path: str | Path) -> ImportResult:
+    """Import several experts from a CSV or Parquet file (columns ``name``, ``fee``, ``capacity``).
+
+    Existing experts get the file's fee and capacity.
+
+    Returns
+    -------
+    ImportResult
+    """
+    table = read_table(path)
+    result = ImportResult("experts", table.source)
+    if ws.seen_input("experts import", table.sha256):
+        result.no_op = True
+        return result
+    parsed = check_rows(table, load_schema("experts-row"))
+    dup = _first_duplicate(table.frame["name"])
+    if dup:
+        at, first = dup
+        raise table.fail(f"expert {table.frame['name'].iloc[at]!r} appears twice (first on line {table.line_of(first)})", at)
+    capacity = parsed.get("capacity", np.full(len(table.frame), np.nan))
+    rows = [
+        (name, float(fee), 1.0 if np.isnan(cap) else float(cap))
+        for name, fee, cap in zip(table.frame["name"], parsed["fee"], capacity)
+    ]
+    return _store_experts(ws, rows, result, "experts import", table.source, table.sha256)
+
+
+def add_expert(ws: Workspace, name: str, *, fee: float, capacity: float = 1.0) -> ImportResult:
+    """Add one expert, or change the fee and capacity of one already there.
+
+    Parameters
+    ----------
+    ws : Workspace
+    name : str
+        Safe as a file name (letters, digits, ``_ . -``; no ``..``), not ``model``.
+    fee : float
+        Fee per case, >= 0, in the unit of budgets.
+    capacity : float, default=1.0
+        Largest share of routed cases the expert may take, in [0, 1].
+    """
+    frame = pd.DataFrame({"name": [name], "fee": [repr(float(fee))], "capacity": [repr(float(capacity))]}, dtype=object)
+    table = Table(frame, "command line", "", 1, False, {})
+    try:
+        check_rows(table, load_schema("experts-row"))
+    except InputError as exc:
+        raise InputError(_option_words(exc.message)) from None
+    result = ImportResult("experts", "command line")
+    return _store_experts(ws, [(name, float(fee), float(capacity))], result, "experts add", None, None)
+
+
+def _option_words(message: str) -> str:
+    for column, words in (("name", "expert name"), ("fee", "--fee"), ("capacity", "--capacity")):
+        message = message.replace(f"column '{column}' holds", f"{words} is").replace(f"column '{column}'", words)
+    return message
+
+
+def _store_experts(ws, rows, result, command, source, sha) -> ImportResult:
+    with ws.transaction():
+        added, updated = ws.upsert_experts(rows)
+        if added or updated:
+            ws.log(command, {"experts": [list(r) for r in rows]}, input_file=source, input_sha256=sha)
+    result.rows = len(rows)
+    result.added = added
+    result.unchanged = len(rows) - added - updated
+    result.notes = {"updated": updated}
+    return result
+
+
+# --------------------------------------------------------------------------- answers
+
+
+def import_answers(ws: Workspace, paths: Sequence[str | Path], *, strict: bool = False) -> list[ImportResult]:
+    """Import answer files (columns ``case_id``, ``expert``, ``answer``), all or nothing.
+
+    An answer to an assignment is linked to it (its round and selection probability).
+    Answers that no round asked for are stored as historical: no selection probability,
+    kept out of the unbiased audit estimates.
+
+    Parameters
+    ----------
+    ws : Workspace
+    paths : sequence of str or Path
+    strict : bool, default=False
+        Refuse answers that no assignment asked for.
+
+    Returns
+    -------
+    list of ImportResult
+        One per file, in order.
+    """
+    plans = []
+    claimed: dict[tuple[str, str], tuple[str, str, int]] = {}
+    labels = ws.labels
+    experts = {e["name"] for e in ws.experts()}
+    for path in paths:
+        table = read_table(path)
+        result = ImportResult("answers", table.source)
+        if ws.seen_input("answers import", table.sha256):
+            result.no_op = True
+            plans.append((result, table, []))
+            continue
+        plans.append((result, table, _plan_answers(ws, table, labels, experts, claimed, strict, result)))
+    if any(rows for _, _, rows in plans):
+        with ws.transaction():
+            for result, table, rows in plans:
+                if rows:
+                    ws.add_answers(rows, source_file=table.source, source_sha256=table.sha256)
+                    ws.log("answers import", {"rows": result.rows, "added": len(rows), **result.notes},
+                           input_file=table.source, input_sha256=table.sha256)
+    return [result for result, _, _ in plans]
+
+
+def _plan_answers(ws, table, labels, experts, claimed, strict, result) -> list[tuple]:
+    check_rows(table, load_schema("answers-row"))
+    frame = table.frame
+    _check_known(table, "expert", experts, "expert", "add it with 'routeplan experts add NAME --fee F'")
+    _check_labels_in_set(table, "answer", labels)
+    _check_pair_conflicts(table, ["case_id", "expert"], "answer")
+    known_cases = ws.existing_case_ids(frame["case_id"].unique().tolist())
+    _check_known(table, "case_id", known_cases, "case", "import it with 'routeplan cases import' first")
+    unique = frame.drop_duplicates()
+    keys = list(zip(unique["case_id"], unique["expert"]))
+    stored = ws.stored_answers(keys)
+    asked = ws.open_assignments(keys)
+    rows = []
+    historical = 0
+    for position, key, answer in zip(unique.index, keys, unique["answer"]):
+        if key in stored:
+            if stored[key] != answer:
+                raise table.fail(f"answer {answer!r} of {key[1]!r} on case {key[0]!r} conflicts with the stored {stored[key]!r}", int(position))
+            result.unchanged += 1
+            continue
+        if key in claimed:
+            other_source, other_answer, other_line = claimed[key]
+            if other_answer != answer:
+                raise table.fail(f"answer {answer!r} of {key[1]!r} on case {key[0]!r} conflicts with {other_answer!r} in {other_source} line {other_line}", int(position))
+            result.unchanged += 1
+            continue
+        claimed[key] = (table.source, answer, table.line_of(int(position)))
+        link = asked.get(key)
+        if link is None:
+            if strict:
+                raise table.fail(f"no round asked {key[1]!r} about case {key[0]!r} (--strict refuses answers nobody asked for)", int(position))
+            historical += 1
+            rows.append((key[0], key[1], answer, None, None))
+        else:
+            rows.append((key[0], key[1], answer, link[1], link[0]))
+    result.rows = len(frame)
+    result.added = len(rows)
+    result.notes = {"historical": historical, "linked_to_assignments": len(rows) - historical,
+                    "repeated_rows": len(frame) - len(unique)}
+    return rows

@@ -1,0 +1,569 @@
+"""The workspace: one SQLite file (``routeplan.sqlite``) that holds a project's state.
+
+Only this module builds SQL. It opens the file through :mod:`sqlite_utils`, applies the
+schema's forward migrations (``sqlite_utils.migrations.Migrations``), runs every change in one
+``BEGIN IMMEDIATE`` transaction (so a change is wholly in or wholly out, and two terminals
+wait for each other instead of failing), and appends one row to the ``journal`` for every
+command that changed state. The journal refuses updates and deletes (triggers).
+
+Tables (schema version 1):
+
+``label_set``        code, name
+``settings``         key, value (JSON)
+``cases``            pos, case_id, truth, grp, features (float64 bytes), display (JSON), batch
+``feature_columns``  position, name
+``experts``          name, fee, capacity, added_at
+``rounds``           round_id, created_at, strategy, budget, seed, state, detail (JSON)
+``assignments``      assignment_id, round_id, case_id, expert, strategy, selection_prob, audit,
+                     fee, state, created_at
+``answers``          answer_id, case_id, expert, answer, round_id, assignment_id, source_file,
+                     source_sha256, imported_at
+``models``           model_id, created_at, kind, params (JSON), metrics (JSON), chosen
+``model_arrays``     model_id, name, dtype, shape (JSON), data (bytes)
+``policies``         policy_id, created_at, path, sha256, model_id, manifest (JSON)
+``journal``          entry_id, at, command, detail (JSON), input_file, input_sha256
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import sqlite3
+from contextlib import contextmanager
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any, Iterable, Iterator, Sequence
+
+import numpy as np
+from sqlite_utils import Database
+from sqlite_utils.migrations import Migrations
+
+from .errors import InputError, WorkspaceExists, WorkspaceMissing
+
+__all__ = ["Workspace", "DB_NAME", "SCHEMA_VERSION", "RESERVED_ROUTE"]
+
+DB_NAME = "routeplan.sqlite"
+RESERVED_ROUTE = "model"
+BUSY_TIMEOUT_S = 60.0
+
+migrations = Migrations("routeplan")
+
+
+@migrations(name="0001_initial")
+def _m0001_initial(db: Database) -> None:
+    """Create the tables of schema version 1."""
+    db.execute("CREATE TABLE label_set (code INTEGER PRIMARY KEY, name TEXT NOT NULL UNIQUE)")
+    db.execute("CREATE TABLE settings (key TEXT PRIMARY KEY, value TEXT NOT NULL)")
+    db.execute(
+        """CREATE TABLE cases (
+            pos INTEGER PRIMARY KEY,
+            case_id TEXT NOT NULL UNIQUE,
+            truth TEXT REFERENCES label_set(name),
+            grp TEXT,
+            features BLOB NOT NULL,
+            display TEXT,
+            batch INTEGER NOT NULL)"""
+    )
+    db.execute("CREATE TABLE feature_columns (position INTEGER PRIMARY KEY, name TEXT NOT NULL UNIQUE)")
+    db.execute(
+        """CREATE TABLE experts (
+            name TEXT PRIMARY KEY,
+            fee REAL NOT NULL CHECK (fee >= 0),
+            capacity REAL NOT NULL CHECK (capacity >= 0 AND capacity <= 1),
+            added_at TEXT NOT NULL)"""
+    )
+    db.execute(
+        """CREATE TABLE rounds (
+            round_id INTEGER PRIMARY KEY,
+            created_at TEXT NOT NULL,
+            strategy TEXT NOT NULL,
+            budget REAL NOT NULL,
+            seed INTEGER,
+            state TEXT NOT NULL DEFAULT 'open',
+            due_at TEXT,
+            detail TEXT)"""
+    )
+    db.execute(
+        """CREATE TABLE assignments (
+            assignment_id INTEGER PRIMARY KEY,
+            round_id INTEGER NOT NULL REFERENCES rounds(round_id),
+            case_id TEXT NOT NULL REFERENCES cases(case_id),
+            expert TEXT NOT NULL REFERENCES experts(name),
+            strategy TEXT NOT NULL,
+            selection_prob REAL NOT NULL CHECK (selection_prob > 0 AND selection_prob <= 1),
+            audit INTEGER NOT NULL DEFAULT 0,
+            fee REAL NOT NULL,
+            state TEXT NOT NULL DEFAULT 'open',
+            created_at TEXT NOT NULL,
+            UNIQUE (case_id, expert))"""
+    )
+    db.execute(
+        """CREATE TABLE answers (
+            answer_id INTEGER PRIMARY KEY,
+            case_id TEXT NOT NULL REFERENCES cases(case_id),
+            expert TEXT NOT NULL REFERENCES experts(name),
+            answer TEXT NOT NULL REFERENCES label_set(name),
+            round_id INTEGER REFERENCES rounds(round_id),
+            assignment_id INTEGER REFERENCES assignments(assignment_id),
+            source_file TEXT NOT NULL,
+            source_sha256 TEXT NOT NULL,
+            imported_at TEXT NOT NULL,
+            UNIQUE (case_id, expert))"""
+    )
+    db.execute("CREATE INDEX answers_expert ON answers(expert)")
+    db.execute(
+        """CREATE TABLE models (
+            model_id INTEGER PRIMARY KEY,
+            created_at TEXT NOT NULL,
+            kind TEXT NOT NULL,
+            params TEXT NOT NULL,
+            metrics TEXT,
+            chosen INTEGER NOT NULL DEFAULT 0)"""
+    )
+    db.execute(
+        """CREATE TABLE model_arrays (
+            model_id INTEGER NOT NULL REFERENCES models(model_id),
+            name TEXT NOT NULL,
+            dtype TEXT NOT NULL,
+            shape TEXT NOT NULL,
+            data BLOB NOT NULL,
+            PRIMARY KEY (model_id, name))"""
+    )
+    db.execute(
+        """CREATE TABLE policies (
+            policy_id INTEGER PRIMARY KEY,
+            created_at TEXT NOT NULL,
+            path TEXT NOT NULL,
+            sha256 TEXT NOT NULL,
+            model_id INTEGER REFERENCES models(model_id),
+            manifest TEXT NOT NULL)"""
+    )
+    db.execute(
+        """CREATE TABLE journal (
+            entry_id INTEGER PRIMARY KEY,
+            at TEXT NOT NULL,
+            command TEXT NOT NULL,
+            detail TEXT NOT NULL,
+            input_file TEXT,
+            input_sha256 TEXT)"""
+    )
+    db.execute("CREATE INDEX journal_sha ON journal(command, input_sha256)")
+    for action in ("UPDATE", "DELETE"):
+        db.execute(
+            f"""CREATE TRIGGER journal_no_{action.lower()} BEFORE {action} ON journal
+            BEGIN SELECT RAISE(ABORT, 'the journal is append-only'); END"""
+        )
+
+
+SCHEMA_VERSION = len(migrations._migrations)
+
+
+def _now() -> str:
+    return datetime.now(timezone.utc).isoformat(timespec="seconds")
+
+
+@dataclass
+class Workspace:
+    """An open workspace.
+
+    Use :meth:`create` or :meth:`open`, not the constructor.
+
+    Attributes
+    ----------
+    folder : Path
+        The workspace folder.
+    db : sqlite_utils.Database
+        The open database.
+    """
+
+    folder: Path
+    db: Database
+
+    # ------------------------------------------------------------------ opening
+
+    @staticmethod
+    def _connect(path: Path) -> Database:
+        conn = sqlite3.connect(str(path), timeout=BUSY_TIMEOUT_S, isolation_level=None)
+        conn.execute(f"PRAGMA busy_timeout = {int(BUSY_TIMEOUT_S * 1000)}")
+        conn.execute("PRAGMA foreign_keys = ON")
+        return Database(conn, execute_plugins=False)
+
+    @classmethod
+    def create(cls, folder: str | Path, labels: Sequence[str], *, error_cost: float = 1.0) -> "Workspace":
+        """Create a new workspace in ``folder``.
+
+        Parameters
+        ----------
+        folder : str or Path
+            Created if missing.
+        labels : sequence of str
+            The label set, in order (codes 0..K-1). At least two, unique.
+        error_cost : float, default=1.0
+            What one wrong decision costs, in the unit of fees and budgets.
+
+        Returns
+        -------
+        Workspace
+
+        Raises
+        ------
+        WorkspaceExists
+            If ``folder`` already holds a workspace.
+        InputError
+            If the labels or the error cost are not valid.
+        """
+        labels = _check_labels(labels)
+        if not (np.isfinite(error_cost) and error_cost > 0):
+            raise InputError(f"--error-cost must be a positive number, not {error_cost!r}")
+        folder = Path(folder)
+        path = folder / DB_NAME
+        if path.exists():
+            raise WorkspaceExists(
+                f"{path} already exists; routeplan will not overwrite a workspace "
+                "(choose another folder with --workspace)"
+            )
+        folder.mkdir(parents=True, exist_ok=True)
+        tmp = folder / (DB_NAME + ".creating")
+        tmp.unlink(missing_ok=True)
+        db = cls._connect(tmp)
+        db.execute("PRAGMA journal_mode = WAL")
+        migrations.apply(db)
+        ws = cls(folder, db)
+        with ws.transaction():
+            db.conn.executemany("INSERT INTO label_set VALUES (?, ?)", list(enumerate(labels)))
+            ws._set("error_cost", float(error_cost))
+            ws._set("created_at", _now())
+            ws.log("init", {"labels": list(labels), "error_cost": float(error_cost)})
+        db.close()
+        os.replace(tmp, path)
+        return cls.open(folder)
+
+    @classmethod
+    def open(cls, folder: str | Path) -> "Workspace":
+        """Open the workspace in ``folder``, applying pending migrations.
+
+        Raises
+        ------
+        WorkspaceMissing
+            If there is no workspace there.
+        """
+        folder = Path(folder)
+        path = folder / DB_NAME
+        if not path.is_file():
+            raise WorkspaceMissing(
+                f"no workspace in {folder.resolve()}; run 'routeplan init --labels A,B' there "
+                "or point --workspace (or ROUTEPLAN_WORKSPACE) at one"
+            )
+        db = cls._connect(path)
+        if migrations.pending(db):
+            migrations.apply(db)
+        return cls(folder, db)
+
+    def close(self) -> None:
+        """Close the database connection."""
+        self.db.close()
+
+    def __enter__(self) -> "Workspace":
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    # ------------------------------------------------------------------ transactions and journal
+
+    @contextmanager
+    def transaction(self) -> Iterator["Workspace"]:
+        """Run the block in one write transaction (``BEGIN IMMEDIATE``): all of it or none."""
+        conn = self.db.conn
+        if conn.in_transaction:
+            with self.db.atomic():
+                yield self
+            return
+        conn.execute("BEGIN IMMEDIATE")
+        try:
+            yield self
+        except BaseException:
+            conn.execute("ROLLBACK")
+            raise
+        conn.execute("COMMIT")
+
+    def log(self, command: str, detail: dict, *, input_file: str | None = None, input_sha256: str | None = None) -> None:
+        """Append one entry to the journal (call inside :meth:`transaction`)."""
+        self.db.conn.execute(
+            "INSERT INTO journal (at, command, detail, input_file, input_sha256) VALUES (?, ?, ?, ?, ?)",
+            (_now(), command, json.dumps(detail, sort_keys=True), input_file, input_sha256),
+        )
+
+    def seen_input(self, command: str, sha256: str) -> bool:
+        """True if ``command`` already imported a file with these bytes."""
+        row = self.db.execute(
+            "SELECT 1 FROM journal WHERE command = ? AND input_sha256 = ? LIMIT 1", (command, sha256)
+        ).fetchone()
+        return row is not None
+
+    def journal(self, limit: int | None = None) -> list[dict]:
+        """Journal entries, newest first."""
+        sql = "SELECT * FROM journal ORDER BY entry_id DESC" + (f" LIMIT {int(limit)}" if limit else "")
+        return [dict(r) for r in self._rows(sql)]
+
+    # ------------------------------------------------------------------ settings and labels
+
+    def _set(self, key: str, value: Any) -> None:
+        self.db.conn.execute("INSERT OR REPLACE INTO settings VALUES (?, ?)", (key, json.dumps(value)))
+
+    def setting(self, key: str, default: Any = None) -> Any:
+        """A stored setting (JSON value), or ``default``."""
+        row = self.db.execute("SELECT value FROM settings WHERE key = ?", (key,)).fetchone()
+        return default if row is None else json.loads(row[0])
+
+    @property
+    def labels(self) -> list[str]:
+        """The label set in code order."""
+        return [r[0] for r in self.db.execute("SELECT name FROM label_set ORDER BY code")]
+
+    @property
+    def error_cost(self) -> float:
+        """What one wrong decision costs, in fee units."""
+        return float(self.setting("error_cost", 1.0))
+
+    @property
+    def schema_version(self) -> int:
+        """How many schema migrations have been applied."""
+        return len(migrations.applied(self.db))
+
+    # ------------------------------------------------------------------ cases and truth
+
+    @property
+    def feature_columns(self) -> list[str]:
+        """Feature column names, fixed by the first cases import (empty before it)."""
+        return [r[0] for r in self.db.execute("SELECT name FROM feature_columns ORDER BY position")]
+
+    def set_feature_columns(self, names: Sequence[str]) -> None:
+        """Record the feature columns (first cases import only)."""
+        self.db.conn.executemany("INSERT INTO feature_columns VALUES (?, ?)", list(enumerate(names)))
+
+    def existing_case_ids(self, case_ids: Iterable[str]) -> set[str]:
+        """The subset of ``case_ids`` already stored."""
+        return self._existing("cases", "case_id", case_ids)
+
+    def add_cases(self, rows: Iterable[tuple]) -> int:
+        """Insert cases: tuples (case_id, truth, grp, features_bytes, display_json, batch)."""
+        cursor = self.db.conn.executemany(
+            "INSERT INTO cases (case_id, truth, grp, features, display, batch) VALUES (?, ?, ?, ?, ?, ?)", rows
+        )
+        return cursor.rowcount
+
+    def next_batch(self) -> int:
+        """Number for the next cases import."""
+        row = self.db.execute("SELECT COALESCE(MAX(batch), 0) + 1 FROM cases").fetchone()
+        return int(row[0])
+
+    def stored_truth(self, case_ids: Sequence[str]) -> dict[str, str | None]:
+        """Stored truth of the given cases (None where unknown); unknown cases are left out."""
+        return self._lookup("SELECT case_id, truth FROM cases WHERE case_id IN ({})", case_ids)
+
+    def set_truth(self, pairs: Iterable[tuple[str, str]]) -> int:
+        """Set truth for (case_id, label) pairs."""
+        cursor = self.db.conn.executemany(
+            "UPDATE cases SET truth = ? WHERE case_id = ?", ((t, c) for c, t in pairs)
+        )
+        return cursor.rowcount
+
+    def case_frame(self, *, with_features: bool = True):
+        """All cases as a DataFrame (case_id, truth, group) and, optionally, the float64 feature matrix.
+
+        Returns
+        -------
+        frame : pandas.DataFrame
+        X : ndarray of shape (n_cases, n_features) or None
+        """
+        import pandas as pd
+
+        cols = "case_id, truth, grp" + (", features" if with_features else "")
+        rows = self.db.execute(f"SELECT {cols} FROM cases ORDER BY pos").fetchall()
+        frame = pd.DataFrame([r[:3] for r in rows], columns=["case_id", "truth", "group"])
+        X = None
+        if with_features:
+            d = len(self.feature_columns)
+            X = np.frombuffer(b"".join(r[3] for r in rows), dtype="<f8").reshape(len(rows), d)
+        return frame, X
+
+    # ------------------------------------------------------------------ experts
+
+    def experts(self) -> list[dict]:
+        """Experts as dicts (name, fee, capacity, added_at), in the order they were added."""
+        return [dict(r) for r in self._rows("SELECT name, fee, capacity, added_at FROM experts ORDER BY rowid")]
+
+    def upsert_experts(self, rows: Sequence[tuple[str, float, float]]) -> tuple[int, int]:
+        """Add experts or update fee and capacity; returns (added, updated)."""
+        known = {e["name"]: e for e in self.experts()}
+        added = updated = 0
+        for name, fee, capacity in rows:
+            if name in known:
+                if (known[name]["fee"], known[name]["capacity"]) != (fee, capacity):
+                    self.db.conn.execute(
+                        "UPDATE experts SET fee = ?, capacity = ? WHERE name = ?", (fee, capacity, name)
+                    )
+                    updated += 1
+            else:
+                self.db.conn.execute("INSERT INTO experts VALUES (?, ?, ?, ?)", (name, fee, capacity, _now()))
+                added += 1
+        return added, updated
+
+    # ------------------------------------------------------------------ answers and assignments
+
+    def stored_answers(self, keys: Sequence[tuple[str, str]]) -> dict[tuple[str, str], str]:
+        """Stored answers for (case_id, expert) keys."""
+        return self._pair_lookup("answers", "answer", keys)
+
+    def open_assignments(self, keys: Sequence[tuple[str, str]]) -> dict[tuple[str, str], tuple[int, int]]:
+        """Assignments for (case_id, expert) keys: (assignment_id, round_id)."""
+        found: dict[tuple[str, str], tuple[int, int]] = {}
+        self._with_keys(keys)
+        for c, e, a, r in self.db.execute(
+            "SELECT a.case_id, a.expert, a.assignment_id, a.round_id FROM assignments a "
+            "JOIN temp.keys k ON k.case_id = a.case_id AND k.expert = a.expert"
+        ):
+            found[(c, e)] = (a, r)
+        return found
+
+    def add_answers(self, rows: Sequence[tuple], *, source_file: str, source_sha256: str) -> int:
+        """Insert answers: tuples (case_id, expert, answer, round_id, assignment_id)."""
+        at = _now()
+        self.db.conn.executemany(
+            "INSERT INTO answers (case_id, expert, answer, round_id, assignment_id, source_file, "
+            "source_sha256, imported_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+            [(*r, source_file, source_sha256, at) for r in rows],
+        )
+        linked = [r[4] for r in rows if r[4] is not None]
+        self.db.conn.executemany(
+            "UPDATE assignments SET state = 'answered' WHERE assignment_id = ?", [(a,) for a in linked]
+        )
+        return len(rows)
+
+    def answer_frame(self):
+        """All answers with their assignment's selection probability and audit flag.
+
+        Returns
+        -------
+        pandas.DataFrame
+            Columns case_id, expert, answer, round_id, selection_prob (NaN for historical
+            answers), audit (bool).
+        """
+        import pandas as pd
+
+        rows = self.db.execute(
+            "SELECT n.case_id, n.expert, n.answer, n.round_id, a.selection_prob, COALESCE(a.audit, 0) "
+            "FROM answers n LEFT JOIN assignments a ON a.assignment_id = n.assignment_id ORDER BY n.answer_id"
+        ).fetchall()
+        frame = pd.DataFrame(rows, columns=["case_id", "expert", "answer", "round_id", "selection_prob", "audit"])
+        frame["selection_prob"] = frame["selection_prob"].astype(float)
+        frame["audit"] = frame["audit"].astype(bool)
+        return frame
+
+    # ------------------------------------------------------------------ status
+
+    def status(self) -> dict:
+        """A summary of the workspace as plain data (see ``routeplan status``)."""
+        q = lambda sql: self.db.execute(sql).fetchall()  # noqa: E731
+        n_cases, n_truth = q("SELECT COUNT(*), COUNT(truth) FROM cases")[0]
+        per_expert = {r[0]: r[1] for r in q("SELECT expert, COUNT(*) FROM answers GROUP BY expert")}
+        historical = {r[0]: r[1] for r in q("SELECT expert, COUNT(*) FROM answers WHERE assignment_id IS NULL GROUP BY expert")}
+        spent = {r[0]: r[1] for r in q("SELECT expert, SUM(fee) FROM assignments GROUP BY expert")}
+        experts = []
+        for e in self.experts():
+            name = e["name"]
+            experts.append(
+                {
+                    "name": name,
+                    "fee": e["fee"],
+                    "capacity": e["capacity"],
+                    "answers": per_expert.get(name, 0),
+                    "historical_answers": historical.get(name, 0),
+                    "spent": float(spent.get(name, 0.0) or 0.0),
+                }
+            )
+        rounds = [
+            {
+                "round": r[0],
+                "created_at": r[1],
+                "strategy": r[2],
+                "budget": r[3],
+                "state": r[4],
+                "assignments": r[5],
+                "answered": r[6],
+                "open": r[5] - r[6],
+            }
+            for r in q(
+                "SELECT r.round_id, r.created_at, r.strategy, r.budget, r.state, COUNT(a.assignment_id), "
+                "COALESCE(SUM(a.state = 'answered'), 0) FROM rounds r LEFT JOIN assignments a "
+                "ON a.round_id = r.round_id GROUP BY r.round_id ORDER BY r.round_id"
+            )
+        ]
+        return {
+            "workspace": str(self.folder.resolve()),
+            "schema_version": self.schema_version,
+            "labels": self.labels,
+            "error_cost": self.error_cost,
+            "cases": {"total": n_cases, "with_truth": n_truth, "without_truth": n_cases - n_truth},
+            "feature_columns": self.feature_columns,
+            "experts": experts,
+            "answers": {"total": sum(per_expert.values()), "historical": sum(historical.values())},
+            "rounds": rounds,
+            "models": q("SELECT COUNT(*) FROM models")[0][0],
+            "policies": q("SELECT COUNT(*) FROM policies")[0][0],
+        }
+
+    # ------------------------------------------------------------------ helpers
+
+    def _rows(self, sql: str, params: Sequence = ()) -> list[sqlite3.Row]:
+        cursor = self.db.conn.cursor()
+        cursor.row_factory = sqlite3.Row
+        return cursor.execute(sql, params).fetchall()
+
+    def _existing(self, table: str, column: str, values: Iterable[str]) -> set[str]:
+        values = list(values)
+        found: set[str] = set()
+        for start in range(0, len(values), 900):
+            chunk = values[start : start + 900]
+            marks = ",".join("?" * len(chunk))
+            found.update(
+                r[0] for r in self.db.execute(f"SELECT {column} FROM {table} WHERE {column} IN ({marks})", chunk)
+            )
+        return found
+
+    def _lookup(self, sql: str, keys: Sequence[str]) -> dict:
+        out: dict = {}
+        keys = list(keys)
+        for start in range(0, len(keys), 900):
+            chunk = keys[start : start + 900]
+            out.update(self.db.execute(sql.format(",".join("?" * len(chunk))), chunk).fetchall())
+        return out
+
+    def _with_keys(self, keys: Sequence[tuple[str, str]]) -> None:
+        self.db.execute("CREATE TEMP TABLE IF NOT EXISTS keys (case_id TEXT, expert TEXT)")
+        self.db.execute("DELETE FROM temp.keys")
+        self.db.conn.executemany("INSERT INTO temp.keys VALUES (?, ?)", list(keys))
+
+    def _pair_lookup(self, table: str, column: str, keys: Sequence[tuple[str, str]]) -> dict:
+        self._with_keys(keys)
+        return {
+            (c, e): v
+            for c, e, v in self.db.execute(
+                f"SELECT t.case_id, t.expert, t.{column} FROM {table} t "
+                "JOIN temp.keys k ON k.case_id = t.case_id AND k.expert = t.expert"
+            )
+        }
+
+
+def _check_labels(labels: Sequence[str]) -> list[str]:
+    labels = [str(label).strip() for label in labels]
+    if len(labels) < 2:
+        raise InputError("--labels needs at least two labels, separated by commas (e.g. --labels first,second)")
+    if len(set(labels)) != len(labels):
+        raise InputError(f"--labels repeats a label: {','.join(labels)}")
+    for label in labels:
+        if not label or any(ord(ch) < 32 for ch in label) or "," in label:
+            raise InputError(f"--labels has an empty or unprintable label: {label!r}")
+    return labels
