@@ -79,6 +79,12 @@ class Commands:
     def __init__(self) -> None:
         self._names: dict[tuple[str, ...], set[str] | None] = {}
         self._help: dict[tuple[str, ...], str] = {}
+        self.skipped: list[str] = []
+
+    def skip(self, what: str) -> None:
+        """Say (and remember) that a step is skipped because this routeplan lacks its command."""
+        print(f"\n(skipped: this routeplan has no `{what}` command yet)")
+        self.skipped.append(what)
 
     def help_text(self, path: tuple[str, ...]) -> str:
         """The ``--help`` output of a command (empty if it has none)."""
@@ -118,9 +124,6 @@ class Commands:
         return self._names[parent] or set()
 
 
-def _skip(what: str) -> None:
-    """Say that a step is skipped because this routeplan lacks its command."""
-    print(f"\n(skipped: this routeplan has no `{what}` command yet)")
 
 
 def _round_id(payload: Any) -> str | None:
@@ -161,16 +164,16 @@ def _setup(cmds: Commands, summary: dict[str, Any]) -> None:
             print("\n(note: `cases import` has no --group-column yet, so the kiln is not used as a group)")
         _routeplan(["cases", "import", f"{DATA}/tiles.csv", *extra])
     else:
-        _skip("cases import")
+        cmds.skip("cases import")
     if cmds.has("truth", "import"):
         _routeplan(["truth", "import", f"{DATA}/truth.csv"])
     else:
-        _skip("truth import")
+        cmds.skip("truth import")
     _add_experts(cmds)
     if cmds.has("answers", "import"):
         _routeplan(["answers", "import", f"{DATA}/history.csv"])
     else:
-        _skip("answers import")
+        cmds.skip("answers import")
     if cmds.has("status"):
         _routeplan(["status"])
     summary["setup"] = True
@@ -184,13 +187,14 @@ def _add_experts(cmds: Commands) -> None:
         for row in pd.read_csv(WORK / DATA / "experts.csv").itertuples(index=False):
             _routeplan(["experts", "add", str(row.name), "--fee", str(row.fee), "--capacity", str(row.capacity)])
     else:
-        _skip("experts import")
+        cmds.skip("experts import")
 
 
 def _rounds(cmds: Commands, n_rounds: int, budget: float, seed: int, summary: dict[str, Any]) -> None:
     """Plan, export, answer, import, fit and inspect, ``n_rounds`` times."""
     if not (cmds.has("round", "plan") and cmds.has("round", "export")):
-        _skip("round plan / round export")
+        cmds.skip("round plan / round export")
+        _fit_and_look(cmds, seed)  # still learn from the truth and the history
         return
     fees = pd.read_csv(WORK / DATA / "experts.csv").set_index("name")["fee"]
     bought: dict[str, int] = {}
@@ -211,10 +215,12 @@ def _rounds(cmds: Commands, n_rounds: int, budget: float, seed: int, summary: di
             print("(the plan chose no tiles; nothing to answer this round)")
             continue
         _python("play_experts.py", [sheets, "--out", answers, "--data", DATA, "--seed", str(seed)])
-        files = sorted(str(p.relative_to(WORK)) for p in (WORK / answers).glob("*.csv"))
-        for name in files:
-            frame = pd.read_csv(WORK / name)
-            bought[Path(name).stem] = bought.get(Path(name).stem, 0) + len(frame)
+        files = []
+        for path in sorted((WORK / answers).glob("*.csv")):
+            n_rows = len(pd.read_csv(path))
+            if n_rows:
+                files.append(str(path.relative_to(WORK)))
+                bought[path.stem] = bought.get(path.stem, 0) + n_rows
         if files and cmds.has("answers", "import"):
             _routeplan(["answers", "import", *files])
         _fit_and_look(cmds, seed)
@@ -228,22 +234,22 @@ def _fit_and_look(cmds: Commands, seed: int) -> None:
     if cmds.has("fit"):
         _routeplan(["fit", "--seed", str(seed)])
     else:
-        _skip("fit")
+        cmds.skip("fit")
     if cmds.has("competence"):
         _routeplan(["competence"])
     else:
-        _skip("competence")
+        cmds.skip("competence")
 
 
 def _freeze_and_route(cmds: Commands, summary: dict[str, Any]) -> None:
     """Freeze the policy and route the new tiles with it."""
     if not cmds.has("freeze"):
-        _skip("freeze")
+        cmds.skip("freeze")
         return
     _routeplan(["freeze", "--out", "policy.json"])
     summary["policy"] = True
     if not cmds.has("route"):
-        _skip("route")
+        cmds.skip("route")
         return
     _routeplan(["route", "--policy", "policy.json", f"{DATA}/new_tiles.csv", "--out", "routed.csv"])
     summary["routed"] = True
@@ -303,7 +309,7 @@ def _baselines(data_dir: Path, seed: int) -> dict[str, float]:
     return out
 
 
-def _print_summary(summary: dict[str, Any], seed: int) -> None:
+def _print_summary(cmds: Commands, summary: dict[str, Any], seed: int) -> None:
     """Tell a newcomer what happened, where the files are and what to try next."""
     print("\n" + "=" * 72 + "\nSummary\n" + "=" * 72)
     print("The invented Marrowdene Tileworks grades fired roof tiles first / second / reject.")
@@ -325,12 +331,19 @@ def _print_summary(summary: dict[str, Any], seed: int) -> None:
         print(f"  accuracy {check['accuracy']:.3f}, fees {check['fees']:.1f}, cost per tile {check['cost_per_tile']:.3f}")
         for expert, cost in _baselines(WORK / DATA, seed).items():
             print(f"  for comparison, every tile to {expert} (ignoring its capacity): cost per tile {cost:.3f}")
+    if cmds.skipped:
+        print("Not run, because this routeplan lacks the command: " + ", ".join(cmds.skipped) + ".")
+    script = Path(sys.executable).with_name("routeplan")
+    routeplan = str(script) if script.exists() else f"{sys.executable} -m routeplan"
     print("\nWhat to try next:")
     print(f"  cd {WORK}")
-    print(f"  {sys.executable} -m routeplan --workspace {WORKSPACE} status")
-    print(f"  {sys.executable} -m routeplan --workspace {WORKSPACE} competence")
-    print("  rerun with --budget 10 or --rounds 8 and compare the cost per tile;")
-    print("  plan a round with --strategy random to see what the default strategy gains;")
+    print(f"  {routeplan} --workspace {WORKSPACE} status")
+    if cmds.has("competence"):
+        print(f"  {routeplan} --workspace {WORKSPACE} competence")
+    if summary.get("rounds"):
+        print("  rerun the demo with --budget 10 or --rounds 8 and compare the cost per tile;")
+        print(f"  {routeplan} --workspace {WORKSPACE} round plan --budget 25 --strategy random"
+              "   (what does the default strategy gain?)")
     print(f"  peek at {WORK / DATA / tileworks.PROFILES_FILE} to see how good each expert really is.")
 
 
@@ -347,9 +360,9 @@ def main(argv: list[str] | None = None) -> int:
     WORK.mkdir(parents=True)
     print(f"Demo folder: {WORK} (commands below run from there)")
     summary: dict[str, Any] = {}
+    cmds = Commands()
     try:
         _python("generate_cases.py", ["--out", DATA, "--n", str(args.n), "--seed", str(args.seed)])
-        cmds = Commands()
         _setup(cmds, summary)
         _rounds(cmds, args.rounds, args.budget, args.seed, summary)
         _freeze_and_route(cmds, summary)
@@ -357,7 +370,7 @@ def main(argv: list[str] | None = None) -> int:
         print(f"\nDemo stopped: {exc}", file=sys.stderr)
         print(f"Everything written so far is in {WORK}.", file=sys.stderr)
         return exc.code
-    _print_summary(summary, args.seed)
+    _print_summary(cmds, summary, args.seed)
     return 0
 
 

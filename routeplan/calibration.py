@@ -163,6 +163,7 @@ def fit_platt(
     return float(res.x[0]), float(res.x[1])
 
 
-def apply_platt(logits: ArrayLike, a: float, b: float) -> np.ndarray:
-    """Probabilities ``sigmoid(a z + b)``."""
-    return expit(float(a) * np.asarray(logits, dtype=np.float64) + float(b))
+def apply_platt(logits: ArrayLike, a: ArrayLike, b: ArrayLike) -> np.ndarray:
+    """Probabilities ``sigmoid(a z + b)``; ``a`` and ``b`` broadcast (e.g. one per column)."""
+    a_arr, b_arr = np.asarray(a, dtype=np.float64), np.asarray(b, dtype=np.float64)
+    return expit(a_arr * np.asarray(logits, dtype=np.float64) + b_arr)

@@ -318,6 +318,68 @@ def answers_import(app, files, strict, as_json):
     _report_imports(app, results, as_json)
 
 
+# --------------------------------------------------------------------------- competence
+
+
+@cli.command()
+@click.option("--by", type=click.Choice(["class", "group", "region"]), default=None,
+              help="Also break the table down by true class, by group, or by region of the feature space.")
+@click.option("--basis", type=click.Choice(["truth", "audit"]), default="truth", show_default=True,
+              help="truth: every answer on a case with known truth; audit: only the uniformly random audit "
+                   "answers (unbiased for the pool).")
+@click.option("--regions", "n_regions", type=click.IntRange(1, 50), default=6, show_default=True,
+              help="Number of regions (k-means clusters of the standardised features).")
+@click.option("--seed", type=int, default=0, show_default=True, help="Seed of the region clustering.")
+@click.option("--csv", "csv_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
+              help="Write the table (broken down with --by, if given) to this CSV file.")
+@click.option("--plot", "plot_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
+              help="Write a heatmap of accuracy per expert x class (or x region with --by region) to this PNG.")
+@json_option
+@pass_app
+def competence(app, by, basis, n_regions, seed, csv_path, plot_path, as_json):
+    """Show where each expert, and the model, can be trusted.
+
+    For each expert and the model: answers, accuracy against truth with a 95% Wilson interval
+    (flagged where too wide to act on), Cohen's kappa, and the expected wrong decisions saved
+    per unit of fee against letting the model decide; per-class recall and precision;
+    agreement between experts; and, where truth is missing, Dawid-Skene latent-truth estimates.
+    The model's row uses only cases held out from its training.
+
+    Example:
+
+    \b
+        routeplan competence --by region --plot competence.png
+    """
+    from .competence import pool_competence
+    from .fitting import held_out_predictions
+    from .pool import load_pool
+
+    with app.workspace() as ws:
+        pool = load_pool(ws)
+        model_pred = held_out_predictions(ws, pool)
+    report = pool_competence(pool, model_pred=model_pred, n_regions=n_regions, random_state=seed)
+    frame = getattr(report, f"by_{by}") if by else report.accuracy
+    if csv_path is not None:
+        from .files import write_csv
+
+        write_csv(frame, csv_path)
+    if plot_path is not None:
+        from .figures import competence_heatmap
+
+        level = by if by in ("class", "region", "group") else "class"
+        competence_heatmap(getattr(report, f"by_{level}"), level, plot_path,
+                           accuracy_column="audit_accuracy" if basis == "audit" else "accuracy")
+    if as_json:
+        app.emit_json(report.to_dict())
+        return
+    from .report import render_competence
+
+    app.console.print(render_competence(report, by=by, basis=basis))
+    for label, path in (("table", csv_path), ("plot", plot_path)):
+        if path is not None:
+            app.say(f"Wrote the {label} to {path}")
+
+
 # --------------------------------------------------------------------------- status
 
 

@@ -64,7 +64,7 @@ from scipy import sparse
 from scipy.special import logsumexp
 from sklearn.cluster import KMeans
 from sklearn.preprocessing import StandardScaler
-from sklearn.utils import check_array
+from sklearn.utils import check_array, check_random_state
 
 from routeplan.stats import (
     _normal_interval,
@@ -668,8 +668,9 @@ def _first_answer_matrix(
     case, _ = pd.factorize(answers["case"])
     expert, names = pd.factorize(answers["expert"].astype(str), sort=True)
     matrix = np.full((int(case.max(initial=-1)) + 1, len(names)), -1, dtype=np.int64)
-    # reversed assignment: the earliest answer of a repeated (case, expert) pair wins
-    matrix[case[::-1], expert[::-1]] = answer[::-1]
+    # np.unique returns each key's first occurrence: a repeated pair keeps its first answer
+    _, first = np.unique(case.astype(np.int64) * len(names) + expert, return_index=True)
+    matrix[case[first], expert[first]] = answer[first]
     return matrix, [str(n) for n in names]
 
 
@@ -711,6 +712,18 @@ def agreement_table(answers: pd.DataFrame, n_classes: int) -> pd.DataFrame:
             rows.append((names[i], names[j], n, agree, kappa))
     columns = ["expert_a", "expert_b", "n_shared", "agreement", "kappa"]
     return pd.DataFrame(rows, columns=columns)
+
+
+def _rater_sets(answered: NDArray[np.bool_]) -> tuple[NDArray[np.bool_], NDArray[np.int64]]:
+    """Distinct rows of a boolean (n_cases, M) matrix and each case's set code."""
+    n_cols = answered.shape[1]
+    if n_cols <= 62:
+        bits = answered.astype(np.int64) @ (np.int64(1) << np.arange(n_cols, dtype=np.int64))
+        keys, code = np.unique(bits, return_inverse=True)
+        members = ((keys[:, None] >> np.arange(n_cols)) & 1).astype(bool)
+        return members, code.ravel()
+    members, code = np.unique(answered, axis=0, return_inverse=True)
+    return members, code.ravel()
 
 
 def fleiss_for_shared(
@@ -760,14 +773,14 @@ def fleiss_for_shared(
         matrix = matrix[np.all(matrix >= 0, axis=1)]
     answered = matrix >= 0
     n_raters = answered.sum(axis=1)
-    mask_ids, set_code = np.unique(answered, axis=0, return_inverse=True)
+    mask_ids, set_code = _rater_sets(answered)
     counts = np.zeros((matrix.shape[0], k), dtype=np.int64)
     for j in range(matrix.shape[1]):
         ok = answered[:, j]
         counts[np.flatnonzero(ok), matrix[ok, j]] += 1
     rows = []
     for s, members in enumerate(mask_ids):
-        idx = np.flatnonzero(set_code.ravel() == s)
+        idx = np.flatnonzero(set_code == s)
         if members.sum() < max(min_raters, 2) or idx.size < max(min_cases, 1):
             continue
         joined = ", ".join(n for n, m in zip(names, members) if m)
@@ -799,6 +812,8 @@ class DawidSkeneResult:
         Most probable class of each case.
     n_answers : ndarray of shape (M,)
         Answers each expert gave.
+    fixed : ndarray of bool of shape (n_cases,)
+        Cases whose class was fixed by known truth.
     n_iter : int
         EM iterations run.
     converged : bool
@@ -814,6 +829,7 @@ class DawidSkeneResult:
     posterior: NDArray[np.float64]
     most_likely: NDArray[np.int64]
     n_answers: NDArray[np.int64]
+    fixed: NDArray[np.bool_]
     n_iter: int
     converged: bool
     log_likelihood: float
@@ -849,7 +865,9 @@ def _ds_m_step(
     """Class prior and confusion matrices from posteriors (with additive smoothing)."""
     prior = (post.sum(axis=0) + smoothing) / (post.shape[0] + k * smoothing)
     joint = np.asarray(counts.T @ post).reshape(n_experts, k, k).transpose(0, 2, 1) + smoothing
-    return prior, joint / joint.sum(axis=2, keepdims=True)
+    totals = joint.sum(axis=2, keepdims=True)
+    # a class an expert never saw (possible without smoothing) gets a uniform row
+    return prior, np.where(totals > 0, joint / np.where(totals > 0, totals, 1.0), 1.0 / k)
 
 
 def _ds_log_joint(
@@ -857,8 +875,17 @@ def _ds_log_joint(
 ) -> NDArray[np.float64]:
     """log p(class) + log p(answers | class), shape (n_cases, K)."""
     m, k, _ = conf.shape
-    log_conf = np.log(conf).transpose(0, 2, 1).reshape(m * k, k)
-    return np.log(prior)[None, :] + np.asarray(counts @ log_conf)
+    with np.errstate(divide="ignore"):  # zero rates (smoothing=0) give -inf, as they should
+        log_conf = np.log(conf).transpose(0, 2, 1).reshape(m * k, k)
+        return np.log(prior)[None, :] + np.asarray(counts @ log_conf)
+
+
+def _normalise_log(log_joint: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Row-wise softmax of log weights (uniform where every weight is zero)."""
+    top = log_joint.max(axis=1, keepdims=True)
+    post = np.exp(log_joint - np.where(np.isfinite(top), top, 0.0))
+    total = post.sum(axis=1, keepdims=True)
+    return np.where(total > 0, post / np.where(total > 0, total, 1.0), 1.0 / post.shape[1])
 
 
 def _clamp(post: NDArray[np.float64], known: NDArray[np.int64]) -> NDArray[np.float64]:
@@ -930,7 +957,7 @@ def dawid_skene(
     converged, n_iter = False, 0
     for n_iter in range(1, max_iter + 1):
         log_joint = _ds_log_joint(counts, prior, conf)
-        post = _clamp(np.exp(log_joint - logsumexp(log_joint, axis=1, keepdims=True)), known)
+        post = _clamp(_normalise_log(log_joint), known)
         new_prior, new_conf = _ds_m_step(counts, post, len(names), k, smoothing)
         change = max(np.abs(new_prior - prior).max(), np.abs(new_conf - conf).max())
         prior, conf = new_prior, new_conf
@@ -938,11 +965,11 @@ def dawid_skene(
             converged = True
             break
     log_joint = _ds_log_joint(counts, prior, conf)
-    post = _clamp(np.exp(log_joint - logsumexp(log_joint, axis=1, keepdims=True)), known)
+    post = _clamp(_normalise_log(log_joint), known)
     return DawidSkeneResult(
         experts=names, cases=case_ids, class_prior=prior, confusion=conf, posterior=post,
         most_likely=post.argmax(axis=1).astype(np.int64), n_answers=n_answers,
-        n_iter=n_iter, converged=converged,
+        fixed=known >= 0, n_iter=n_iter, converged=converged,
         log_likelihood=_ds_log_likelihood(log_joint, known),
     )
 
@@ -980,13 +1007,20 @@ def latent_accuracy_table(result: DawidSkeneResult) -> pd.DataFrame:
 
 
 def regions_from_features(
-    X: ArrayLike, n_regions: int = 6, random_state: int | np.random.Generator | None = 0
+    X: ArrayLike,
+    n_regions: int = 6,
+    random_state: int | np.random.RandomState | np.random.Generator | None = 0,
+    *,
+    fit_size: int = 50_000,
 ) -> NDArray[np.int64]:
     """Cluster cases into regions of the feature space for the per-region tables.
 
     k-means (Lloyd, IEEE Trans. Inf. Theory 1982; k-means++ seeding, Arthur and
     Vassilvitskii, SODA 2007, through scikit-learn) on features standardised to zero
-    mean and unit variance, so that no feature dominates by its unit.
+    mean and unit variance, so that no feature dominates by its unit. With more than
+    ``fit_size`` cases the centres are fitted on a seeded random subset of that size
+    and every case goes to its nearest centre (regions are coarse; the subset keeps
+    the cost flat).
 
     Parameters
     ----------
@@ -994,8 +1028,11 @@ def regions_from_features(
         Case features; finite.
     n_regions : int, default=6
         Number of regions; at most n_cases.
-    random_state : int, Generator or None, default=0
-        Seed of the k-means initialisation; fixed by default so the regions are stable.
+    random_state : int, RandomState, Generator or None, default=0
+        Seed of the subset and of the k-means initialisation; fixed by default so
+        the regions are stable from run to run.
+    fit_size : int, default=50_000
+        Largest number of cases the centres are fitted on.
 
     Returns
     -------
@@ -1003,13 +1040,18 @@ def regions_from_features(
         Region code 0..n_regions-1 of each case.
     """
     data = check_array(X, dtype=np.float64)
-    if int(n_regions) != n_regions or not 1 <= n_regions <= data.shape[0]:
-        raise ValueError(f"n_regions must be an integer in 1..{data.shape[0]}, got {n_regions!r}")
+    n = data.shape[0]
+    if int(n_regions) != n_regions or not 1 <= n_regions <= n:
+        raise ValueError(f"n_regions must be an integer in 1..{n}, got {n_regions!r}")
+    if int(fit_size) != fit_size or fit_size < n_regions:
+        raise ValueError(f"fit_size must be an integer >= n_regions, got {fit_size!r}")
     if isinstance(random_state, np.random.Generator):
         random_state = int(random_state.integers(2**31 - 1))
+    rng = check_random_state(random_state)
     scaled = StandardScaler().fit_transform(data)
-    km = KMeans(n_clusters=int(n_regions), n_init=4, random_state=random_state)
-    return km.fit_predict(scaled).astype(np.int64)
+    subset = scaled if n <= fit_size else scaled[rng.choice(n, int(fit_size), replace=False)]
+    km = KMeans(n_clusters=int(n_regions), n_init=4, random_state=rng).fit(subset)
+    return km.predict(scaled).astype(np.int64)
 
 
 def region_summary(
@@ -1143,7 +1185,7 @@ class CompetenceReport:
             "log_likelihood": _jsonable(res.log_likelihood),
         }
         if include_cases:
-            unknown = res.posterior.max(axis=1) < 1.0
+            unknown = ~res.fixed
             out["cases"] = [
                 {"case": _jsonable(c), "most_likely": int(m), "probability": float(p)}
                 for c, m, p in zip(res.cases[unknown], res.most_likely[unknown],
@@ -1216,4 +1258,43 @@ confidence, max_width
         agreement=agreement_table(answers, k), fleiss=fleiss_for_shared(answers, k),
         latent=result, latent_accuracy=None if result is None else latent_accuracy_table(result),
         settings={**opts, "bases": dict(BASES)},
+    )
+
+
+def pool_competence(pool: Any, *, model_pred: ArrayLike | None = None, n_regions: int = 6,
+                    random_state: int = 0, latent: str | bool = "auto") -> CompetenceReport:
+    """Every competence table for a workspace's :class:`routeplan.pool.Pool`.
+
+    Parameters
+    ----------
+    pool : routeplan.pool.Pool
+    model_pred : array-like of shape (n_cases,), optional
+        The model's class per case, -1 where it should not be scored (cases it was trained on).
+    n_regions : int, default=6
+        Regions of the feature space (k-means on standardised features).
+    random_state : int, default=0
+        Seed of the k-means.
+    latent : {"auto", True, False}, default="auto"
+        Run Dawid-Skene (see :func:`competence_report`).
+
+    Returns
+    -------
+    CompetenceReport
+    """
+    answers = pool.long_answers()
+    groups = pool.group
+    has_group = groups is not None and any(g is not None for g in groups)
+    n_regions = max(1, min(int(n_regions), len(pool.y)))
+    region = regions_from_features(pool.X, n_regions=n_regions, random_state=random_state) if len(pool.y) else None
+    return competence_report(
+        answers,
+        pool.y,
+        labels=list(pool.labels),
+        n_classes=pool.n_classes,
+        fees=dict(zip(pool.experts, map(float, pool.fees))),
+        model_pred=model_pred,
+        error_cost=pool.error_cost,
+        group=np.array([g if g is not None else "(none)" for g in groups], dtype=object) if has_group else None,
+        region=region,
+        latent=latent,
     )

@@ -18,7 +18,6 @@ import csv
 import hashlib
 import io
 import json
-import math
 import re
 from dataclasses import dataclass
 from pathlib import Path
@@ -50,34 +49,46 @@ class Table:
     Attributes
     ----------
     frame : pandas.DataFrame
-        The cells as text (``None`` where empty), columns as in the header.
+        The records. Text columns hold stripped strings (missing where empty); columns that
+        parsed as numbers hold float64 (NaN where empty or not a number).
     source : str
         The file's name as the user gave it, for messages.
     sha256 : str
         Hex digest of the file's bytes.
-    first_line : int
-        Line (CSV) or row (Parquet) number of the frame's first record.
     is_text : bool
         True for CSV: messages say "line"; False for Parquet: they say "row".
-    numeric : dict
-        For Parquet, columns that are already numeric (kept as float arrays).
+    numeric : dict of str to ndarray
+        float64 values of the columns that parsed as numbers.
+    empty : dict of str to ndarray
+        Boolean masks of empty cells, per column.
+    lines : ndarray or None
+        Line number of each record where blank lines make it differ from position + 2.
     """
 
     frame: pd.DataFrame
     source: str
     sha256: str
-    first_line: int
     is_text: bool
     numeric: dict
+    empty: dict
+    lines: np.ndarray | None = None
 
     def line_of(self, position: int) -> int:
-        """Line (or row) number of the record at 0-based ``position``."""
-        return self.first_line + int(position)
+        """Line (CSV; the header is line 1) or row (Parquet) of the record at 0-based ``position``."""
+        if self.lines is not None:
+            return int(self.lines[position])
+        return int(position) + (2 if self.is_text else 1)
 
     def fail(self, message: str, position: int | None = None) -> InputError:
         """Build the :class:`InputError` for a record (or for the whole file)."""
         line = None if position is None else self.line_of(position)
         return InputError(message, source=self.source, line=line)
+
+    def renamed(self, mapping: dict[str, str]) -> "Table":
+        """The same table with columns renamed."""
+        rename = lambda d: {mapping.get(k, k): v for k, v in d.items()}  # noqa: E731
+        return Table(self.frame.rename(columns=mapping), self.source, self.sha256, self.is_text,
+                     rename(self.numeric), rename(self.empty), self.lines)
 
 
 def file_sha256(path: str | Path) -> str:
@@ -89,13 +100,16 @@ def file_sha256(path: str | Path) -> str:
     return digest.hexdigest()
 
 
-def read_table(path: str | Path) -> Table:
+def read_table(path: str | Path, *, text_columns: tuple[str, ...] = ()) -> Table:
     """Read a CSV or Parquet file into a :class:`Table`.
 
     Parameters
     ----------
     path : str or Path
-        A ``.csv`` (UTF-8, comma separated, header on line 1) or ``.parquet`` file.
+        A ``.parquet`` file, or a CSV file (UTF-8, comma separated, header on line 1, one
+        record per line).
+    text_columns : tuple of str, default=()
+        Columns to keep as text even where they look like numbers (ids, labels, names).
 
     Returns
     -------
@@ -114,22 +128,67 @@ def read_table(path: str | Path) -> Table:
     data = path.read_bytes()
     sha = hashlib.sha256(data).hexdigest()
     if path.suffix.lower() in (".parquet", ".pq"):
-        frame, numeric = _read_parquet(data, source)
-        table = Table(frame, source, sha, 1, False, numeric)
+        arrow, is_text, lines = _read_parquet(data, source), False, None
     else:
-        frame = _read_csv(data, source)
-        table = Table(frame, source, sha, 2, True, {})
+        arrow, lines = _read_csv(data, source, text_columns)
+        is_text = True
+    table = _to_table(arrow, source, sha, is_text, lines, text_columns)
     _check_header(table)
     if len(table.frame) == 0:
         raise InputError("the file has a header but no records", source=source)
     return table
 
 
-def _read_csv(data: bytes, source: str) -> pd.DataFrame:
+def _read_csv(data: bytes, source: str, text_columns: tuple[str, ...]):
+    import pyarrow as pa
+    import pyarrow.csv as pacsv
+
     if not data.strip():
         raise InputError("the file is empty", source=source)
+    if b"\x00" in data:
+        line = data[: data.index(b"\x00")].count(b"\n") + 1
+        raise InputError("the file contains a NUL character", source=source, line=line)
+    _check_utf8(data[: data.find(b"\n") if b"\n" in data else len(data)], source)
+    header = data.split(b"\n", 1)[0].decode("utf-8").lstrip("\ufeff")
+    names = [n.strip() for n in next(csv.reader([header]), [])]
+    invalid: list = []
+
+    def on_invalid(row) -> str:
+        invalid.append(row)
+        return "skip"
+
     try:
-        text = data.decode("utf-8")
+        arrow = pacsv.read_csv(
+            pa.BufferReader(data),
+            read_options=pacsv.ReadOptions(encoding="utf8"),
+            parse_options=pacsv.ParseOptions(invalid_row_handler=on_invalid),
+            convert_options=pacsv.ConvertOptions(
+                null_values=[""],
+                strings_can_be_null=True,
+                quoted_strings_can_be_null=True,
+                column_types={raw: pa.string() for raw in _raw_names(header) if raw.strip() in text_columns},
+            ),
+        )
+    except (pa.ArrowInvalid, pa.ArrowException, ValueError) as exc:
+        _check_utf8(data, source)
+        _check_csv_shape(data.decode("utf-8"), source)
+        raise InputError(f"cannot parse the CSV: {_first_line(exc)}", source=source) from None
+    if any(pa.types.is_binary(t) or pa.types.is_large_binary(t) for t in arrow.schema.types):
+        _check_utf8(data, source)
+    if invalid:
+        _check_utf8(data, source)
+        _check_csv_shape(data.decode("utf-8"), source)
+        raise InputError(f"cannot parse the record {invalid[0].text[:60]!r}", source=source)
+    arrow = arrow.rename_columns([n.strip() for n in arrow.column_names])
+    if len(names) != arrow.num_columns:
+        raise InputError("cannot parse the header", source=source, line=1)
+    return arrow, _record_lines(data, arrow.num_rows)
+
+
+def _check_utf8(data: bytes, source: str) -> None:
+    """Name the line of the first byte that is not UTF-8 (only after a parse error)."""
+    try:
+        data.decode("utf-8")
     except UnicodeDecodeError as exc:
         line = data[: exc.start].count(b"\n") + 1
         raise InputError(
@@ -137,33 +196,30 @@ def _read_csv(data: bytes, source: str) -> pd.DataFrame:
             source=source,
             line=line,
         ) from None
-    if text.startswith("\ufeff"):
-        text = text[1:]
-    if "\x00" in text:
-        line = text[: text.index("\x00")].count("\n") + 1
-        raise InputError("the file contains a NUL character", source=source, line=line)
-    _check_csv_shape(text, source)
-    try:
-        frame = pd.read_csv(
-            io.StringIO(text),
-            dtype=str,
-            keep_default_na=False,
-            na_filter=False,
-            skip_blank_lines=True,
-            engine="c",
-        )
-    except (pd.errors.ParserError, pd.errors.EmptyDataError, ValueError, csv.Error) as exc:
-        raise InputError(f"cannot parse the CSV: {_first_line(exc)}", source=source) from None
-    frame.columns = [str(c).strip() for c in frame.columns]
-    if len(frame) == 0:
-        return frame
-    frame = frame.apply(lambda col: col.str.strip())
-    return frame.mask(frame == "")
+
+
+def _raw_names(header: str) -> list[str]:
+    return next(csv.reader([header]), [])
+
+
+def _record_lines(data: bytes, n_records: int) -> np.ndarray | None:
+    """Line numbers of the records when blank lines are present (else None: line = position + 2)."""
+    if b"\n\n" not in data and b"\n\r\n" not in data:
+        return None
+    raw = np.frombuffer(data, dtype=np.uint8)
+    ends = np.flatnonzero(raw == 10)
+    starts = np.concatenate(([0], ends + 1))[: len(ends) + 1]
+    stops = np.concatenate((ends, [len(raw)]))
+    lengths = stops - starts
+    blank = lengths == 0
+    cr = (lengths == 1) & (raw[np.minimum(starts, len(raw) - 1)] == 13)
+    content = np.flatnonzero(~(blank | cr)) + 1
+    return content[1 : 1 + n_records]
 
 
 def _check_csv_shape(text: str, source: str) -> None:
-    """Check quoting and field counts with the csv module, naming the first bad line."""
-    reader = csv.reader(io.StringIO(text), strict=True)
+    """Find the first malformed line with the csv module (slow; only after a parse error)."""
+    reader = csv.reader(io.StringIO(text.lstrip("\ufeff")), strict=True)
     try:
         header = next(reader)
     except StopIteration:
@@ -171,48 +227,53 @@ def _check_csv_shape(text: str, source: str) -> None:
     except csv.Error as exc:
         raise InputError(f"cannot parse the header: {exc}", source=source, line=1) from None
     width = len(header)
-    line = 1
     try:
         for row in reader:
-            line = reader.line_num
             if row and len(row) != width and any(cell.strip() for cell in row):
-                raise InputError(
-                    f"{len(row)} fields where the header has {width}", source=source, line=line
-                )
+                raise InputError(f"{len(row)} fields where the header has {width}", source=source, line=reader.line_num)
+            if any("\n" in cell or "\r" in cell for cell in row):
+                raise InputError("a value spans several lines; put one record per line", source=source, line=reader.line_num)
     except csv.Error as exc:
         raise InputError(f"cannot parse the CSV: {exc}", source=source, line=reader.line_num) from None
 
 
-def _read_parquet(data: bytes, source: str) -> tuple[pd.DataFrame, dict]:
+def _read_parquet(data: bytes, source: str):
     import pyarrow as pa
     import pyarrow.parquet as pq
 
     try:
-        arrow = pq.read_table(pa.BufferReader(data))
+        return pq.read_table(pa.BufferReader(data))
     except Exception as exc:  # pyarrow raises several types for damaged files
         raise InputError(f"cannot read the Parquet file: {_first_line(exc)}", source=source) from None
-    frame = arrow.to_pandas()
-    numeric = {}
-    cells = {}
-    for name in frame.columns:
-        column = frame[name]
-        if pd.api.types.is_numeric_dtype(column) and not pd.api.types.is_bool_dtype(column):
-            numeric[str(name)] = column.to_numpy(dtype=np.float64)
-            cells[str(name)] = column.map(_number_text).astype(object)
-        else:
-            cells[str(name)] = column.map(lambda v: None if _is_missing(v) else str(v).strip() or None)
-    out = pd.DataFrame(cells, columns=[str(c) for c in frame.columns])
-    return out.astype(object), numeric
 
 
-def _number_text(value: Any) -> str | None:
-    if _is_missing(value):
-        return None
-    return repr(float(value)) if isinstance(value, float) else str(value)
+def _to_table(arrow, source: str, sha: str, is_text: bool, lines, text_columns: tuple[str, ...]) -> Table:
+    """Turn an Arrow table into a :class:`Table`: numbers as float64, everything else as stripped text."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
 
-
-def _is_missing(value: Any) -> bool:
-    return value is None or (isinstance(value, float) and math.isnan(value)) or value is pd.NA
+    cells: dict[str, Any] = {}
+    numeric: dict[str, np.ndarray] = {}
+    empty: dict[str, np.ndarray] = {}
+    for name, column in zip(arrow.column_names, arrow.columns):
+        name = str(name)
+        kind = column.type
+        is_number = (pa.types.is_integer(kind) or pa.types.is_floating(kind)) and name not in text_columns
+        if is_number:
+            values = column.cast(pa.float64()).to_numpy(zero_copy_only=False)
+            missing = column.is_null().to_numpy(zero_copy_only=False)
+            numeric[name] = values
+            empty[name] = missing
+            cells[name] = values
+            continue
+        if not pa.types.is_string(kind) and not pa.types.is_large_string(kind):
+            column = pc.cast(column, pa.string()) if not pa.types.is_null(kind) else column.cast(pa.string())
+        column = pc.utf8_trim_whitespace(column)
+        column = pc.if_else(pc.equal(column, ""), pa.scalar(None, pa.string()), column)
+        empty[name] = column.is_null().to_numpy(zero_copy_only=False)
+        cells[name] = pd.Series(column.to_numpy(zero_copy_only=False), dtype=object)
+    frame = pd.DataFrame(cells, columns=[str(n) for n in arrow.column_names])
+    return Table(frame, source, sha, is_text, numeric, empty, lines)
 
 
 def _check_header(table: Table) -> None:
@@ -324,7 +385,7 @@ def _check_column(table: Table, name: str, rule: dict, parsed: dict) -> tuple[in
     """Return (position, message) of the column's first problem, or None."""
     cells = table.frame[name]
     kinds = _types(rule)
-    empty = cells.isna().to_numpy()
+    empty = table.empty[name] if name in table.empty else cells.isna().to_numpy()
     if "null" not in kinds and empty.any():
         return int(np.argmax(empty)), f"column '{name}' is empty"
     present = ~empty
@@ -333,19 +394,21 @@ def _check_column(table: Table, name: str, rule: dict, parsed: dict) -> tuple[in
         bad = present & ~np.isfinite(values)
         if bad.any():
             at = int(np.argmax(bad))
-            return at, f"column '{name}' holds {cells.iloc[at]!r}, not a finite number"
+            shown = cells.iloc[at] if name not in table.numeric else f"{values[at]}"
+            return at, f"column '{name}' holds {shown!r}, not a finite number"
         parsed[name] = values
         return _check_bounds(name, values, present, rule)
-    text = cells.where(present, "")
+    if name in table.numeric:
+        text = pd.Series([format(v, "g") for v in table.numeric[name]], dtype=object)
+    else:
+        text = cells.where(present, "")
     return _check_text(name, text, present, rule)
 
 
 def _parse_numbers(table: Table, name: str) -> np.ndarray:
     if name in table.numeric:
         return table.numeric[name]
-    cells = table.frame[name]
-    values = pd.to_numeric(cells, errors="coerce").to_numpy(dtype=np.float64)
-    return values
+    return pd.to_numeric(table.frame[name], errors="coerce").to_numpy(dtype=np.float64)
 
 
 def _check_bounds(name: str, values: np.ndarray, present: np.ndarray, rule: dict) -> tuple[int, str] | None:

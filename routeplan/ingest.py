@@ -9,10 +9,11 @@ before anything is written.
 
 from __future__ import annotations
 
+import itertools
 import json
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Sequence
+from typing import Iterator, Sequence
 
 import numpy as np
 import pandas as pd
@@ -80,12 +81,6 @@ class ImportResult:
 # --------------------------------------------------------------------------- shared checks
 
 
-def _rename(table: Table, mapping: dict[str, str]) -> Table:
-    frame = table.frame.rename(columns=mapping)
-    return Table(frame, table.source, table.sha256, table.first_line, table.is_text,
-                 {mapping.get(k, k): v for k, v in table.numeric.items()})
-
-
 def _first_duplicate(values: pd.Series) -> tuple[int, int] | None:
     """(position of a repeat, position of its first occurrence), or None."""
     dup = values.duplicated(keep="first").to_numpy()
@@ -147,7 +142,7 @@ def import_cases(
     -------
     ImportResult
     """
-    table = read_table(path)
+    table = read_table(path, text_columns=tuple(c for c in (id_column, truth_column or "truth", group_column) if c))
     result = ImportResult("cases", table.source)
     if ws.seen_input("cases import", table.sha256):
         result.no_op = True
@@ -171,7 +166,7 @@ def import_cases(
     clash = [c for c in ("case_id", "truth", "group") if c in columns and c not in mapping]
     if clash:
         raise InputError(f"column '{clash[0]}' is reserved; rename it or map it with an option", source=table.source, line=1)
-    table = _rename(table, mapping)
+    table = table.renamed(mapping)
     features = _choose_features(ws, table, feature_columns)
     parsed = check_rows(table, load_schema("cases-row"), numeric_columns=tuple(features))
     frame = table.frame
@@ -185,12 +180,11 @@ def import_cases(
     if stored:
         at = int(np.argmax(frame["case_id"].isin(stored).to_numpy()))
         raise table.fail(f"case_id {frame['case_id'].iloc[at]!r} is already in the workspace", at)
-    X = np.column_stack([parsed[name] for name in features]).astype("<f8")
-    rows = _case_rows(frame, X, features, ws.next_batch())
+    X = np.column_stack([parsed.pop(name) for name in features]).astype("<f8", copy=False)
     with ws.transaction():
         if not ws.feature_columns:
             ws.set_feature_columns(features)
-        ws.add_cases(rows)
+        ws.add_cases(_case_rows(frame, X, features, ws.next_batch()))
         ws.log("cases import", {"rows": len(frame), "features": features}, input_file=table.source, input_sha256=table.sha256)
     result.rows = result.added = len(frame)
     result.notes = {
@@ -213,11 +207,11 @@ def _choose_features(ws: Workspace, table: Table, requested: Sequence[str] | Non
         return wanted
     chosen = []
     for name in candidates:
-        cells = frame[name]
-        present = cells.notna().to_numpy()
         if name in table.numeric:
             chosen.append(name)
             continue
+        cells = frame[name]
+        present = ~table.empty[name]
         numbers = pd.to_numeric(cells, errors="coerce").notna().to_numpy()
         if present.any() and (numbers | ~present).all():
             chosen.append(name)
@@ -229,19 +223,19 @@ def _choose_features(ws: Workspace, table: Table, requested: Sequence[str] | Non
     return chosen
 
 
-def _case_rows(frame: pd.DataFrame, X: np.ndarray, features: list[str], batch: int) -> list[tuple]:
+def _case_rows(frame: pd.DataFrame, X: np.ndarray, features: list[str], batch: int) -> Iterator[tuple]:
+    """Rows for the cases table, made one at a time (a million cases stay light)."""
     display_cols = [c for c in frame.columns if c not in ("case_id", "truth", "group") and c not in features]
     n = len(frame)
     truth = frame["truth"].tolist() if "truth" in frame.columns else [None] * n
     group = frame["group"].tolist() if "group" in frame.columns else [None] * n
     if display_cols:
         records = frame[display_cols].to_dict(orient="records")
-        display = [json.dumps({k: v for k, v in r.items() if v is not None and v == v}) for r in records]
+        display = (json.dumps({k: v for k, v in r.items() if v is not None and v == v}) for r in records)
     else:
-        display = [None] * n
-    blobs = [row.tobytes() for row in X]
-    ids = frame["case_id"].tolist()
-    return list(zip(ids, _none(truth), _none(group), blobs, display, [batch] * n))
+        display = itertools.repeat(None, n)
+    blobs = (row.tobytes() for row in X)
+    return zip(frame["case_id"].tolist(), _none(truth), _none(group), blobs, display, itertools.repeat(batch, n))
 
 
 def _none(values: list) -> list:
@@ -265,7 +259,7 @@ def import_truth(ws: Workspace, path: str | Path, *, replace: bool = False) -> I
     -------
     ImportResult
     """
-    table = read_table(path)
+    table = read_table(path, text_columns=("case_id", "truth"))
     result = ImportResult("truth", table.source)
     if ws.seen_input("truth import", table.sha256):
         result.no_op = True
@@ -326,7 +320,7 @@ def import_experts(ws: Workspace, path: str | Path) -> ImportResult:
     -------
     ImportResult
     """
-    table = read_table(path)
+    table = read_table(path, text_columns=("name",))
     result = ImportResult("experts", table.source)
     if ws.seen_input("experts import", table.sha256):
         result.no_op = True
@@ -358,7 +352,7 @@ def add_expert(ws: Workspace, name: str, *, fee: float, capacity: float = 1.0) -
         Largest share of routed cases the expert may take, in [0, 1].
     """
     frame = pd.DataFrame({"name": [name], "fee": [repr(float(fee))], "capacity": [repr(float(capacity))]}, dtype=object)
-    table = Table(frame, "command line", "", 1, False, {})
+    table = Table(frame, "command line", "", False, {}, {})
     try:
         check_rows(table, load_schema("experts-row"))
     except InputError as exc:
@@ -412,7 +406,7 @@ def import_answers(ws: Workspace, paths: Sequence[str | Path], *, strict: bool =
     labels = ws.labels
     experts = {e["name"] for e in ws.experts()}
     for path in paths:
-        table = read_table(path)
+        table = read_table(path, text_columns=("case_id", "expert", "answer"))
         result = ImportResult("answers", table.source)
         if ws.seen_input("answers import", table.sha256):
             result.no_op = True

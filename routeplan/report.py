@@ -52,3 +52,100 @@ def render_status(info: dict) -> Group:
                           str(r["assignments"]), str(r["answered"]), str(r["open"]))
         parts.append(table)
     return Group(*parts)
+
+
+def _interval(value: float, low: float, high: float, fmt: str = "{:.2f}") -> str:
+    if value != value:  # nan
+        return "-"
+    return f"{fmt.format(value)} [{fmt.format(low)}, {fmt.format(high)}]"
+
+
+def _accuracy_table(frame, title: str, level: str | None, basis: str) -> Table:
+    prefix = "audit_" if basis == "audit" else ""
+    table = Table(title=title, title_justify="left")
+    table.add_column("expert", overflow="fold")
+    if level:
+        table.add_column(level, overflow="fold")
+    table.add_column("answers", justify="right")
+    table.add_column("scored", justify="right")
+    table.add_column("accuracy (95% CI)", justify="right")
+    table.add_column("kappa", justify="right")
+    table.add_column("saved/fee (95% CI)", justify="right")
+    table.add_column("note", overflow="fold")
+    for row in frame.to_dict(orient="records"):
+        wide = bool(row.get(prefix + "too_wide"))
+        cells = [str(row["expert"])] + ([str(row[level])] if level else [])
+        n_scored = row.get(prefix + "n_scored", 0)
+        cells += [
+            str(int(row["n_answered"])),
+            str(int(n_scored)) if n_scored == n_scored else "0",
+            _interval(row[prefix + "accuracy"], row[prefix + "accuracy_low"], row[prefix + "accuracy_high"]),
+            "-" if row[prefix + "kappa"] != row[prefix + "kappa"] else f"{row[prefix + 'kappa']:.2f}",
+            _interval(row[prefix + "value_per_fee"], row[prefix + "value_low"], row[prefix + "value_high"], "{:.1f}"),
+            "too few to act on" if wide else "",
+        ]
+        table.add_row(*cells, style="dim" if wide else None)
+    return table
+
+
+def render_competence(report, *, by: str | None = None, basis: str = "truth") -> Group:
+    """Render a :class:`routeplan.competence.CompetenceReport` as rich tables.
+
+    Parameters
+    ----------
+    report : CompetenceReport
+    by : {None, "class", "group", "region"}
+        Which breakdown to show beside the overall table.
+    basis : {"truth", "audit"}
+        Which answers the accuracy figures rest on (see ``routeplan.competence.BASES``).
+
+    Returns
+    -------
+    rich.console.Group
+    """
+    from .competence import BASES
+
+    parts: list = []
+    note = Text()
+    note.append(f"Basis: {basis}: {BASES[basis]}.\n")
+    note.append("saved/fee: expected wrong decisions saved per unit of fee, against letting the model decide "
+                "(on the same cases; model row: held-out cases only).")
+    parts.append(note)
+    parts.append(_accuracy_table(report.accuracy, "Competence", None, basis))
+    if by:
+        frame = getattr(report, f"by_{by}")
+        if frame is not None and len(frame):
+            parts.append(_accuracy_table(frame, f"Competence by {by}", by, basis))
+    per_class = report.per_class
+    if per_class is not None and len(per_class):
+        table = Table(title="Per class (truth basis)", title_justify="left")
+        for name in ("expert", "class", "support", "recall (95% CI)", "precision (95% CI)"):
+            table.add_column(name, justify="left" if name in ("expert", "class") else "right", overflow="fold")
+        for row in per_class.to_dict(orient="records"):
+            table.add_row(str(row["expert"]), str(row["class"]), str(int(row["support"])),
+                          _interval(row["recall"], row["recall_low"], row["recall_high"]),
+                          _interval(row["precision"], row["precision_low"], row["precision_high"]))
+        parts.append(table)
+    if report.agreement is not None and len(report.agreement):
+        table = Table(title="Agreement between experts (Cohen's kappa, shared cases)", title_justify="left")
+        for name in ("expert", "expert", "shared", "agreement", "kappa"):
+            table.add_column(name, justify="left" if name == "expert" else "right", overflow="fold")
+        for row in report.agreement.to_dict(orient="records"):
+            table.add_row(str(row["expert_a"]), str(row["expert_b"]), str(int(row["n_shared"])),
+                          f"{row['agreement']:.2f}", "-" if row["kappa"] != row["kappa"] else f"{row['kappa']:.2f}")
+        parts.append(table)
+    if report.fleiss is not None and len(report.fleiss):
+        text = Text("Fleiss' kappa where three or more experts answered the same cases:\n")
+        for row in report.fleiss.to_dict(orient="records"):
+            text.append(f"  {row['experts']}: {row['kappa']:.2f} on {int(row['n_cases'])} cases\n")
+        parts.append(text)
+    if report.latent is not None and report.latent_accuracy is not None:
+        latent = report.latent
+        text = Text("Latent truth (Dawid-Skene EM; known truth held fixed):\n")
+        shares = ", ".join(f"{label} {p:.2f}" for label, p in zip(report.labels, latent.class_prior))
+        text.append(f"  class proportions: {shares}\n")
+        for row in report.latent_accuracy.to_dict(orient="records"):
+            text.append(f"  {row['expert']}: estimated accuracy {row['latent_accuracy']:.2f} "
+                        f"from {int(row['n_answers'])} answers\n")
+        parts.append(text)
+    return Group(*parts)

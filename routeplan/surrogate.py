@@ -1,10 +1,13 @@
 """Surrogate losses for learning to defer, as pure functions of tensors.
 
 Every loss takes the scores ``logits`` of shape (n, K + M) of the ``K`` classes and the
-``M`` experts, and the option costs ``costs`` of the same shape (see
-:mod:`routeplan.costs`; impute missing expert costs first, no NaN allowed). The
-decision of a scorer is ``argmax logits``: a class (the model decides) or expert ``j``
-(column ``K + j``).
+``M`` experts. The cost-form losses (:func:`softmax_cost_surrogate`,
+:func:`one_vs_all_surrogate`) take the option costs ``costs`` of the same shape (see
+:mod:`routeplan.costs`; impute missing expert costs first, no NaN allowed), and the
+decision of a scorer trained by them is ``argmax logits``: a class (the model decides)
+or expert ``j`` (column ``K + j``). :func:`asymmetric_softmax_surrogate` takes the truth
+and each expert's correctness instead and yields probabilities, to be turned into
+decisions with :func:`routeplan.costs.expected_cost_vectors`.
 """
 
 from __future__ import annotations
@@ -113,13 +116,18 @@ def one_vs_all_surrogate(
     ``s(g_r) = 1 - E[c_r | x] / B``, so ``argmax g`` is the option of least expected
     cost (consistency) and ``B (1 - s(g_r))`` estimates its expected cost
     (:func:`ova_expected_costs`). Keep ``B`` fixed across batches (e.g. the largest
-    error cost plus the largest fee); targets outside [0, 1] are refused.
+    error cost plus the largest fee).
+
+    Like :func:`softmax_cost_surrogate`, the loss is linear in the costs, so costs
+    corrected by inverse-probability or doubly robust weighting (which may leave
+    ``[0, B]``) keep its expectation unbiased; a single case's loss is then unbounded
+    below, so use such costs with a bounded scorer or enough cases per batch.
 
     Parameters
     ----------
     logits : Tensor of shape (n, K + M)
     costs : Tensor of shape (n, K + M)
-        Option costs, finite, in ``[0, cost_scale]``.
+        Option costs, finite; realised costs lie in ``[0, cost_scale]``.
     weights : Tensor of shape (n,), optional
         Per-case weights.
     n_classes : int
@@ -321,8 +329,6 @@ def _cost_scale(costs: Tensor, cost_scale: float | None) -> float:
         return max(1.0, float(costs.max())) if costs.numel() else 1.0
     if not cost_scale > 0:
         raise ValueError(f"cost_scale must be > 0, got {cost_scale!r}")
-    if costs.numel() and (float(costs.min()) < 0 or float(costs.max()) > cost_scale * (1 + 1e-9)):
-        raise ValueError("costs must lie in [0, cost_scale] for the one-vs-all targets")
     return float(cost_scale)
 
 

@@ -462,6 +462,51 @@ class Workspace:
         frame["audit"] = frame["audit"].astype(bool)
         return frame
 
+    # ------------------------------------------------------------------ models
+
+    def add_model(self, kind: str, params: dict, metrics: dict, arrays: dict[str, np.ndarray], *, chosen: bool) -> int:
+        """Store a fitted model as named arrays plus JSON (call inside :meth:`transaction`); returns its id."""
+        if chosen:
+            self.db.conn.execute("UPDATE models SET chosen = 0 WHERE chosen = 1")
+        cursor = self.db.conn.execute(
+            "INSERT INTO models (created_at, kind, params, metrics, chosen) VALUES (?, ?, ?, ?, ?)",
+            (_now(), kind, json.dumps(params, sort_keys=True), json.dumps(metrics, sort_keys=True), int(chosen)),
+        )
+        model_id = int(cursor.lastrowid)
+        self.db.conn.executemany(
+            "INSERT INTO model_arrays VALUES (?, ?, ?, ?, ?)",
+            [(model_id, name, str(a.dtype), json.dumps(list(a.shape)), np.ascontiguousarray(a).tobytes())
+             for name, a in arrays.items()],
+        )
+        return model_id
+
+    def models(self) -> list[dict]:
+        """Stored models (id, created_at, kind, metrics, chosen), newest first."""
+        rows = self._rows("SELECT model_id, created_at, kind, metrics, chosen FROM models ORDER BY model_id DESC")
+        return [{**dict(r), "metrics": json.loads(r["metrics"] or "{}"), "chosen": bool(r["chosen"])} for r in rows]
+
+    def load_model(self, model_id: int | None = None) -> tuple[int, str, dict, dict, dict[str, np.ndarray]]:
+        """A stored model: (id, kind, params, metrics, arrays); default the chosen one.
+
+        Raises
+        ------
+        NotFitted
+            If there is no such model.
+        """
+        from .errors import NotFitted
+
+        sql = "SELECT model_id, kind, params, metrics FROM models WHERE " + (
+            "model_id = ?" if model_id is not None else "chosen = 1 ORDER BY model_id DESC LIMIT 1")
+        row = self.db.execute(sql, (model_id,) if model_id is not None else ()).fetchone()
+        if row is None:
+            raise NotFitted("no fitted model in this workspace; run 'routeplan fit' first")
+        arrays = {
+            name: np.frombuffer(data, dtype=np.dtype(dtype)).reshape(json.loads(shape)).copy()
+            for name, dtype, shape, data in self.db.execute(
+                "SELECT name, dtype, shape, data FROM model_arrays WHERE model_id = ?", (row[0],))
+        }
+        return int(row[0]), row[1], json.loads(row[2]), json.loads(row[3] or "{}"), arrays
+
     # ------------------------------------------------------------------ status
 
     def status(self) -> dict:

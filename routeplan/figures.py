@@ -1,0 +1,55 @@
+"""Matplotlib figures (Agg backend, written to PNG files)."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+__all__ = ["competence_heatmap"]
+
+
+def competence_heatmap(frame: pd.DataFrame, level: str, path: str | Path, *, accuracy_column: str = "accuracy") -> Path:
+    """Heatmap of accuracy per expert (rows) x class or region (columns).
+
+    Parameters
+    ----------
+    frame : pandas.DataFrame
+        A ``by=level`` table of :func:`routeplan.competence.expert_accuracy_table`.
+    level : str
+        The column holding the class, group or region.
+    path : str or Path
+        Where to write the PNG.
+    accuracy_column : str, default="accuracy"
+
+    Returns
+    -------
+    Path
+    """
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    grid = frame.pivot_table(index="expert", columns=level, values=accuracy_column, aggfunc="first")
+    counts = frame.pivot_table(index="expert", columns=level, values="n_scored", aggfunc="first")
+    fig, ax = plt.subplots(figsize=(1.2 + 0.9 * grid.shape[1], 1.0 + 0.5 * grid.shape[0]), dpi=120)
+    image = ax.imshow(grid.to_numpy(dtype=float), vmin=0.0, vmax=1.0, cmap="viridis", aspect="auto")
+    ax.set_xticks(range(grid.shape[1]), [str(c) for c in grid.columns], rotation=30, ha="right")
+    ax.set_yticks(range(grid.shape[0]), [str(r) for r in grid.index])
+    for i in range(grid.shape[0]):
+        for j in range(grid.shape[1]):
+            value = grid.iat[i, j]
+            if np.isfinite(value):
+                n = counts.iat[i, j]
+                ax.text(j, i, f"{value:.2f}\nn={int(n) if np.isfinite(n) else 0}", ha="center", va="center",
+                        fontsize=7, color="white" if value < 0.6 else "black")
+    ax.set_xlabel(level)
+    ax.set_title(f"Accuracy per expert and {level}")
+    fig.colorbar(image, ax=ax, fraction=0.04, label="accuracy")
+    fig.tight_layout()
+    path = Path(path)
+    fig.savefig(path)
+    plt.close(fig)
+    return path

@@ -1,0 +1,1195 @@
+"""Routers: learn, per case, whether the model decides or which expert the case goes to.
+
+Every router has the same scikit-learn-style interface (``fit``, ``predict_costs``,
+``predict_route``, ``predict_proba``, ``predict_expert_correct``, ``get_arrays``):
+
+- :class:`PluginRouter` -- a classifier by cross-entropy plus a model of
+  ``P(expert j right | x)`` per expert, deferring to the option of least expected cost
+  after fees (post-hoc deferral: Narasimhan, Jitkrittum, Menon, Rawat & Kumar, "Post-hoc
+  estimators for learning to defer to an expert", NeurIPS 2022). Given an imported
+  class-probability matrix it learns the routing only (two-stage learning to defer:
+  Mao, Mohri & Zhong, "Two-Stage Learning to Defer with Multiple Experts", NeurIPS 2023).
+- :class:`SurrogateRouter` -- one scorer with ``K + M`` outputs trained end to end by
+  the cost-sensitive softmax surrogate (Mozannar & Sontag, ICML 2020; Verma, Barrejon &
+  Nalisnick, AISTATS 2023) or the one-vs-all surrogate (Verma & Nalisnick, ICML 2022).
+
+Options are numbered ``0 .. K-1`` (the model decides that class) and ``K + j`` (defer to
+expert ``j``). Unknown expert answers (``-1``) are handled without masking: a
+correctness model is fitted first on the known answers (weighted by the inverse of
+their selection probability) and the unknown option costs are filled with their
+expected value given the truth (:func:`routeplan.costs.expected_cost_vectors`).
+
+Training (shared by all routers): mini-batch Adam in float32, early stopping on the
+validation split's *system cost* -- the mean realised cost of the option each case is
+routed to, with the imputed expected cost where the routed expert's answer is unknown.
+Randomness comes only from ``random_state`` (weights initialised inside
+``torch.random.fork_rng``; batches shuffled by a ``torch.Generator``); ``fit`` uses at
+most two CPU threads and restores the previous setting afterwards.
+
+Models are stored as plain arrays plus a JSON-able description (:meth:`get_arrays`,
+:func:`router_from_arrays`); nothing is pickled.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import math
+import warnings
+from collections.abc import Callable, Iterator, Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import torch
+import torch.nn.functional as F
+from numpy.typing import ArrayLike
+from sklearn.base import BaseEstimator
+from sklearn.model_selection import train_test_split
+from sklearn.utils.validation import check_array, check_is_fitted
+from torch import nn
+
+from routeplan import calibration as cal
+from routeplan import costs as costs_mod
+from routeplan import surrogate as sur
+
+__all__ = [
+    "PluginRouter",
+    "SelectionResult",
+    "SurrogateRouter",
+    "fit_candidates",
+    "realised_costs",
+    "router_from_arrays",
+    "select_router",
+]
+
+#: Version of the layout written by ``get_arrays``.
+ARRAYS_FORMAT = 1
+#: Rows scored per chunk at prediction time (bounds peak memory).
+_CHUNK = 1 << 16
+_EPS = 1e-12
+
+
+# --------------------------------------------------------------------------------------
+# small numeric helpers
+# --------------------------------------------------------------------------------------
+
+
+def _make_net(n_in: int, n_out: int, head: str, hidden: tuple[int, ...]) -> nn.Sequential:
+    """A linear map or a ReLU MLP from n_in to n_out."""
+    layers: list[nn.Module] = []
+    width = n_in
+    if head == "mlp":
+        for h in hidden:
+            layers += [nn.Linear(width, int(h)), nn.ReLU()]
+            width = int(h)
+    layers.append(nn.Linear(width, n_out))
+    return nn.Sequential(*layers)
+
+
+def _net_arrays(prefix: str, net: nn.Module) -> dict[str, np.ndarray]:
+    """The state of a network as plain float32 arrays keyed ``prefix.name``."""
+    return {f"{prefix}.{k}": v.detach().cpu().numpy().copy() for k, v in net.state_dict().items()}
+
+
+def _load_net(net: nn.Module, prefix: str, arrays: Mapping[str, np.ndarray]) -> nn.Module:
+    """Load plain arrays into a freshly built network (strict)."""
+    state = {k: torch.from_numpy(np.array(arrays[f"{prefix}.{k}"], dtype=np.float32))
+             for k in net.state_dict()}
+    net.load_state_dict(state, strict=True)
+    net.eval()
+    return net
+
+
+def _forward(net: nn.Module, X: np.ndarray, mean: np.ndarray, scale: np.ndarray) -> np.ndarray:
+    """Scores of raw rows X, standardised and scored chunk by chunk (float32)."""
+    out_dim = net[-1].out_features
+    out = np.empty((X.shape[0], out_dim), dtype=np.float32)
+    net.eval()
+    with torch.inference_mode():
+        for s in range(0, X.shape[0], _CHUNK):
+            xb = (X[s:s + _CHUNK] - mean) / scale
+            out[s:s + _CHUNK] = net(torch.from_numpy(np.ascontiguousarray(xb, np.float32))).numpy()
+    return out
+
+
+def _onehot(y: np.ndarray, n_classes: int) -> np.ndarray:
+    """One-hot float64 matrix of labels."""
+    out = np.zeros((y.shape[0], n_classes))
+    out[np.arange(y.shape[0]), y] = 1.0
+    return out
+
+
+def _logit(p: np.ndarray) -> np.ndarray:
+    """Log-odds, clipped away from 0 and 1."""
+    p = np.clip(p, 1e-6, 1 - 1e-6)
+    return np.log(p) - np.log1p(-p)
+
+
+def _as_generator(random_state: Any) -> np.random.Generator:
+    """A numpy Generator from None, an int, a Generator or a RandomState."""
+    if isinstance(random_state, np.random.RandomState):
+        return np.random.default_rng(random_state.randint(0, 2**31 - 1))
+    return np.random.default_rng(random_state)
+
+
+def realised_costs(costs: ArrayLike, routes: ArrayLike, imputed: ArrayLike | None = None
+                   ) -> np.ndarray:
+    """Cost each case incurs under a routing, per case.
+
+    Parameters
+    ----------
+    costs : array-like of shape (n, K + M)
+        Realised option costs, NaN where an expert's answer is unknown.
+    routes : array-like of int, shape (n,)
+        Chosen option of each case.
+    imputed : array-like of shape (n, K + M), optional
+        Estimates used where the routed option's cost is NaN (e.g. expected costs given
+        the truth and a correctness model). Without it, NaN stays NaN.
+
+    Returns
+    -------
+    ndarray of shape (n,)
+    """
+    c = np.asarray(costs, dtype=np.float64)
+    if imputed is not None:
+        c = costs_mod.impute_missing_costs(c, imputed)
+    r = np.asarray(routes, dtype=np.int64)
+    if r.shape != (c.shape[0],) or (r.size and (r.min() < 0 or r.max() >= c.shape[1])):
+        raise ValueError("routes must be (n,) option indices in 0..K+M-1")
+    return c[np.arange(c.shape[0]), r]
+
+
+# --------------------------------------------------------------------------------------
+# torch session and training loop
+# --------------------------------------------------------------------------------------
+
+
+def _fit_threads(n_in: int, n_out: int, head: str, hidden: tuple[int, ...],
+                 batch_size: int) -> int:
+    """CPU threads for training: 2 only when a batch is big enough to gain from them.
+
+    Small networks run as fast on one thread, and two threads slow down badly when the
+    machine is busy (measured here: up to 5x on a loaded 2-core machine).
+    """
+    widths = [n_in, *(hidden if head == "mlp" else ()), n_out]
+    macs = batch_size * sum(a * b for a, b in zip(widths[:-1], widths[1:]))
+    return 2 if macs >= 10_000_000 else 1
+
+
+@contextlib.contextmanager
+def _torch_session(rng: np.random.Generator, n_threads: int) -> Iterator[torch.Generator]:
+    """Fork the torch RNG, seed it from rng, set threads (max 2); yield a shuffling Generator."""
+    old_threads = torch.get_num_threads()
+    torch.set_num_threads(max(1, min(2, n_threads, old_threads)))
+    try:
+        with torch.random.fork_rng(devices=[]):
+            torch.manual_seed(int(rng.integers(0, 2**62)))
+            gen = torch.Generator().manual_seed(int(rng.integers(0, 2**62)))
+            yield gen
+    finally:
+        torch.set_num_threads(old_threads)
+
+
+@dataclass
+class _LoopSettings:
+    """Optimiser and stopping settings of one training run."""
+
+    max_epochs: int
+    batch_size: int
+    learning_rate: float
+    weight_decay: float
+    patience: int
+    verbose: bool
+    console: Any
+
+
+def _progress(settings: _LoopSettings) -> Any:
+    """A rich progress bar (disabled unless verbose)."""
+    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
+
+    return Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
+                    TextColumn("{task.fields[status]}"), console=settings.console,
+                    disable=not settings.verbose, transient=True)
+
+
+def _train_loop(
+    net: nn.Module,
+    loss_fn: Callable[..., torch.Tensor],
+    tensors: tuple[torch.Tensor, ...],
+    val_score: Callable[[nn.Module], tuple[float, float]],
+    settings: _LoopSettings,
+    gen: torch.Generator,
+    description: str,
+) -> list[tuple[float, float]]:
+    """Adam over shuffled mini-batches; keep the weights of the best validation score.
+
+    ``val_score`` returns ``(primary, tie_break)``, both lower-is-better; training stops
+    after ``patience`` epochs without improvement. Returns the per-epoch scores.
+    """
+    opt = torch.optim.Adam(net.parameters(), lr=settings.learning_rate,
+                           weight_decay=settings.weight_decay)
+    n = tensors[0].shape[0]
+    history: list[tuple[float, float]] = []
+    best, best_state, stale = (math.inf, math.inf), None, 0
+    with _progress(settings) as progress:
+        task = progress.add_task(description, total=settings.max_epochs, status="")
+        for _ in range(settings.max_epochs):
+            net.train()
+            perm = torch.randperm(n, generator=gen)
+            for s in range(0, n, settings.batch_size):
+                idx = perm[s:s + settings.batch_size]
+                opt.zero_grad(set_to_none=True)
+                loss = loss_fn(net, *(t[idx] for t in tensors))
+                loss.backward()
+                opt.step()
+            net.eval()
+            with torch.no_grad():
+                score = val_score(net)
+            history.append(score)
+            if score < best:
+                best, stale = score, 0
+                best_state = {k: v.detach().clone() for k, v in net.state_dict().items()}
+            else:
+                stale += 1
+            progress.update(task, advance=1, status=f"validation cost {score[0]:.4f}")
+            if stale >= settings.patience:
+                break
+    if best_state is not None:
+        net.load_state_dict(best_state)
+    net.eval()
+    return history
+
+
+# --------------------------------------------------------------------------------------
+# validated data
+# --------------------------------------------------------------------------------------
+
+
+@dataclass
+class _Part:
+    """One split of validated training data (X already float32, not standardised)."""
+
+    X: np.ndarray
+    y: np.ndarray
+    answers: np.ndarray
+    weights: np.ndarray  # (n, M): inverse selection probability, 0 where unknown
+    costs: np.ndarray  # (n, K + M), NaN where unknown
+    class_proba: np.ndarray | None = None
+
+    @property
+    def known(self) -> np.ndarray:
+        """Mask of known answers, (n, M)."""
+        return self.answers != costs_mod.MISSING_ANSWER
+
+    def take(self, idx: np.ndarray) -> _Part:
+        """Rows idx of every array."""
+        cp = None if self.class_proba is None else self.class_proba[idx]
+        return _Part(self.X[idx], self.y[idx], self.answers[idx], self.weights[idx],
+                     self.costs[idx], cp)
+
+
+def _check_answers_weights(answers: ArrayLike, sample_weight: ArrayLike | None, n: int
+                           ) -> tuple[np.ndarray, np.ndarray]:
+    """Validate answers (n, M) and inverse-probability weights; NaN weight -> 1."""
+    A = np.asarray(answers)
+    if A.ndim == 1 and n > 0 and A.shape[0] == n:
+        A = A[:, None]
+    if A.ndim != 2 or A.shape[0] != n:
+        raise ValueError(f"answers must have shape (n, M) with n = {n}, got {A.shape}")
+    if A.size and not np.issubdtype(A.dtype, np.integer):
+        if not np.all(np.mod(A, 1) == 0):
+            raise ValueError("answers must hold integer class indices (-1 = not asked)")
+    A = A.astype(np.int64)
+    known = A != costs_mod.MISSING_ANSWER
+    if sample_weight is None:
+        W = np.ones(A.shape)
+    else:
+        W = np.array(sample_weight, dtype=np.float64)
+        if W.shape != A.shape:
+            raise ValueError(f"sample_weight must have the shape of answers {A.shape}, "
+                             f"got {W.shape}")
+        W = np.where(np.isnan(W), 1.0, W)
+        if np.any(~np.isfinite(W[known])) or np.any(W[known] <= 0):
+            raise ValueError("sample_weight must be > 0 (inverse selection probabilities)")
+    return A, np.where(known, W, 0.0)
+
+
+def _check_class_proba(P: ArrayLike | None, n: int, n_classes: int) -> np.ndarray | None:
+    """Validate an imported (n, K) class-probability matrix."""
+    if P is None:
+        return None
+    P = check_array(P, dtype=np.float64)
+    if P.shape != (n, n_classes):
+        raise ValueError(f"class_proba must have shape {(n, n_classes)}, got {P.shape}")
+    if np.any(P < 0) or not np.allclose(P.sum(axis=1), 1.0, atol=1e-4):
+        raise ValueError("class_proba rows must be non-negative and sum to 1")
+    return P / P.sum(axis=1, keepdims=True)
+
+
+def _stratify(y: np.ndarray, n_test: int) -> np.ndarray | None:
+    """Labels to stratify on, or None when some class is too rare for it."""
+    counts = np.bincount(y)
+    counts = counts[counts > 0]
+    if counts.min() >= 2 and n_test >= counts.size and len(y) - n_test >= counts.size:
+        return y
+    return None
+
+
+def _split_indices(y: np.ndarray, fraction: float, seed: int) -> tuple[np.ndarray, np.ndarray]:
+    """Seeded, stratified where possible, train/held-out indices."""
+    n_test = max(1, int(round(fraction * len(y))))
+    idx = np.arange(len(y))
+    tr, te = train_test_split(idx, test_size=n_test, random_state=seed,
+                              stratify=_stratify(y, n_test))
+    return np.sort(tr), np.sort(te)
+
+
+# --------------------------------------------------------------------------------------
+# the shared base
+# --------------------------------------------------------------------------------------
+
+
+class _BaseRouter(BaseEstimator):
+    """Shared fitting, calibration, prediction and storage of the routers."""
+
+    _net_names: tuple[str, ...] = ()
+
+    # ---- parameter checks ------------------------------------------------------------
+
+    def _check_params(self) -> None:
+        """Validate hyperparameters (at the start of fit)."""
+        if self.head not in ("mlp", "linear"):
+            raise ValueError(f"head must be 'mlp' or 'linear', got {self.head!r}")
+        if self.correctness_head not in (None, "mlp", "linear"):
+            raise ValueError(f"correctness_head must be None, 'mlp' or 'linear', "
+                             f"got {self.correctness_head!r}")
+        if not all(int(h) == h and h >= 1 for h in self.hidden):
+            raise ValueError(f"hidden must be positive layer widths, got {self.hidden!r}")
+        for name in ("max_epochs", "batch_size", "patience"):
+            v = getattr(self, name)
+            if int(v) != v or v < 1:
+                raise ValueError(f"{name} must be a positive integer, got {v!r}")
+        if not self.learning_rate > 0 or not self.weight_decay >= 0:
+            raise ValueError("learning_rate must be > 0 and weight_decay >= 0")
+        if not 0 < self.validation_fraction < 1:
+            raise ValueError(f"validation_fraction must be in (0, 1), "
+                             f"got {self.validation_fraction!r}")
+
+    def _settings(self) -> _LoopSettings:
+        """Loop settings from the hyperparameters."""
+        return _LoopSettings(int(self.max_epochs), int(self.batch_size), float(self.learning_rate),
+                             float(self.weight_decay), int(self.patience), bool(self.verbose),
+                             self.console)
+
+    # ---- fit -------------------------------------------------------------------------
+
+    def _fit(self, X, y, answers, *, fees, cost_matrix, sample_weight, X_val, y_val,
+             answers_val, sample_weight_val, class_proba=None, class_proba_val=None):
+        """Validate, split, seed, then run the subclass's _fit_parts."""
+        self._check_params()
+        X = check_array(X, dtype=np.float32)
+        y = np.asarray(y)
+        if y.shape != (X.shape[0],):
+            raise ValueError(f"y must have shape ({X.shape[0]},), got {y.shape}")
+        A, W = _check_answers_weights(answers, sample_weight, X.shape[0])
+        fees_arr = np.asarray(fees, dtype=np.float64).reshape(-1)
+        if fees_arr.shape != (A.shape[1],):
+            raise ValueError(f"fees must have one entry per expert ({A.shape[1]}), "
+                             f"got {fees_arr.shape}")
+        K = self._resolve_n_classes(y, A, cost_matrix)
+        C = costs_mod.error_cost_matrix(K, matrix=cost_matrix)
+        y = costs_mod._check_labels(y, K, "y")
+        self.n_features_in_ = X.shape[1]
+        self.n_classes_ = K
+        self.n_experts_ = A.shape[1]
+        self.fees_ = fees_arr
+        self.cost_matrix_ = C
+        whole = _Part(X, y, A, W, costs_mod.cost_vectors(y, A, cost_matrix=C, fees=fees_arr),
+                      _check_class_proba(class_proba, X.shape[0], K))
+        rng = _as_generator(self.random_state)
+        split_seed = int(rng.integers(0, 2**31 - 1))
+        if X_val is None:
+            if len(y) < 10:
+                raise ValueError("fit needs at least 10 cases (or an explicit validation split)")
+            tr, va = _split_indices(y, self.validation_fraction, split_seed)
+            train, val = whole.take(tr), whole.take(va)
+        else:
+            train, val = whole, self._check_val(X_val, y_val, answers_val, sample_weight_val,
+                                                class_proba_val)
+        if (train.class_proba is None) != (val.class_proba is None):
+            raise ValueError("give class_proba for both the training and validation cases")
+        self.two_stage_ = train.class_proba is not None
+        if self.standardize:
+            self.x_mean_ = train.X.mean(axis=0).astype(np.float32)
+            sd = train.X.std(axis=0)
+            self.x_scale_ = np.where(sd > 1e-12, sd, 1.0).astype(np.float32)
+        else:
+            self.x_mean_ = np.zeros(X.shape[1], np.float32)
+            self.x_scale_ = np.ones(X.shape[1], np.float32)
+        self.history_ = {}
+        n_threads = _fit_threads(X.shape[1], self.n_classes_ + self.n_experts_, self.head,
+                                 tuple(self.hidden), int(self.batch_size))
+        with _torch_session(rng, n_threads) as gen:
+            self._fit_parts(train, val, gen)
+        self.validation_cost_ = float(self._validation_cost(val))
+        return self
+
+    def _resolve_n_classes(self, y: np.ndarray, A: np.ndarray, cost_matrix: Any) -> int:
+        """K from the n_classes parameter, else the cost matrix, else the data."""
+        if self.n_classes is not None:
+            return int(self.n_classes)
+        if cost_matrix is not None:
+            return int(np.asarray(cost_matrix).shape[0])
+        top = int(np.max(y)) if y.size else 0
+        if A.size:
+            top = max(top, int(A.max()))
+        return max(2, top + 1)
+
+    def _check_val(self, X_val, y_val, answers_val, sample_weight_val, class_proba_val) -> _Part:
+        """Validate an explicit validation split."""
+        if y_val is None or answers_val is None:
+            raise ValueError("give X_val, y_val and answers_val together")
+        Xv = check_array(X_val, dtype=np.float32)
+        if Xv.shape[1] != self.n_features_in_:
+            raise ValueError(f"X_val has {Xv.shape[1]} features, X has {self.n_features_in_}")
+        yv = costs_mod._check_labels(np.asarray(y_val), self.n_classes_, "y_val")
+        Av, Wv = _check_answers_weights(answers_val, sample_weight_val, Xv.shape[0])
+        if yv.shape[0] != Xv.shape[0] or Av.shape[1] != self.n_experts_:
+            raise ValueError("validation arrays disagree in shape with each other or with fit")
+        cv = costs_mod.cost_vectors(yv, Av, cost_matrix=self.cost_matrix_, fees=self.fees_)
+        return _Part(Xv, yv, Av, Wv, cv,
+                     _check_class_proba(class_proba_val, Xv.shape[0], self.n_classes_))
+
+    def _std(self, X: np.ndarray) -> torch.Tensor:
+        """Standardised float32 tensor of raw rows."""
+        return torch.from_numpy(np.ascontiguousarray((X - self.x_mean_) / self.x_scale_,
+                                                     dtype=np.float32))
+
+    # ---- correctness model (shared by every router) ----------------------------------
+
+    def _fit_correctness(self, train: _Part, val: _Part, gen: torch.Generator) -> None:
+        """Fit P(expert j right | x) on the known answers, IPS-weighted; Platt on validation."""
+        M, d = self.n_experts_, self.n_features_in_
+        head = self.correctness_head or self.head
+        net = _make_net(d, M, head, tuple(self.hidden))
+        self.correctness_net_ = net
+        self.expert_platt_ = np.tile([1.0, 0.0], (M, 1))
+        if M == 0:
+            return
+        known = train.known
+        right = (train.answers == train.y[:, None]) & known
+        # start from each expert's smoothed accuracy (rule of succession)
+        prior = (right.sum(0) + 1.0) / (known.sum(0) + 2.0)
+        with torch.no_grad():
+            net[-1].bias.copy_(torch.from_numpy(_logit(prior).astype(np.float32)))
+        if np.any(known.sum(0) == 0):
+            warnings.warn("some expert has no known answer in the training split; its "
+                          "correctness stays at the prior 0.5", stacklevel=3)
+        rows = known.any(axis=1)
+        if not rows.any():
+            return
+        tensors = (self._std(train.X[rows]), torch.from_numpy(right[rows].astype(np.float32)),
+                   torch.from_numpy(train.weights[rows].astype(np.float32)))
+        v_known = val.known
+        v_right = ((val.answers == val.y[:, None]) & v_known).astype(np.float32)
+        Xv = self._std(val.X)
+        v_t, v_w = torch.from_numpy(v_right), torch.from_numpy(val.weights.astype(np.float32))
+        settings = self._settings()
+        if not v_known.any():
+            warnings.warn("no known answer in the validation split: the correctness model "
+                          "trains for a fixed 20 epochs", stacklevel=3)
+            settings.max_epochs, settings.patience = min(20, settings.max_epochs), 10**9
+
+        def loss_fn(m: nn.Module, xb: torch.Tensor, tb: torch.Tensor, wb: torch.Tensor):
+            bce = F.binary_cross_entropy_with_logits(m(xb), tb, reduction="none")
+            return (wb * bce).sum() / (wb > 0).sum().clamp(min=1)
+
+        def val_score(m: nn.Module) -> tuple[float, float]:
+            if not v_known.any():
+                return (0.0, 0.0)
+            bce = F.binary_cross_entropy_with_logits(m(Xv), v_t, reduction="none")
+            return (float((v_w * bce).sum() / v_w.sum()), 0.0)
+
+        self.history_["correctness"] = _train_loop(net, loss_fn, tensors, val_score, settings,
+                                                   gen, "expert correctness")
+        if self.calibrate:
+            self._calibrate_correctness(val)
+
+    def _calibrate_correctness(self, val: _Part) -> None:
+        """Platt scaling per expert on the validation answers that are known."""
+        Z = _forward(self.correctness_net_, val.X, self.x_mean_, self.x_scale_)
+        report = self.calibration_.setdefault("experts", [])
+        for j in range(self.n_experts_):
+            k = val.known[:, j]
+            t = (val.answers[k, j] == val.y[k]).astype(np.float64)
+            a, b = cal.fit_platt(Z[k, j], t, val.weights[k, j])
+            self.expert_platt_[j] = (a, b)
+            before = cal.expected_calibration_error(cal.apply_platt(Z[k, j], 1, 0), t)
+            after = cal.expected_calibration_error(cal.apply_platt(Z[k, j], a, b), t)
+            report.append({"expert": j, "n_known": int(k.sum()), "platt_a": a, "platt_b": b,
+                           "ece_before": before, "ece_after": after})
+
+    def _correct_proba(self, X: np.ndarray) -> np.ndarray:
+        """Calibrated P(expert j right | x), (n, M) float64."""
+        if self.n_experts_ == 0:
+            return np.zeros((X.shape[0], 0))
+        Z = _forward(self.correctness_net_, X, self.x_mean_, self.x_scale_).astype(np.float64)
+        return cal.apply_platt(Z, self.expert_platt_[:, 0], self.expert_platt_[:, 1])
+
+    def _imputed(self, part: _Part, q: np.ndarray) -> np.ndarray:
+        """Expected option costs given the truth and P(right): fills unknown answers."""
+        P = _onehot(part.y, self.n_classes_)
+        return costs_mod.expected_cost_vectors(P, q, cost_matrix=self.cost_matrix_,
+                                               fees=self.fees_)
+
+    def _filled_costs(self, part: _Part) -> np.ndarray:
+        """Realised costs with unknown answers replaced by their expected cost."""
+        if not np.isnan(part.costs).any():
+            return part.costs
+        return costs_mod.impute_missing_costs(part.costs,
+                                              self._imputed(part, self._correct_proba(part.X)))
+
+    def _validation_cost(self, val: _Part) -> float:
+        """Mean realised (imputed where unknown) cost of the fitted routing on val."""
+        routes = self.predict_route(val.X, **self._proba_kw(val))
+        return float(realised_costs(self._filled_costs(val), routes).mean())
+
+    def _proba_kw(self, part: _Part) -> dict[str, Any]:
+        """Extra predict keywords (two-stage class probabilities)."""
+        return {}
+
+    # ---- prediction ------------------------------------------------------------------
+
+    def _check_X(self, X: ArrayLike) -> np.ndarray:
+        """check_is_fitted, then a float32 matrix of the fitted width."""
+        check_is_fitted(self)
+        X = check_array(X, dtype=np.float32)
+        if X.shape[1] != self.n_features_in_:
+            raise ValueError(f"X has {X.shape[1]} features, the router was fitted with "
+                             f"{self.n_features_in_}")
+        return X
+
+    def predict_route(self, X: ArrayLike, **kwargs: Any) -> np.ndarray:
+        """Chosen option per case: ``k < K`` the model decides class k, ``K + j`` expert j.
+
+        Parameters
+        ----------
+        X : array-like of shape (n, d)
+
+        Returns
+        -------
+        ndarray of int64, shape (n,)
+        """
+        return np.argmin(self.predict_costs(X, **kwargs), axis=1).astype(np.int64)
+
+    # ---- storage ---------------------------------------------------------------------
+
+    def get_arrays(self) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
+        """The fitted router as plain arrays plus a JSON-able description.
+
+        Returns
+        -------
+        arrays : dict of str to ndarray
+            Every weight, the standardisation, fees, cost matrix and calibration.
+        meta : dict
+            JSON-able: router class, hyperparameters, sizes, calibration report and
+            validation cost. Rebuild with :func:`router_from_arrays` ``(arrays, meta)``.
+        """
+        check_is_fitted(self)
+        arrays = {"x_mean": self.x_mean_, "x_scale": self.x_scale_, "fees": self.fees_,
+                  "cost_matrix": self.cost_matrix_, "expert_platt": self.expert_platt_}
+        for name in self._net_names:
+            net = getattr(self, f"{name}_net_", None)
+            if net is not None:
+                arrays.update(_net_arrays(name, net))
+        arrays.update(self._extra_arrays())
+        params = {k: v for k, v in self.get_params().items() if k != "console"}
+        params["hidden"] = [int(h) for h in params["hidden"]]
+        rs = params.get("random_state")
+        params["random_state"] = rs if rs is None or isinstance(rs, int) else None
+        meta = {"format_version": ARRAYS_FORMAT, "router": type(self).__name__,
+                "params": params, "n_features_in": int(self.n_features_in_),
+                "n_classes": int(self.n_classes_), "n_experts": int(self.n_experts_),
+                "two_stage": bool(self.two_stage_), "calibration": _jsonable(self.calibration_),
+                "validation_cost": float(self.validation_cost_)}
+        return {k: np.asarray(v).copy() for k, v in arrays.items()}, meta
+
+    def _extra_arrays(self) -> dict[str, np.ndarray]:
+        """Subclass arrays beyond the networks."""
+        return {}
+
+    @classmethod
+    def from_arrays(cls, arrays: Mapping[str, np.ndarray], meta: Mapping[str, Any]) -> Any:
+        """Rebuild a fitted router of this class from :meth:`get_arrays` output.
+
+        Parameters
+        ----------
+        arrays : mapping of str to ndarray
+        meta : mapping
+            The JSON-able description returned beside the arrays.
+        """
+        router = router_from_arrays(arrays, meta)
+        if not isinstance(router, cls):
+            raise ValueError(f"the arrays describe a {type(router).__name__}, not {cls.__name__}")
+        return router
+
+    def _restore(self, arrays: Mapping[str, np.ndarray], meta: Mapping[str, Any]) -> None:
+        """Set the fitted attributes from get_arrays output."""
+        d, K, M = int(meta["n_features_in"]), int(meta["n_classes"]), int(meta["n_experts"])
+        self.n_features_in_, self.n_classes_, self.n_experts_ = d, K, M
+        self.two_stage_ = bool(meta["two_stage"])
+        self.x_mean_ = np.asarray(arrays["x_mean"], np.float32)
+        self.x_scale_ = np.asarray(arrays["x_scale"], np.float32)
+        self.fees_ = np.asarray(arrays["fees"], np.float64).reshape(-1)
+        self.cost_matrix_ = np.asarray(arrays["cost_matrix"], np.float64)
+        self.expert_platt_ = np.asarray(arrays["expert_platt"], np.float64).reshape(M, 2)
+        self.calibration_ = dict(meta.get("calibration", {}))
+        self.validation_cost_ = float(meta.get("validation_cost", float("nan")))
+        self.history_ = {}
+        head = self.correctness_head or self.head
+        self.correctness_net_ = _load_net(_make_net(d, M, head, tuple(self.hidden)),
+                                          "correctness", arrays)
+
+
+def _jsonable(obj: Any) -> Any:
+    """Plain Python (JSON-able) copy of nested dicts/lists of numpy scalars."""
+    if isinstance(obj, Mapping):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_jsonable(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, (np.floating, float)):
+        return None if not np.isfinite(obj) else float(obj)
+    if isinstance(obj, (np.integer, int)) and not isinstance(obj, bool):
+        return int(obj)
+    return obj
+
+
+# --------------------------------------------------------------------------------------
+# shared constructor arguments (documented once)
+# --------------------------------------------------------------------------------------
+
+_COMMON_PARAMS_DOC = """
+    n_classes : int, optional
+        Number of classes K; by default the cost matrix's size, else ``max(y, answers) + 1``.
+    head : {"mlp", "linear"}, default="mlp"
+        Form of the networks: a ReLU MLP with layer widths ``hidden``, or linear.
+    hidden : tuple of int, default=(64, 64)
+        Hidden layer widths of the MLP.
+    correctness_head : {"mlp", "linear"}, optional
+        Form of the correctness model; defaults to ``head``.
+    max_epochs : int, default=100
+        Upper bound on passes over the training split (per network).
+    batch_size : int, default=256
+    learning_rate : float, default=1e-3
+        Adam step size.
+    weight_decay : float, default=1e-4
+        Adam's L2 penalty.
+    patience : int, default=10
+        Epochs without a better validation score before training stops; the weights of
+        the best epoch are kept.
+    validation_fraction : float, default=0.2
+        Share of the cases held out (stratified by label, seeded) for early stopping and
+        calibration when ``fit`` gets no explicit ``X_val``.
+    calibrate : bool, default=True
+        Fit temperature / Platt scaling on the validation split.
+    standardize : bool, default=True
+        Centre and scale the features with training means and standard deviations.
+    random_state : int, numpy Generator or None, default=None
+        Seeds the split, the initial weights and the batch order.
+    verbose : bool, default=False
+        Show a rich progress bar while training.
+    console : rich.console.Console, optional
+        Where the progress bar goes (default: rich's console).
+"""
+
+_FIT_DOC = """
+        Parameters
+        ----------
+        X : array-like of shape (n, d)
+            Case features.
+        y : array-like of int, shape (n,)
+            Verified truth, ``0 .. K-1``.
+        answers : array-like of int, shape (n, M)
+            Expert answers, ``-1`` where the expert was not asked.
+        fees : array-like of shape (M,)
+            Fee of each expert per case, in the unit of one error.
+        cost_matrix : array-like of shape (K, K), optional
+            Error-cost matrix ``C[y, k]`` (default 0/1).
+        sample_weight : array-like of shape (n, M), optional
+            Inverse selection probability of each known answer (NaN or 1 for uniform).
+        X_val, y_val, answers_val, sample_weight_val : optional
+            An explicit validation split; otherwise ``validation_fraction`` of the cases.
+
+        Returns
+        -------
+        self
+"""
+
+
+def _init_common(self: _BaseRouter, kw: dict[str, Any]) -> None:
+    """Store constructor arguments unchanged (scikit-learn convention)."""
+    for k, v in kw.items():
+        if k not in ("self", "__class__"):
+            setattr(self, k, v)
+
+
+# --------------------------------------------------------------------------------------
+# plug-in router
+# --------------------------------------------------------------------------------------
+
+
+class PluginRouter(_BaseRouter):
+    """Classifier plus per-expert correctness models; route to the least expected cost.
+
+    The classifier is trained by cross-entropy, the correctness model (one output per
+    expert) by binary log-loss on the known answers only, each weighted by the inverse
+    of its selection probability. A case goes to ``argmin_r E[c_r | x]`` with the
+    expected costs of :func:`routeplan.costs.expected_cost_vectors`: post-hoc deferral
+    (Narasimhan, Jitkrittum, Menon, Rawat & Kumar, "Post-hoc estimators for learning to
+    defer to an expert", NeurIPS 2022). Given ``class_proba`` (a model the team already
+    has), only the routing is learned: two-stage learning to defer (Mao, Mohri & Zhong,
+    "Two-Stage Learning to Defer with Multiple Experts", NeurIPS 2023).
+
+    The classifier is early-stopped on the validation system cost of the full routing
+    (correctness model fixed, temperature refitted each epoch when ``calibrate``), ties
+    broken by validation log-loss. Class probabilities are temperature-scaled and
+    correctness probabilities Platt-scaled on the validation split
+    (:mod:`routeplan.calibration`).
+
+    Parameters
+    ----------""" + _COMMON_PARAMS_DOC + """
+    Attributes
+    ----------
+    n_features_in_, n_classes_, n_experts_ : int
+    fees_ : ndarray of shape (M,)
+    cost_matrix_ : ndarray of shape (K, K)
+    classifier_net_ : torch.nn.Module or None
+        None in two-stage mode.
+    correctness_net_ : torch.nn.Module
+    class_temperature_ : float
+    expert_platt_ : ndarray of shape (M, 2)
+        Platt ``(a, b)`` per expert.
+    calibration_ : dict
+        ECE before/after calibration on the validation split (optimistic: fitted there).
+    validation_cost_ : float
+        Validation system cost of the fitted router (unknown answers imputed).
+    history_ : dict
+        Validation scores per epoch of each network.
+    """
+
+    _net_names = ("classifier", "correctness")
+
+    def __init__(self, *, n_classes: int | None = None, head: str = "mlp",
+                 hidden: tuple[int, ...] = (64, 64), correctness_head: str | None = None,
+                 max_epochs: int = 100, batch_size: int = 256, learning_rate: float = 1e-3,
+                 weight_decay: float = 1e-4, patience: int = 10,
+                 validation_fraction: float = 0.2, calibrate: bool = True,
+                 standardize: bool = True, random_state: Any = None, verbose: bool = False,
+                 console: Any = None) -> None:
+        _init_common(self, locals())
+
+    def fit(self, X: ArrayLike, y: ArrayLike, answers: ArrayLike, *, fees: ArrayLike,
+            cost_matrix: ArrayLike | None = None, sample_weight: ArrayLike | None = None,
+            X_val: ArrayLike | None = None, y_val: ArrayLike | None = None,
+            answers_val: ArrayLike | None = None, sample_weight_val: ArrayLike | None = None,
+            class_proba: ArrayLike | None = None, class_proba_val: ArrayLike | None = None
+            ) -> PluginRouter:
+        return self._fit(X, y, answers, fees=fees, cost_matrix=cost_matrix,
+                         sample_weight=sample_weight, X_val=X_val, y_val=y_val,
+                         answers_val=answers_val, sample_weight_val=sample_weight_val,
+                         class_proba=class_proba, class_proba_val=class_proba_val)
+
+    fit.__doc__ = """Fit the correctness model, then the classifier (unless two-stage).
+""" + _FIT_DOC.replace("        Returns", """        class_proba, class_proba_val : array-like of shape (n, K), optional
+            Two-stage mode: probabilities of the team's own model; only routing is learned
+            and prediction then needs ``class_proba`` too.
+
+        Returns""")
+
+    def _fit_parts(self, train: _Part, val: _Part, gen: torch.Generator) -> None:
+        """Correctness model first, then the classifier against the routed cost."""
+        self.calibration_ = {}
+        self._fit_correctness(train, val, gen)
+        q_val = self._correct_proba(val.X)
+        c_val = (val.costs if not np.isnan(val.costs).any() else
+                 costs_mod.impute_missing_costs(val.costs, self._imputed(val, q_val)))
+        if self.two_stage_:
+            self.classifier_net_ = None
+            Z = np.log(np.clip(val.class_proba, _EPS, 1.0))
+        else:
+            self.classifier_net_ = self._train_classifier(train, val, q_val, c_val, gen)
+            Z = _forward(self.classifier_net_, val.X, self.x_mean_, self.x_scale_)
+        self.class_temperature_ = cal.fit_temperature(Z, val.y) if self.calibrate else 1.0
+        self.calibration_["classes"] = {
+            "temperature": self.class_temperature_,
+            "ece_before": cal.expected_calibration_error(cal.apply_temperature(Z, 1.0), val.y),
+            "ece_after": cal.expected_calibration_error(
+                cal.apply_temperature(Z, self.class_temperature_), val.y)}
+
+    def _train_classifier(self, train: _Part, val: _Part, q_val: np.ndarray, c_val: np.ndarray,
+                          gen: torch.Generator) -> nn.Module:
+        """Cross-entropy classifier, early-stopped on the plug-in routing's validation cost."""
+        net = _make_net(self.n_features_in_, self.n_classes_, self.head, tuple(self.hidden))
+        tensors = (self._std(train.X), torch.from_numpy(train.y))
+        Xv, rows = self._std(val.X), np.arange(val.y.shape[0])
+
+        def loss_fn(m: nn.Module, xb: torch.Tensor, yb: torch.Tensor) -> torch.Tensor:
+            return F.cross_entropy(m(xb), yb)
+
+        def val_score(m: nn.Module) -> tuple[float, float]:
+            Z = m(Xv).numpy().astype(np.float64)
+            T = cal.fit_temperature(Z, val.y) if self.calibrate else 1.0
+            P = cal.apply_temperature(Z, T)
+            ec = costs_mod.expected_cost_vectors(P, q_val, cost_matrix=self.cost_matrix_,
+                                                 fees=self.fees_)
+            cost = realised_costs(c_val, ec.argmin(axis=1)).mean()
+            return (float(cost), float(-np.log(P[rows, val.y] + _EPS).mean()))
+
+        self.history_["classifier"] = _train_loop(net, loss_fn, tensors, val_score,
+                                                  self._settings(), gen, "classifier")
+        return net
+
+    def _proba_kw(self, part: _Part) -> dict[str, Any]:
+        """Pass the imported probabilities in two-stage mode."""
+        return {"class_proba": part.class_proba} if self.two_stage_ else {}
+
+    def _class_logits(self, X: np.ndarray, class_proba: ArrayLike | None) -> np.ndarray:
+        """Class scores from the classifier, or log of the imported probabilities."""
+        if self.two_stage_:
+            if class_proba is None:
+                raise ValueError("this router was fitted in two-stage mode: pass class_proba")
+            P = _check_class_proba(class_proba, X.shape[0], self.n_classes_)
+            return np.log(np.clip(P, _EPS, 1.0))
+        if class_proba is not None:
+            raise ValueError("class_proba is only for routers fitted with class_proba")
+        return _forward(self.classifier_net_, X, self.x_mean_, self.x_scale_)
+
+    def predict_proba(self, X: ArrayLike, *, class_proba: ArrayLike | None = None) -> np.ndarray:
+        """Calibrated class probabilities ``P(y = k | x)``, shape (n, K).
+
+        Parameters
+        ----------
+        X : array-like of shape (n, d)
+        class_proba : array-like of shape (n, K), optional
+            Required in two-stage mode (the imported model's probabilities).
+        """
+        X = self._check_X(X)
+        return cal.apply_temperature(self._class_logits(X, class_proba), self.class_temperature_)
+
+    def predict_expert_correct(self, X: ArrayLike) -> np.ndarray:
+        """Calibrated ``P(expert j right | x)``, shape (n, M)."""
+        return self._correct_proba(self._check_X(X))
+
+    def predict_costs(self, X: ArrayLike, *, class_proba: ArrayLike | None = None) -> np.ndarray:
+        """Estimated expected cost of each option, shape (n, K + M).
+
+        Parameters
+        ----------
+        X : array-like of shape (n, d)
+        class_proba : array-like of shape (n, K), optional
+            Required in two-stage mode.
+        """
+        X = self._check_X(X)
+        P = cal.apply_temperature(self._class_logits(X, class_proba), self.class_temperature_)
+        return costs_mod.expected_cost_vectors(P, self._correct_proba(X),
+                                               cost_matrix=self.cost_matrix_, fees=self.fees_)
+
+    def predict_route(self, X: ArrayLike, *, class_proba: ArrayLike | None = None) -> np.ndarray:
+        """Option of least expected cost per case (``K + j`` = expert j), shape (n,)."""
+        return super().predict_route(X, class_proba=class_proba)
+
+    def _extra_arrays(self) -> dict[str, np.ndarray]:
+        """The class temperature."""
+        return {"class_temperature": np.array([self.class_temperature_])}
+
+    def _restore(self, arrays: Mapping[str, np.ndarray], meta: Mapping[str, Any]) -> None:
+        """Rebuild the networks and calibration."""
+        super()._restore(arrays, meta)
+        self.class_temperature_ = float(np.asarray(arrays["class_temperature"]).reshape(-1)[0])
+        self.classifier_net_ = None if self.two_stage_ else _load_net(
+            _make_net(self.n_features_in_, self.n_classes_, self.head, tuple(self.hidden)),
+            "classifier", arrays)
+
+
+# --------------------------------------------------------------------------------------
+# joint surrogate router
+# --------------------------------------------------------------------------------------
+
+
+class SurrogateRouter(_BaseRouter):
+    """One scorer with K + M outputs trained end to end by a learning-to-defer surrogate.
+
+    ``loss="softmax"``: the cost-sensitive softmax cross-entropy of Mozannar & Sontag
+    ("Consistent Estimators for Learning to Defer to an Expert", ICML 2020) in the
+    multi-expert form of Verma, Barrejon & Nalisnick (AISTATS 2023); the route is
+    ``argmax g``. ``loss="ova"``: the one-vs-all logistic surrogate of Verma & Nalisnick
+    ("Calibrated Learning to Defer with One-vs-All Classifiers", ICML 2022), generalised
+    to costs (:func:`routeplan.surrogate.one_vs_all_surrogate`); its sigmoid outputs
+    estimate the expected option costs, Platt-scaled on validation, and the route is the
+    least estimated cost.
+
+    Unknown expert answers: a correctness model (as in :class:`PluginRouter`) is fitted
+    first on the known answers, weighted by inverse selection probability, and
+
+    - ``missing="impute"`` (default): an unknown option cost is replaced by its expected
+      value given the truth, ``fee_j + q_j(x) C[y, y] + (1 - q_j(x)) w[y]``;
+    - ``missing="doubly_robust"`` (softmax only): every expert cost becomes
+      ``m + 1[known] * ipw * (c - m)`` with ``m`` the imputed value -- unbiased when either
+      the correctness model or the selection probabilities are right (the doubly robust
+      estimator of Dudik, Langford & Li, ICML 2011).
+
+    ``predict_costs`` of the softmax router are the calibrated plug-in estimates
+    (temperature-scaled softmax over the K class scores, Platt-scaled correctness model):
+    the softmax scores themselves are not probabilities of anything (Verma & Nalisnick,
+    2022). They can disagree with ``predict_route`` on borderline cases; the share of
+    validation cases where they agree is ``calibration_["route_agreement"]``.
+
+    Parameters
+    ----------
+    loss : {"softmax", "ova"}, default="softmax"
+    alpha : float, default=1.0
+        Weight of the deferral terms of the softmax surrogate (1 keeps consistency).
+    missing : {"impute", "doubly_robust"}, default="impute"
+""" + _COMMON_PARAMS_DOC + """
+    Attributes
+    ----------
+    scorer_net_, correctness_net_ : torch.nn.Module
+    cost_scale_ : float
+        Bound ``B`` on option costs (largest error cost plus largest fee), used by OvA.
+    class_temperature_ : float
+    option_platt_ : ndarray of shape (1 + M, 2)
+        OvA only: Platt ``(a, b)`` shared by the class outputs, then one per expert.
+    expert_platt_ : ndarray of shape (M, 2)
+    calibration_, validation_cost_, history_ : as in :class:`PluginRouter`
+    """
+
+    _net_names = ("scorer", "correctness")
+
+    def __init__(self, *, loss: str = "softmax", alpha: float = 1.0, missing: str = "impute",
+                 n_classes: int | None = None, head: str = "mlp",
+                 hidden: tuple[int, ...] = (64, 64), correctness_head: str | None = None,
+                 max_epochs: int = 100, batch_size: int = 256, learning_rate: float = 1e-3,
+                 weight_decay: float = 1e-4, patience: int = 10,
+                 validation_fraction: float = 0.2, calibrate: bool = True,
+                 standardize: bool = True, random_state: Any = None, verbose: bool = False,
+                 console: Any = None) -> None:
+        _init_common(self, locals())
+
+    def _check_params(self) -> None:
+        """Also check loss, alpha and missing."""
+        super()._check_params()
+        if self.loss not in ("softmax", "ova"):
+            raise ValueError(f"loss must be 'softmax' or 'ova', got {self.loss!r}")
+        if not self.alpha > 0:
+            raise ValueError(f"alpha must be > 0, got {self.alpha!r}")
+        if self.missing not in ("impute", "doubly_robust"):
+            raise ValueError(f"missing must be 'impute' or 'doubly_robust', got {self.missing!r}")
+        if self.missing == "doubly_robust" and self.loss != "softmax":
+            raise ValueError("missing='doubly_robust' needs loss='softmax' (OvA targets must "
+                             "stay in [0, 1])")
+        if self.loss == "ova" and self.alpha != 1.0:
+            raise ValueError("alpha applies to the softmax surrogate only")
+
+    def fit(self, X: ArrayLike, y: ArrayLike, answers: ArrayLike, *, fees: ArrayLike,
+            cost_matrix: ArrayLike | None = None, sample_weight: ArrayLike | None = None,
+            X_val: ArrayLike | None = None, y_val: ArrayLike | None = None,
+            answers_val: ArrayLike | None = None, sample_weight_val: ArrayLike | None = None
+            ) -> SurrogateRouter:
+        return self._fit(X, y, answers, fees=fees, cost_matrix=cost_matrix,
+                         sample_weight=sample_weight, X_val=X_val, y_val=y_val,
+                         answers_val=answers_val, sample_weight_val=sample_weight_val)
+
+    fit.__doc__ = "Fit the correctness model, then the K + M scorer.\n" + _FIT_DOC
+
+    def _fit_parts(self, train: _Part, val: _Part, gen: torch.Generator) -> None:
+        """Correctness model (imputer) first, then the scorer, then calibration."""
+        self.calibration_ = {}
+        K, M = self.n_classes_, self.n_experts_
+        bound = float(self.cost_matrix_.max() + (self.fees_.max() if M else 0.0))
+        # float32-exact, so that float32 costs never exceed it after rounding
+        self.cost_scale_ = float(np.float32(bound)) if bound > 0 else 1.0
+        self._fit_correctness(train, val, gen)
+        c_val = self._filled_costs(val)
+        net = _make_net(self.n_features_in_, K + M, self.head, tuple(self.hidden))
+        tensors = (self._std(train.X), torch.from_numpy(self._training_costs(train).astype(np.float32)))
+        Xv, cv = self._std(val.X), torch.from_numpy(c_val.astype(np.float32))
+
+        def val_score(m: nn.Module) -> tuple[float, float]:
+            G = m(Xv)
+            cost = realised_costs(c_val, G.argmax(dim=1).numpy()).mean()
+            return (float(cost), float(self._loss(G, cv)))
+
+        self.history_["scorer"] = _train_loop(net, lambda m, xb, cb: self._loss(m(xb), cb),
+                                              tensors, val_score, self._settings(), gen,
+                                              f"{self.loss} surrogate")
+        self.scorer_net_ = net
+        self._calibrate_scorer(val, c_val)
+
+    def _loss(self, logits: torch.Tensor, c: torch.Tensor) -> torch.Tensor:
+        """The chosen surrogate, mean over the batch."""
+        if self.loss == "softmax":
+            return sur.softmax_cost_surrogate(logits, c, alpha=float(self.alpha),
+                                              n_classes=self.n_classes_)
+        return sur.one_vs_all_surrogate(logits, c, n_classes=self.n_classes_,
+                                        cost_scale=self.cost_scale_)
+
+    def _training_costs(self, train: _Part) -> np.ndarray:
+        """Option costs with unknown answers imputed (or doubly robust)."""
+        if self.missing == "impute":
+            return self._filled_costs(train)
+        imputed = self._imputed(train, self._correct_proba(train.X))
+        K = self.n_classes_
+        out = imputed.copy()
+        known = train.known
+        ce = np.where(known, train.costs[:, K:], 0.0)
+        out[:, K:] += np.where(known, train.weights * (ce - imputed[:, K:]), 0.0)
+        out[:, :K] = train.costs[:, :K]
+        return out
+
+    def _calibrate_scorer(self, val: _Part, c_val: np.ndarray) -> None:
+        """Temperature for the class scores; OvA: Platt per option group on validation."""
+        K, M = self.n_classes_, self.n_experts_
+        G = _forward(self.scorer_net_, val.X, self.x_mean_, self.x_scale_).astype(np.float64)
+        self.option_platt_ = np.tile([1.0, 0.0], (1 + M, 1))
+        if self.loss == "softmax":
+            T = cal.fit_temperature(G[:, :K], val.y) if self.calibrate else 1.0
+            self.class_temperature_ = T
+            P0, P1 = (cal.apply_temperature(G[:, :K], t) for t in (1.0, T))
+            self.calibration_["classes"] = {
+                "temperature": T, "ece_before": cal.expected_calibration_error(P0, val.y),
+                "ece_after": cal.expected_calibration_error(P1, val.y)}
+            agree = self.predict_route(val.X) == np.argmin(self.predict_costs(val.X), axis=1)
+            self.calibration_["route_agreement"] = float(agree.mean())
+            return
+        self.class_temperature_ = 1.0
+        B = self.cost_scale_
+        before = cal.expected_calibration_error(self.predict_proba(val.X), val.y)
+        if self.calibrate:
+            t = 1.0 - c_val[:, :K] / B
+            self.option_platt_[0] = cal.fit_platt(G[:, :K].ravel(), np.clip(t.ravel(), 0, 1))
+            for j in range(M):
+                k = val.known[:, j]
+                tj = np.clip(1.0 - val.costs[k, K + j] / B, 0, 1)
+                self.option_platt_[1 + j] = cal.fit_platt(G[k, K + j], tj, val.weights[k, j])
+        self.calibration_["classes"] = {
+            "ece_before": before,
+            "ece_after": cal.expected_calibration_error(self.predict_proba(val.X), val.y)}
+        self.calibration_["options_platt"] = self.option_platt_.tolist()
+
+    # ---- prediction ------------------------------------------------------------------
+
+    def _ova_costs(self, X: np.ndarray) -> np.ndarray:
+        """Calibrated OvA cost estimates ``B (1 - sigmoid(a g + b))``."""
+        G = _forward(self.scorer_net_, X, self.x_mean_, self.x_scale_).astype(np.float64)
+        K = self.n_classes_
+        a = np.concatenate([np.full(K, self.option_platt_[0, 0]), self.option_platt_[1:, 0]])
+        b = np.concatenate([np.full(K, self.option_platt_[0, 1]), self.option_platt_[1:, 1]])
+        return self.cost_scale_ * (1.0 - cal.apply_platt(G, a, b))
+
+    def _ova_proba(self, ec: np.ndarray) -> np.ndarray:
+        """Class probabilities solving ``P C = E[c_class]`` (clipped, renormalised)."""
+        K = self.n_classes_
+        P = np.clip(ec[:, :K] @ np.linalg.pinv(self.cost_matrix_), 0.0, None)
+        s = P.sum(axis=1, keepdims=True)
+        return np.where(s > _EPS, P / np.where(s > _EPS, s, 1.0), 1.0 / K)
+
+    def _ova_correct(self, ec: np.ndarray, P: np.ndarray) -> np.ndarray:
+        """P(expert right) from the expert cost estimates, given class probabilities."""
+        K, C = self.n_classes_, self.cost_matrix_
+        right = (P @ np.diag(C))[:, None]
+        wrong = (P @ costs_mod.wrong_answer_costs(C))[:, None]
+        answer = ec[:, K:] - self.fees_[None, :]
+        gap = wrong - right
+        q = np.where(gap > _EPS, (wrong - answer) / np.where(gap > _EPS, gap, 1.0), 0.5)
+        return np.clip(q, 0.0, 1.0)
+
+    def predict_proba(self, X: ArrayLike) -> np.ndarray:
+        """Class probabilities ``P(y = k | x)``, shape (n, K).
+
+        Softmax: temperature-scaled softmax over the K class scores. OvA: solved from
+        the calibrated class-option cost estimates.
+        """
+        X = self._check_X(X)
+        if self.loss == "ova":
+            return self._ova_proba(self._ova_costs(X))
+        G = _forward(self.scorer_net_, X, self.x_mean_, self.x_scale_)[:, :self.n_classes_]
+        return cal.apply_temperature(G, self.class_temperature_)
+
+    def predict_expert_correct(self, X: ArrayLike) -> np.ndarray:
+        """``P(expert j right | x)``, shape (n, M).
+
+        Softmax: the calibrated correctness model. OvA: read from the scorer's expert
+        outputs (Verma & Nalisnick, 2022).
+        """
+        X = self._check_X(X)
+        if self.loss == "ova":
+            ec = self._ova_costs(X)
+            return self._ova_correct(ec, self._ova_proba(ec))
+        return self._correct_proba(X)
+
+    def predict_costs(self, X: ArrayLike) -> np.ndarray:
+        """Estimated expected cost of each option, shape (n, K + M)."""
+        X = self._check_X(X)
+        if self.loss == "ova":
+            return self._ova_costs(X)
+        return costs_mod.expected_cost_vectors(self.predict_proba(X), self._correct_proba(X),
+                                               cost_matrix=self.cost_matrix_, fees=self.fees_)
+
+    def predict_route(self, X: ArrayLike) -> np.ndarray:
+        """Chosen option per case (``K + j`` = expert j), shape (n,).
+
+        Softmax: ``argmax`` of the scores. OvA: least calibrated cost estimate.
+        """
+        X = self._check_X(X)
+        if self.loss == "ova":
+            return np.argmin(self._ova_costs(X), axis=1).astype(np.int64)
+        G = _forward(self.scorer_net_, X, self.x_mean_, self.x_scale_)
+        return np.argmax(G, axis=1).astype(np.int64)
+
+    def _extra_arrays(self) -> dict[str, np.ndarray]:
+        """Temperature, OvA Platt parameters and the cost bound."""
+        return {"class_temperature": np.array([self.class_temperature_]),
+                "option_platt": self.option_platt_, "cost_scale": np.array([self.cost_scale_])}
+
+    def _restore(self, arrays: Mapping[str, np.ndarray], meta: Mapping[str, Any]) -> None:
+        """Rebuild the scorer and calibration."""
+        super()._restore(arrays, meta)
+        self.class_temperature_ = float(np.asarray(arrays["class_temperature"]).reshape(-1)[0])
+        self.cost_scale_ = float(np.asarray(arrays["cost_scale"]).reshape(-1)[0])
+        self.option_platt_ = np.asarray(arrays["option_platt"], np.float64).reshape(-1, 2)
+        self.scorer_net_ = _load_net(
+            _make_net(self.n_features_in_, self.n_classes_ + self.n_experts_, self.head,
+                      tuple(self.hidden)), "scorer", arrays)
+
+
+_ROUTERS: dict[str, type[_BaseRouter]] = {"PluginRouter": PluginRouter,
+                                          "SurrogateRouter": SurrogateRouter}
+
+
+def router_from_arrays(arrays: Mapping[str, np.ndarray], meta: Mapping[str, Any]) -> _BaseRouter:
+    """Rebuild a fitted router from :meth:`get_arrays` output (no code is loaded).
+
+    Parameters
+    ----------
+    arrays : mapping of str to ndarray
+    meta : mapping
+        The JSON-able description returned beside the arrays.
+
+    Returns
+    -------
+    PluginRouter or SurrogateRouter
+    """
+    if int(meta.get("format_version", -1)) != ARRAYS_FORMAT:
+        raise ValueError(f"unknown router format {meta.get('format_version')!r}")
+    cls = _ROUTERS.get(str(meta.get("router")))
+    if cls is None:
+        raise ValueError(f"unknown router class {meta.get('router')!r}")
+    params = dict(meta["params"])
+    params["hidden"] = tuple(int(h) for h in params["hidden"])
+    router = cls(**params)
+    router._restore(arrays, meta)
+    return router
+

@@ -1,0 +1,443 @@
+"""Tests of routeplan.competence against published data, reference libraries and hand arithmetic."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from sklearn.datasets import load_iris
+from sklearn.metrics import adjusted_rand_score, cohen_kappa_score, precision_recall_fscore_support
+from sklearn.metrics import confusion_matrix as sk_confusion_matrix
+from statsmodels.stats.inter_rater import fleiss_kappa as sm_fleiss_kappa
+from statsmodels.stats.proportion import proportion_confint
+
+from routeplan.competence import (
+    MODEL,
+    agreement_table,
+    competence_report,
+    confusion_matrices,
+    dawid_skene,
+    expert_accuracy_table,
+    fleiss_for_shared,
+    latent_accuracy_table,
+    per_class_table,
+    region_summary,
+    regions_from_features,
+)
+from routeplan.stats import mean_interval
+
+DATA = Path(__file__).parent / "data"
+
+
+def _wilson(k, n):
+    """statsmodels' Wilson interval, the reference for every interval below."""
+    return proportion_confint(k, n, method="wilson")
+
+
+# --------------------------------------------------------------------------- fixtures
+
+
+@pytest.fixture
+def tiny():
+    """A hand-computable example: 6 cases, experts a and b, a model."""
+    truth = np.array([0, 1, 0, 1, -1, 1])
+    answers = pd.DataFrame({
+        "case": [0, 1, 2, 3, 4, 0, 1, 2, 3, 5],
+        "expert": ["a"] * 5 + ["b"] * 5,
+        "answer": [0, 1, 1, 1, 0, 0, 0, 0, 1, 1],
+        "audit": [True, True, False, False, False, True, False, True, False, True],
+    })
+    model = np.array([0, 0, 0, 0, 1, 0])
+    return answers, truth, model
+
+
+@pytest.fixture(scope="module")
+def anaesthesia():
+    """Dawid & Skene (1979) anaesthesia ratings as long-form answers, codes 0..3."""
+    raw = pd.read_csv(DATA / "dawid_skene_1979_anaesthesia.csv")
+    return pd.DataFrame({
+        "case": raw["patient"] - 1,
+        "expert": "observer_" + raw["observer"].astype(str),
+        "answer": raw["rating"] - 1,
+    })
+
+
+def _simulate_annotators(seed, n_cases=3000, n_experts=5, k=3):
+    """Seeded annotators with known confusion matrices; returns answers, truth, prior, confusion."""
+    rng = np.random.default_rng(seed)
+    prior = np.array([0.5, 0.3, 0.2])
+    truth = rng.choice(k, size=n_cases, p=prior)
+    conf = np.empty((n_experts, k, k))
+    for j in range(n_experts):
+        for c in range(k):
+            conf[j, c] = rng.dirichlet(np.ones(k))
+            diag = rng.uniform(0.6, 0.9)
+            conf[j, c] = conf[j, c] * (1 - diag) / (1 - conf[j, c, c]) * (np.arange(k) != c)
+            conf[j, c, c] = diag
+    rows = []
+    for j in range(n_experts):
+        u = rng.random(n_cases)[:, None]
+        answer = (u > np.cumsum(conf[j, truth], axis=1)).sum(axis=1)
+        rows.append(pd.DataFrame({"case": np.arange(n_cases), "expert": f"e{j}", "answer": answer}))
+    return pd.concat(rows, ignore_index=True), truth, prior, conf
+
+
+# --------------------------------------------------------------------------- accuracy table
+
+
+def test_accuracy_table_hand_example(tiny):
+    answers, truth, model = tiny
+    table = expert_accuracy_table(
+        answers, truth, fees={"a": 0.5, "b": 0.25}, model_pred=model, error_cost=2.0
+    ).set_index("expert")
+    # hand arithmetic (common practice): a answered 5, 4 with truth, wrong only on case 2
+    assert table.loc["a", "n_answered"] == 5 and table.loc["a", "n_scored"] == 4
+    assert table.loc["a", "accuracy"] == pytest.approx(0.75)
+    # b: right on cases 0, 2, 3, 5, wrong on 1 -> 4/5; the model (always 0) is right on 0, 2
+    assert table.loc["b", "accuracy"] == pytest.approx(0.8)
+    assert table.loc[MODEL, "n_scored"] == 5 and table.loc[MODEL, "accuracy"] == pytest.approx(0.4)
+    # Wilson intervals against statsmodels' proportion_confint(method="wilson")
+    for name, k, n in [("a", 3, 4), ("b", 4, 5), (MODEL, 2, 5)]:
+        low, high = _wilson(k, n)
+        assert table.loc[name, "accuracy_low"] == pytest.approx(low)
+        assert table.loc[name, "accuracy_high"] == pytest.approx(high)
+    # fee-adjusted value (model error - expert error) * error_cost / fee, hand arithmetic:
+    # a: model wrong on cases 1, 3 of 0..3 -> (0.5 - 0.25) * 2 / 0.5 = 1.0
+    # b: model wrong on 1, 3, 5 of 0, 1, 2, 3, 5 -> (0.6 - 0.2) * 2 / 0.25 = 3.2
+    assert table.loc["a", "model_accuracy"] == pytest.approx(0.5)
+    assert table.loc["a", "value_per_fee"] == pytest.approx(1.0)
+    assert table.loc["b", "cost_saved_per_case"] == pytest.approx(0.8)
+    assert table.loc["b", "value_per_fee"] == pytest.approx(3.2)
+    assert np.isnan(table.loc[MODEL, "value_per_fee"])
+
+
+def test_accuracy_table_kappa_and_value_interval(tiny):
+    answers, truth, model = tiny
+    table = expert_accuracy_table(answers, truth, model_pred=model, fees={"a": 0.5})
+    table = table.set_index("expert")
+    scored = answers[truth[answers["case"]] >= 0]
+    for name, part in scored.groupby("expert"):
+        t, a = truth[part["case"]], part["answer"].to_numpy()
+        # Cohen's kappa against sklearn.metrics.cohen_kappa_score
+        assert table.loc[name, "kappa"] == pytest.approx(cohen_kappa_score(t, a))
+    part = scored[scored["expert"] == "a"]
+    t = truth[part["case"]]
+    d = (model[part["case"]] != t).astype(float) - (part["answer"].to_numpy() != t)
+    _, low, high = mean_interval(d)  # normal interval of the paired difference (common practice)
+    assert table.loc["a", "cost_saved_low"] == pytest.approx(low)
+    assert table.loc["a", "value_high"] == pytest.approx(high / 0.5)
+    assert np.isnan(table.loc["b", "value_per_fee"])  # no fee for b
+
+
+def test_audit_basis_hand_example(tiny):
+    answers, truth, model = tiny
+    table = expert_accuracy_table(answers, truth, model_pred=model).set_index("expert")
+    # audit answers: a on cases 0, 1 (both right); b on 0, 2, 5 (all right); the model on
+    # the audited cases 0, 1, 2, 5 (right on 0, 2); hand arithmetic
+    assert table.loc["a", "audit_n_scored"] == 2 and table.loc["a", "audit_accuracy"] == 1.0
+    assert table.loc["b", "audit_n_scored"] == 3 and table.loc["b", "audit_accuracy"] == 1.0
+    assert table.loc[MODEL, "audit_accuracy"] == pytest.approx(0.5)
+    low, high = _wilson(3, 3)  # statsmodels
+    assert table.loc["b", "audit_accuracy_low"] == pytest.approx(low)
+    assert not table["audit_weighted"].any()
+    # the flag rule: interval wider than max_width (documented in the module)
+    width = table["accuracy_high"] - table["accuracy_low"]
+    assert (table["too_wide"] == (width > 0.2)).all()
+    assert (expert_accuracy_table(answers, truth, max_width=0.7)["too_wide"]
+            == (width.to_numpy()[:2] > 0.7)).all()
+
+
+def test_weighted_audit_is_hajek_with_kish_size():
+    rng = np.random.default_rng(21)
+    n = 400
+    truth = rng.integers(2, size=n)
+    answer = np.where(rng.random(n) < 0.8, truth, 1 - truth)
+    weight = rng.choice([2.0, 10.0], size=n)
+    answers = pd.DataFrame({"case": np.arange(n), "expert": "a", "answer": answer,
+                            "audit": True, "weight": weight})
+    row = expert_accuracy_table(answers, truth).iloc[0]
+    right = (answer == truth).astype(float)
+    assert row["audit_weighted"]
+    # Hajek estimator: sum w * right / sum w (Horvitz-Thompson ratio form, common practice)
+    assert row["audit_accuracy"] == pytest.approx(np.average(right, weights=weight))
+    # Kish effective sample size (Kish, Survey Sampling, 1965)
+    n_eff = weight.sum() ** 2 / (weight**2).sum()
+    assert row["audit_n_effective"] == pytest.approx(n_eff)
+    low, _ = _wilson(row["audit_accuracy"] * n_eff, n_eff)
+    assert row["audit_accuracy_low"] == pytest.approx(low)
+    # the truth basis stays unweighted
+    assert row["accuracy"] == pytest.approx(right.mean())
+
+
+def test_audit_sample_is_unbiased_where_acquisition_is_not():
+    # seeded simulation with a known pool accuracy: easy cases right 95%, hard ones 60%;
+    # the acquisition asked about hard cases only, the audit drew cases uniformly at random
+    rng = np.random.default_rng(5)
+    n = 20000
+    hard = rng.random(n) < 0.5
+    truth = rng.integers(3, size=n)
+    right = rng.random(n) < np.where(hard, 0.6, 0.95)
+    answer = np.where(right, truth, (truth + 1) % 3)
+    pool_accuracy = np.mean(np.where(hard, 0.6, 0.95))
+    chosen = np.concatenate([rng.choice(np.flatnonzero(hard), 1500, replace=False),
+                             rng.choice(n, 600, replace=False)])
+    answers = pd.DataFrame({"case": chosen, "expert": "a", "answer": answer[chosen],
+                            "audit": np.arange(chosen.size) >= 1500})
+    row = expert_accuracy_table(answers, truth).iloc[0]
+    assert row["audit_accuracy_low"] <= pool_accuracy <= row["audit_accuracy_high"]
+    assert row["accuracy_high"] < pool_accuracy  # the selected answers mislead
+
+
+def test_tables_by_group_and_region(tiny):
+    answers, truth, model = tiny
+    group = np.array(["x", "x", "y", "y", "x", "y"])
+    t = expert_accuracy_table(
+        answers, truth, fees={"a": 0.5, "b": 0.25}, model_pred=model, error_cost=2.0,
+        by="group", group=group,
+    ).set_index(["expert", "group"])
+    # hand arithmetic: a in x answered cases 0, 1, 4 (4 without truth), right on 0 and 1;
+    # the model is wrong on 1 of them -> (0.5 - 0) * 2 / 0.5 = 2
+    assert t.loc[("a", "x"), "n_answered"] == 3 and t.loc[("a", "x"), "accuracy"] == 1.0
+    assert t.loc[("a", "x"), "value_per_fee"] == pytest.approx(2.0)
+    # b in y: cases 2, 3, 5 all right; model wrong on 3 and 5 -> (2/3) * 2 / 0.25 = 16/3
+    assert t.loc[("b", "y"), "value_per_fee"] == pytest.approx(16 / 3)
+    assert t.loc[(MODEL, "y"), "accuracy"] == pytest.approx(1 / 3)
+    region = np.array([0, 0, 1, 1, 2, 2])
+    r = expert_accuracy_table(answers, truth, by="region", region=region)
+    r = r.set_index(["expert", "region"])
+    # a: region 0 cases 0, 1 right; region 1 cases 2 (wrong), 3 (right); region 2 case 4 only,
+    # without truth -> answered but not scored
+    assert r.loc[("a", 1), "accuracy"] == pytest.approx(0.5)
+    assert r.loc[("a", 2), "n_answered"] == 1 and r.loc[("a", 2), "n_scored"] == 0
+    assert np.isnan(r.loc[("a", 2), "accuracy"])
+    assert ("b", 2) in r.index and r.loc[("b", 2), "n_scored"] == 1
+
+
+def test_by_class_matches_per_class_recall_and_sklearn():
+    rng = np.random.default_rng(8)
+    n = 600
+    truth = rng.integers(3, size=n)
+    pred = np.where(rng.random(n) < 0.7, truth, rng.integers(3, size=n))
+    answers = pd.DataFrame({"case": np.arange(n), "expert": "a", "answer": pred})
+    by_class = expert_accuracy_table(answers, truth, by="class", labels=["p", "q", "r"])
+    per_class = per_class_table(answers, truth, labels=["p", "q", "r"])
+    # reference: sklearn.metrics.precision_recall_fscore_support
+    prec, rec, f1, support = precision_recall_fscore_support(truth, pred, labels=[0, 1, 2])
+    np.testing.assert_allclose(by_class["accuracy"], rec)
+    np.testing.assert_allclose(per_class["recall"], rec)
+    np.testing.assert_allclose(per_class["precision"], prec)
+    np.testing.assert_allclose(per_class["f1"], f1)
+    np.testing.assert_array_equal(per_class["support"], support)
+    low, _ = _wilson(np.diag(sk_confusion_matrix(truth, pred)), support)  # statsmodels
+    np.testing.assert_allclose(per_class["recall_low"], low)
+    assert list(by_class["class"]) == ["p", "q", "r"]
+
+
+def test_confusion_matrices_match_sklearn(tiny):
+    answers, truth, model = tiny
+    mats = confusion_matrices(answers, truth, model_pred=model)
+    scored = answers[truth[answers["case"]] >= 0]
+    for name, part in scored.groupby("expert"):
+        # reference: sklearn.metrics.confusion_matrix
+        ref = sk_confusion_matrix(truth[part["case"]], part["answer"], labels=[0, 1])
+        np.testing.assert_array_equal(mats[name], ref)
+    known = truth >= 0
+    np.testing.assert_array_equal(mats[MODEL], sk_confusion_matrix(truth[known], model[known]))
+
+
+def test_truth_as_series_with_case_ids(tiny):
+    answers, truth, model = tiny
+    ids = np.array([101, 102, 103, 104, 105, 106])
+    by_id = answers.assign(case=ids[answers["case"]])
+    left = expert_accuracy_table(by_id, pd.Series(truth, index=ids), model_pred=model)
+    right = expert_accuracy_table(answers, truth, model_pred=model)
+    pd.testing.assert_frame_equal(left, right)  # common practice: ids and positions agree
+
+
+def test_validation_errors(tiny):
+    answers, truth, model = tiny
+    with pytest.raises(ValueError, match="reserved"):
+        expert_accuracy_table(answers.assign(expert="model"), truth, model_pred=model)
+    with pytest.raises(ValueError, match="outside"):
+        expert_accuracy_table(answers.assign(answer=5), truth, n_classes=2)
+    with pytest.raises(ValueError, match="lacks"):
+        expert_accuracy_table(answers.drop(columns="answer"), truth)
+    with pytest.raises(ValueError, match="group"):
+        expert_accuracy_table(answers, truth, by="group")
+    with pytest.raises(ValueError, match="positions"):
+        expert_accuracy_table(answers.assign(case=9), truth)
+    with pytest.raises(ValueError, match="error_cost"):
+        expert_accuracy_table(answers, truth, error_cost=0)
+
+
+# --------------------------------------------------------------------------- agreement
+
+
+def test_agreement_table_matches_sklearn_on_shared_cases():
+    rng = np.random.default_rng(17)
+    frames = []
+    for name in ["ann", "bob", "cy"]:
+        cases = rng.choice(300, size=200, replace=False)
+        frames.append(pd.DataFrame({"case": cases, "expert": name,
+                                    "answer": rng.integers(3, size=200)}))
+    answers = pd.concat(frames, ignore_index=True)
+    # a repeated answer: ann answers her first case again, differently; the first one counts
+    first = frames[0].iloc[0]
+    answers = pd.concat([answers, pd.DataFrame({"case": [first["case"]], "expert": ["ann"],
+                                                "answer": [(first["answer"] + 1) % 3]})])
+    table = agreement_table(answers, 3).set_index(["expert_a", "expert_b"])
+    for (x, y), row in table.iterrows():
+        fx = frames[["ann", "bob", "cy"].index(x)].set_index("case")["answer"]
+        fy = frames[["ann", "bob", "cy"].index(y)].set_index("case")["answer"]
+        shared = fx.index.intersection(fy.index)
+        assert row["n_shared"] == len(shared)
+        # reference: sklearn.metrics.cohen_kappa_score on the shared cases
+        assert row["kappa"] == pytest.approx(cohen_kappa_score(fx[shared], fy[shared]))
+
+
+def test_fleiss_for_shared_published_diagnoses():
+    wide = pd.read_csv(DATA / "fleiss_1971_diagnoses.csv")
+    answers = wide.melt(id_vars="subject", var_name="expert", value_name="rating")
+    answers = pd.DataFrame({"case": answers["subject"], "expert": answers["expert"],
+                            "answer": answers["rating"] - 1})
+    table = fleiss_for_shared(answers, 5)
+    assert len(table) == 1 and table.loc[0, "n_raters"] == 6 and table.loc[0, "n_cases"] == 30
+    # R irr::kappam.fleiss(diagnoses) = 0.4302445 (Fleiss 1971 data; value recorded in
+    # statsmodels' test_inter_rater.py)
+    assert table.loc[0, "kappa"] == pytest.approx(0.4302445, abs=1e-7)
+
+
+def test_fleiss_groups_cases_by_rater_set():
+    rng = np.random.default_rng(23)
+    panels = {"abc": ["a", "b", "c"], "abcd": ["a", "b", "c", "d"]}
+    frames, ratings = [], {}
+    for offset, (key, panel) in zip([0, 1000], panels.items()):
+        ratings[key] = rng.integers(3, size=(40, len(panel)))
+        for j, name in enumerate(panel):
+            frames.append(pd.DataFrame({"case": offset + np.arange(40), "expert": name,
+                                        "answer": ratings[key][:, j]}))
+    # two experts only on other cases: below min_raters, not reported
+    frames.append(pd.DataFrame({"case": 5000 + np.arange(40), "expert": "a", "answer": 0}))
+    frames.append(pd.DataFrame({"case": 5000 + np.arange(40), "expert": "b", "answer": 1}))
+    answers = pd.concat(frames, ignore_index=True)
+
+    def counts(r):
+        return np.stack([(r == k).sum(axis=1) for k in range(3)], axis=1)
+
+    table = fleiss_for_shared(answers, 3).set_index("experts")
+    assert sorted(table.index) == ["a, b, c", "a, b, c, d"]
+    # reference: statsmodels.stats.inter_rater.fleiss_kappa on each panel's counts
+    assert table.loc["a, b, c", "kappa"] == pytest.approx(sm_fleiss_kappa(counts(ratings["abc"])))
+    assert table.loc["a, b, c, d", "kappa"] == pytest.approx(
+        sm_fleiss_kappa(counts(ratings["abcd"]))
+    )
+    # a fixed panel: the 80 cases a, b and c all answered, d's answers left out
+    panel = fleiss_for_shared(answers, 3, experts=["a", "b", "c"])
+    both = np.concatenate([ratings["abc"], ratings["abcd"][:, :3]])
+    assert panel.loc[0, "n_cases"] == 80
+    assert panel.loc[0, "kappa"] == pytest.approx(sm_fleiss_kappa(counts(both)))  # statsmodels
+
+
+# --------------------------------------------------------------------------- Dawid-Skene
+
+
+def test_dawid_skene_anaesthesia(anaesthesia):
+    res = dawid_skene(anaesthesia, 4)
+    assert res.converged and res.n_iter < 100
+    # class proportions published by Dawid & Skene (Applied Statistics 1979), recalled from
+    # memory (approximate): 0.40, 0.42, 0.11, 0.07 -> tolerance 0.05
+    np.testing.assert_allclose(res.class_prior, [0.40, 0.42, 0.11, 0.07], atol=0.05)
+    # observer 1 rated each patient three times: the repeated rows count
+    assert res.n_answers[res.experts.index("observer_1")] == 135
+    # sanity check, not an exact value (reference README: 3 patients in one run): the EM's
+    # most likely class and the majority vote disagree on a few patients only
+    votes = pd.crosstab(anaesthesia["case"], anaesthesia["answer"]).to_numpy()
+    disagree = np.sum(votes.argmax(axis=1) != res.most_likely)
+    assert 1 <= disagree <= 5
+    np.testing.assert_allclose(res.posterior.sum(axis=1), 1.0)
+    np.testing.assert_allclose(res.confusion.sum(axis=2), 1.0)
+
+
+def test_dawid_skene_em_never_decreases_likelihood(anaesthesia):
+    # EM ascent property (Dempster, Laird & Rubin, JRSS B 1977), unsmoothed likelihood
+    lls = [
+        dawid_skene(anaesthesia, 4, max_iter=i, smoothing=0.0).log_likelihood
+        for i in range(1, 12)
+    ]
+    assert np.all(np.diff(lls) >= -1e-9) and lls[-1] > lls[0]
+
+
+def test_dawid_skene_recovers_simulated_annotators():
+    answers, truth, prior, conf = _simulate_annotators(seed=31)
+    res = dawid_skene(answers, 3)
+    # known parameters of the seeded simulation; with ~600-1500 cases per class a rate's
+    # standard error is under 0.02, so 0.05 is a generous tolerance; prior within 0.03
+    assert res.converged
+    np.testing.assert_allclose(res.class_prior, prior, atol=0.03)
+    np.testing.assert_allclose(res.confusion, conf, atol=0.05)
+    assert np.mean(res.most_likely == truth) > 0.9
+    latent = latent_accuracy_table(res)
+    expected = np.diagonal(conf, axis1=1, axis2=2) @ prior
+    np.testing.assert_allclose(latent["latent_accuracy"], expected, atol=0.03)
+
+
+def test_dawid_skene_with_known_truth():
+    answers, truth, prior, conf = _simulate_annotators(seed=37, n_cases=1500)
+    partial = np.where(np.random.default_rng(1).random(truth.size) < 0.3, truth, -1)
+    res = dawid_skene(answers, 3, truth=partial)
+    known = partial >= 0
+    # cases with known truth keep it (semi-supervised variant, documented)
+    np.testing.assert_array_equal(res.most_likely[known], truth[known])
+    assert np.all(res.posterior[known].max(axis=1) == 1.0)
+    np.testing.assert_allclose(res.confusion, conf, atol=0.06)  # known simulated parameters
+
+
+# --------------------------------------------------------------------------- regions and report
+
+
+def test_regions_from_features_on_iris():
+    X, y = load_iris(return_X_y=True)  # scikit-learn's bundled iris data
+    region = regions_from_features(X, n_regions=3, random_state=0)
+    assert set(region) == {0, 1, 2}
+    # common practice: standardised k-means finds the iris species well (ARI well above 0.5)
+    assert adjusted_rand_score(y, region) > 0.5
+    # standardising makes the regions independent of each feature's unit
+    rescaled = regions_from_features(X * [1000.0, 1.0, 0.01, 1.0], n_regions=3, random_state=0)
+    assert adjusted_rand_score(region, rescaled) == pytest.approx(1.0)
+    # centres fitted on a seeded subset still find the species, reproducibly
+    subset = regions_from_features(X, n_regions=3, random_state=0, fit_size=100)
+    assert adjusted_rand_score(y, subset) > 0.5
+    np.testing.assert_array_equal(
+        subset, regions_from_features(X, n_regions=3, random_state=0, fit_size=100)
+    )
+    summary = region_summary(X, region, ["sl", "sw", "pl", "pw"])
+    assert summary["n_cases"].sum() == 150
+    first = summary.set_index("region").loc[region[0]]
+    assert first["pl"] == pytest.approx(X[region == region[0], 2].mean())  # numpy mean
+    with pytest.raises(ValueError):
+        regions_from_features(X[:2], n_regions=3)
+
+
+def test_competence_report_bundles_tables_and_serialises(tiny):
+    answers, truth, model = tiny
+    report = competence_report(
+        answers, truth, labels=["no", "yes"], fees={"a": 0.5, "b": 0.25}, model_pred=model,
+        group=["x", "x", "y", "y", "x", "y"], region=[0, 0, 1, 1, 2, 2],
+    )
+    pd.testing.assert_frame_equal(
+        report.accuracy,
+        expert_accuracy_table(answers, truth, labels=["no", "yes"], fees={"a": 0.5, "b": 0.25},
+                              model_pred=model),
+    )
+    assert report.by_group is not None and report.by_region is not None
+    assert report.latent is not None  # case 4 has no truth, so the latent model ran
+    assert report.latent.most_likely[list(report.latent.cases).index(1)] == 1  # known truth kept
+    text = json.dumps(report.to_dict(), allow_nan=False)  # nan must become null
+    back = json.loads(text)
+    assert back["labels"] == ["no", "yes"] and back["accuracy"][0]["expert"] == "a"
+    assert [c["case"] for c in back["latent"]["cases"]] == [4]
+    quiet = competence_report(answers[answers["case"] != 4], truth)
+    assert quiet.latent is None and quiet.by_group is None

@@ -1,0 +1,175 @@
+"""Tests of routeplan.stats against reference libraries and published values."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy.stats import binom
+from sklearn.metrics import cohen_kappa_score
+from sklearn.metrics import confusion_matrix as sk_confusion_matrix
+from statsmodels.stats.inter_rater import fleiss_kappa as sm_fleiss_kappa
+from statsmodels.stats.proportion import proportion_confint
+from statsmodels.stats.weightstats import DescrStatsW
+
+from routeplan.stats import (
+    cohen_kappa,
+    confusion_matrix,
+    fleiss_kappa,
+    kappa_from_confusion,
+    mean_interval,
+    wilson_interval,
+)
+
+DATA = Path(__file__).parent / "data"
+
+
+# --------------------------------------------------------------------------- Wilson
+
+
+@pytest.mark.parametrize("confidence", [0.8, 0.95, 0.99])
+def test_wilson_matches_statsmodels_over_a_grid(confidence):
+    trials = np.repeat(np.arange(1, 61), np.arange(2, 62))
+    successes = np.concatenate([np.arange(n + 1) for n in range(1, 61)])
+    low, high = wilson_interval(successes, trials, confidence)
+    # reference: statsmodels.stats.proportion.proportion_confint(method="wilson")
+    ref_low, ref_high = proportion_confint(successes, trials, alpha=1 - confidence, method="wilson")
+    np.testing.assert_allclose(low, ref_low, atol=1e-12)
+    np.testing.assert_allclose(high, ref_high, atol=1e-12)
+
+
+def test_wilson_matches_published_values():
+    ref = pd.read_csv(DATA / "wilson_interval_reference.csv")
+    low, high = wilson_interval(ref["successes"], ref["trials"])
+    # each row's source is in the CSV: R binom.confint (via statsmodels' test results) or
+    # Newcombe, Stat. Med. 1998 (recomputed; agreement with the paper's table from memory);
+    # tolerance: half a unit in the last published decimal
+    tol = 0.5 * 10.0 ** (-ref["decimals"].to_numpy()) + 1e-12
+    assert np.all(np.abs(low - ref["low"].to_numpy()) <= tol)
+    assert np.all(np.abs(high - ref["high"].to_numpy()) <= tol)
+
+
+def test_wilson_edges_and_shapes():
+    low, high = wilson_interval(0, 0)
+    assert np.isnan(low) and np.isnan(high)  # no trials: no interval (documented contract)
+    assert isinstance(wilson_interval(3, 10)[0], float)
+    low, high = wilson_interval(np.array([[0, 5], [5, 0]]), np.array([[5, 5], [5, 0]]))
+    assert low.shape == (2, 2) and np.isnan(high[1, 1])
+    # common practice: zero successes give lower bound 0, all successes upper bound 1
+    assert low[0, 0] == 0.0 and high[0, 1] == 1.0
+    with pytest.raises(ValueError):
+        wilson_interval(6, 5)
+    with pytest.raises(ValueError):
+        wilson_interval(1, 5, confidence=1.5)
+
+
+def test_wilson_coverage_by_simulation():
+    # Wilson's coverage oscillates with n and p (Brown, Cai & DasGupta, Statistical Science
+    # 2001), so the check uses one (n, p) whose exact coverage, computed from scipy's binomial
+    # pmf, is close to 0.95: n=150, p=0.8 (about 0.948). 1,000 seeded draws must land in
+    # 93-97% (about +/-2.4 binomial standard errors around 0.95).
+    n, p = 150, 0.8
+    k = np.arange(n + 1)
+    lo, hi = wilson_interval(k, n)
+    exact = binom.pmf(k, n, p)[(lo <= p) & (p <= hi)].sum()  # scipy.stats.binom
+    assert 0.93 <= exact <= 0.97
+    draws = np.random.default_rng(20240601).binomial(n, p, size=1000)
+    low, high = wilson_interval(draws, n)
+    coverage = np.mean((low <= p) & (p <= high))
+    assert 0.93 <= coverage <= 0.97
+
+
+# --------------------------------------------------------------------------- mean interval
+
+
+def test_mean_interval_matches_statsmodels():
+    x = np.random.default_rng(3).normal(2.0, 1.5, size=80)
+    mean, low, high = mean_interval(x, confidence=0.9)
+    # reference: statsmodels DescrStatsW.zconfint_mean (normal interval, sample std ddof=1)
+    ref_low, ref_high = DescrStatsW(x).zconfint_mean(alpha=0.1)
+    assert mean == pytest.approx(x.mean())
+    assert (low, high) == pytest.approx((ref_low, ref_high), rel=1e-12)
+
+
+def test_mean_interval_weights():
+    x = np.random.default_rng(4).normal(size=50)
+    w = np.random.default_rng(5).uniform(0.5, 3.0, size=50)
+    mean, _, _ = mean_interval(x, weights=w)
+    assert mean == pytest.approx(np.average(x, weights=w))  # numpy's weighted mean
+    # common practice: equal weights change nothing (Kish n_eff equals n)
+    assert mean_interval(x, weights=np.full(50, 7.0)) == pytest.approx(mean_interval(x))
+    assert np.isnan(mean_interval([1.0])[1])
+    with pytest.raises(ValueError):
+        mean_interval([1.0, np.nan])
+
+
+# --------------------------------------------------------------------------- confusion and kappa
+
+
+def test_confusion_matrix_matches_sklearn():
+    rng = np.random.default_rng(7)
+    t, p = rng.integers(4, size=300), rng.integers(4, size=300)
+    w = rng.uniform(size=300)
+    # reference: sklearn.metrics.confusion_matrix (rows truth, columns prediction)
+    np.testing.assert_array_equal(
+        confusion_matrix(t, p, 4), sk_confusion_matrix(t, p, labels=range(4))
+    )
+    np.testing.assert_allclose(
+        confusion_matrix(t, p, 4, weights=w),
+        sk_confusion_matrix(t, p, labels=range(4), sample_weight=w),
+    )
+    with pytest.raises(ValueError):
+        confusion_matrix([0, 4], [0, 1], 4)
+
+
+def test_cohen_kappa_matches_sklearn():
+    rng = np.random.default_rng(11)
+    a = rng.integers(3, size=200)
+    b = np.where(rng.random(200) < 0.6, a, rng.integers(3, size=200))
+    w = rng.uniform(0.1, 2.0, size=200)
+    # reference: sklearn.metrics.cohen_kappa_score, unweighted and with sample_weight
+    assert cohen_kappa(a, b, 3) == pytest.approx(cohen_kappa_score(a, b))
+    assert cohen_kappa(a, b, 3, weights=w) == pytest.approx(
+        cohen_kappa_score(a, b, sample_weight=w)
+    )
+    # a stack of confusion matrices gives each matrix's kappa
+    stack = np.stack([confusion_matrix(a, b, 3), confusion_matrix(a, a, 3)])
+    np.testing.assert_allclose(kappa_from_confusion(stack), [cohen_kappa_score(a, b), 1.0])
+
+
+def test_cohen_kappa_published_values():
+    # R irr::kappa2(anxiety[, 2:3]) = -0.006289308 (irr's `anxiety` data, raters 2 and 3,
+    # as recorded in statsmodels/stats/tests/test_inter_rater.py); ratings 1..6 -> codes 0..5
+    rater2 = [3, 6, 4, 6, 2, 4, 2, 4, 3, 3, 2, 3, 3, 3, 2, 2, 1, 3, 3, 4]
+    rater3 = [2, 1, 4, 4, 3, 2, 1, 6, 1, 1, 1, 2, 3, 3, 1, 1, 3, 3, 2, 2]
+    assert cohen_kappa(np.subtract(rater2, 1), np.subtract(rater3, 1), 6) == pytest.approx(
+        -0.006289308, abs=1e-9
+    )
+    # SAS printout for a 3x3 table, kappa 0.4842 (statsmodels' test_inter_rater.py)
+    table = [[0, 4, 1], [0, 8, 0], [0, 1, 5]]
+    assert kappa_from_confusion(table) == pytest.approx(0.4842, abs=5e-5)
+
+
+def test_kappa_undefined_is_nan():
+    # Cohen 1960: kappa is undefined when chance agreement is 1 (both raters constant)
+    assert np.isnan(cohen_kappa([1, 1, 1], [1, 1, 1], 3))
+    assert np.isnan(cohen_kappa([], [], 3))
+
+
+def test_fleiss_kappa_matches_statsmodels_and_worked_example():
+    # worked example of the Wikipedia article "Fleiss' kappa" (10 subjects, 14 raters):
+    # kappa 0.210, also used by statsmodels' test_inter_rater.py
+    table = np.array([
+        [0, 0, 0, 0, 14], [0, 2, 6, 4, 2], [0, 0, 3, 5, 6], [0, 3, 9, 2, 0], [2, 2, 8, 1, 1],
+        [7, 7, 0, 0, 0], [3, 2, 6, 3, 0], [2, 5, 3, 2, 2], [6, 5, 2, 1, 0], [0, 2, 2, 3, 7],
+    ])
+    assert fleiss_kappa(table) == pytest.approx(0.210, abs=5e-4)
+    rng = np.random.default_rng(13)
+    for _ in range(5):
+        counts = rng.multinomial(5, rng.dirichlet(np.ones(4)), size=40)
+        # reference: statsmodels.stats.inter_rater.fleiss_kappa(method="fleiss")
+        assert fleiss_kappa(counts) == pytest.approx(sm_fleiss_kappa(counts))
+    with pytest.raises(ValueError):
+        fleiss_kappa([[2, 1], [1, 1]])  # unequal numbers of ratings
