@@ -85,7 +85,7 @@ class App:
     def say(self, text: str) -> None:
         """Print a line unless --quiet."""
         if not self.quiet:
-            self.console.print(text, markup=False)
+            self.console.print(text, markup=False, soft_wrap=True)  # one line: paths stay whole
 
     def emit_json(self, data: Any) -> None:
         """Write JSON to stdout (plain, for scripts)."""
@@ -318,6 +318,44 @@ def answers_import(app, files, strict, as_json):
     _report_imports(app, results, as_json)
 
 
+# --------------------------------------------------------------------------- fit
+
+
+@cli.command()
+@click.option("--seed", type=int, default=0, show_default=True, help="Seeds the validation split and every router.")
+@click.option("--router", "routers", multiple=True,
+              help="Fit only this router (repeatable): plugin, softmax-mlp, ova-mlp, softmax-linear, ... "
+                   "Default: the standard candidates, keeping the best on validation.")
+@click.option("--max-epochs", type=click.IntRange(1, 10_000), default=None, help="Cap on training epochs.")
+@json_option
+@pass_app
+def fit(app, seed, routers, max_epochs, as_json):
+    """Fit the classifier and router on the cases with truth and the answers gathered so far.
+
+    Fits the candidate routers (a plug-in router: classifier plus per-expert correctness
+    models; and joint learners trained with the cost-sensitive deferral surrogates), compares
+    them with the baselines (model alone, each expert alone) on held-out cases by system cost
+    with 95% intervals, keeps the best, and stores every fitted model as a version.
+
+    Example:
+
+    \b
+        routeplan fit --seed 1
+        routeplan fit --router plugin
+    """
+    from .fitting import fit_workspace
+
+    with app.workspace() as ws:
+        report = fit_workspace(ws, routers=tuple(routers) or None, random_state=seed, max_epochs=max_epochs,
+                               verbose=not (app.quiet or as_json), console=app.console)
+    if as_json:
+        app.emit_json(report.to_dict())
+        return
+    from .report import render_fit
+
+    app.console.print(render_fit(report))
+
+
 # --------------------------------------------------------------------------- competence
 
 
@@ -378,6 +416,103 @@ def competence(app, by, basis, n_regions, seed, csv_path, plot_path, as_json):
     for label, path in (("table", csv_path), ("plot", plot_path)):
         if path is not None:
             app.say(f"Wrote the {label} to {path}")
+
+
+# --------------------------------------------------------------------------- round
+
+
+@cli.group("round")
+def round_group() -> None:
+    """Plan labelling rounds, export one sheet per expert, close rounds."""
+
+
+@round_group.command("plan")
+@click.option("--budget", type=float, required=True, help="Largest sum of fees for the round.")
+@click.option("--strategy", type=click.Choice(["value", "uncertain", "random"]), default="value", show_default=True,
+              help="value: value of information per fee; uncertain: widest accuracy estimate per fee; "
+                   "random: uniform over eligible pairs.")
+@click.option("--seed", type=int, default=0, show_default=True, help="The same seed on the same workspace gives the same plan.")
+@click.option("--audit-share", type=click.FloatRange(0, 1), default=0.1, show_default=True,
+              help="Share of the budget drawn uniformly at random (audit), for unbiased accuracy estimates.")
+@click.option("--max-per-expert", type=click.IntRange(min=0), default=None, help="Most assignments per expert in this round.")
+@click.option("--include-unverified", is_flag=True, help="Also send cases without truth.")
+@click.option("--regions", type=click.IntRange(min=1), default=6, show_default=True,
+              help="Regions of the feature space for the accuracy estimates.")
+@click.option("--due-days", type=float, default=None, help="Answers are due this many days from now.")
+@click.option("--dry-run", is_flag=True, help="Show the plan without storing it.")
+@json_option
+@pass_app
+def round_plan(app, budget, strategy, seed, audit_share, max_per_expert, include_unverified, regions, due_days,
+               dry_run, as_json):
+    """Choose which cases go to which expert in a new round, under a budget.
+
+    Each expert takes at most --max-per-expert cases and at most its capacity share of the
+    round's assignments (rounded up); no expert is asked twice about a case. Every
+    assignment records its selection probability.
+
+    Example:
+
+    \b
+        routeplan round plan --budget 40 --max-per-expert 150 --seed 3
+    """
+    from .rounds import plan_round
+
+    with app.workspace() as ws:
+        plan = plan_round(ws, budget, strategy=strategy, seed=seed, audit_share=audit_share,
+                          max_per_expert=max_per_expert, include_unverified=include_unverified,
+                          due_days=due_days, n_regions=regions, dry_run=dry_run)
+    if as_json:
+        app.emit_json(plan.to_dict())
+    elif not app.quiet:
+        app.console.print(plan)
+
+
+@round_group.command("export")
+@click.argument("round_id", metavar="ROUND", type=int)
+@click.option("--out", "out_dir", required=True, type=click.Path(path_type=Path), help="Folder for the sheets (DIR/<expert>.csv).")
+@click.option("--columns", default=None, help="Comma-separated feature or display columns to show on the sheets.")
+@click.option("--overwrite", is_flag=True, help="Replace sheets already in the folder.")
+@json_option
+@pass_app
+def round_export(app, round_id, out_dir, columns, overwrite, as_json):
+    """Write one CSV sheet per expert of a round, column case_id first.
+
+    Example:
+
+    \b
+        routeplan round export 1 --out sheets --columns kiln,glaze
+    """
+    from .rounds import export_round
+
+    chosen = columns.split(",") if columns else None
+    with app.workspace() as ws:
+        result = export_round(ws, round_id, out_dir, columns=chosen, overwrite=overwrite)
+    if as_json:
+        app.emit_json(result.to_dict())
+    else:
+        app.say(result.message())
+
+
+@round_group.command("close")
+@click.argument("round_id", metavar="ROUND", type=int)
+@json_option
+@pass_app
+def round_close(app, round_id, as_json):
+    """Close a round; assignments still unanswered count as expired.
+
+    Example:
+
+    \b
+        routeplan round close 1
+    """
+    from .rounds import close_round
+
+    with app.workspace() as ws:
+        result = close_round(ws, round_id)
+    if as_json:
+        app.emit_json(result.to_dict())
+    else:
+        app.say(result.message())
 
 
 # --------------------------------------------------------------------------- status

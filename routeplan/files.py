@@ -148,20 +148,19 @@ def _read_csv(data: bytes, source: str, text_columns: tuple[str, ...]):
     if b"\x00" in data:
         line = data[: data.index(b"\x00")].count(b"\n") + 1
         raise InputError("the file contains a NUL character", source=source, line=line)
-    _check_utf8(data[: data.find(b"\n") if b"\n" in data else len(data)], source)
-    header = data.split(b"\n", 1)[0].decode("utf-8").lstrip("\ufeff")
-    names = [n.strip() for n in next(csv.reader([header]), [])]
-    invalid: list = []
-
-    def on_invalid(row) -> str:
-        invalid.append(row)
-        return "skip"
-
+    first = re.split(rb"\r\n|\n|\r", data, maxsplit=1)[0]  # the header line, whatever the line ends
+    _check_utf8(first, source)
+    header = first.decode("utf-8").lstrip("\ufeff")
+    try:
+        names = [n.strip() for n in next(csv.reader([header]), [])]
+    except csv.Error as exc:
+        raise InputError(f"cannot parse the header: {exc}", source=source, line=1) from None
+    # no invalid_row_handler: pyarrow decodes a bad row's text before calling it, which prints a
+    # traceback for non-UTF-8 bytes; a parse error is explained below instead
     try:
         arrow = pacsv.read_csv(
             pa.BufferReader(data),
             read_options=pacsv.ReadOptions(encoding="utf8"),
-            parse_options=pacsv.ParseOptions(invalid_row_handler=on_invalid),
             convert_options=pacsv.ConvertOptions(
                 null_values=[""],
                 strings_can_be_null=True,
@@ -175,14 +174,28 @@ def _read_csv(data: bytes, source: str, text_columns: tuple[str, ...]):
         raise InputError(f"cannot parse the CSV: {_first_line(exc)}", source=source) from None
     if any(pa.types.is_binary(t) or pa.types.is_large_binary(t) for t in arrow.schema.types):
         _check_utf8(data, source)
-    if invalid:
+    if b'"' in data and _spans_lines(arrow):
+        # a quoted value holding a line break: refuse it (one record per line keeps line numbers right)
         _check_utf8(data, source)
         _check_csv_shape(data.decode("utf-8"), source)
-        raise InputError(f"cannot parse the record {invalid[0].text[:60]!r}", source=source)
+        raise InputError("a value spans several lines; put one record per line", source=source)
     arrow = arrow.rename_columns([n.strip() for n in arrow.column_names])
     if len(names) != arrow.num_columns:
         raise InputError("cannot parse the header", source=source, line=1)
     return arrow, _record_lines(data, arrow.num_rows)
+
+
+def _spans_lines(arrow) -> bool:
+    """True if a text cell holds a line break (CR or LF)."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    for column in arrow.columns:
+        if pa.types.is_string(column.type) or pa.types.is_large_string(column.type):
+            for pattern in ("\n", "\r"):
+                if pc.any(pc.match_substring(column, pattern)).as_py():
+                    return True
+    return False
 
 
 def _check_utf8(data: bytes, source: str) -> None:
@@ -386,23 +399,46 @@ def _check_column(table: Table, name: str, rule: dict, parsed: dict) -> tuple[in
     cells = table.frame[name]
     kinds = _types(rule)
     empty = table.empty[name] if name in table.empty else cells.isna().to_numpy()
-    if "null" not in kinds and empty.any():
-        return int(np.argmax(empty)), f"column '{name}' is empty"
     present = ~empty
+    found = [_check_present(table, name, rule, kinds, present, parsed)]
+    if "null" not in kinds and empty.any():
+        found.append((int(np.argmax(empty)), f"column '{name}' is empty"))
+    found = [f for f in found if f is not None]
+    return min(found) if found else None
+
+
+def _check_present(table: Table, name: str, rule: dict, kinds: set, present: np.ndarray, parsed: dict):
+    """(position, message) of the first problem among the column's non-empty cells, or None."""
+    cells = table.frame[name]
     if kinds & {"number", "integer"} and "string" not in kinds:
         values = _parse_numbers(table, name)
         bad = present & ~np.isfinite(values)
+        found = [_check_bounds(name, values, present & ~bad, rule)]
         if bad.any():
             at = int(np.argmax(bad))
             shown = cells.iloc[at] if name not in table.numeric else f"{values[at]}"
-            return at, f"column '{name}' holds {shown!r}, not a finite number"
-        parsed[name] = values
-        return _check_bounds(name, values, present, rule)
+            found.append((at, f"column '{name}' holds {shown!r}, not a finite number"))
+        found = [f for f in found if f is not None]
+        if not found:
+            parsed[name] = values
+        return min(found) if found else None
+    if "number" in kinds:
+        # numbers or text: numeric keywords apply to cells that spell a finite number, text keywords to the rest
+        values = _parse_numbers(table, name)
+        as_text = present & ~np.isfinite(values)
+        found = [_check_bounds(name, values, present & ~as_text, rule)]
+        if as_text.any():
+            found.append(_check_text(name, _text_of(table, name).where(as_text, ""), as_text, rule))
+        found = [f for f in found if f is not None]
+        return min(found) if found else None
+    return _check_text(name, _text_of(table, name).where(present, ""), present, rule)
+
+
+def _text_of(table: Table, name: str) -> pd.Series:
+    """The column as text (numbers formatted with ``g``)."""
     if name in table.numeric:
-        text = pd.Series([format(v, "g") for v in table.numeric[name]], dtype=object)
-    else:
-        text = cells.where(present, "")
-    return _check_text(name, text, present, rule)
+        return pd.Series([format(v, "g") for v in table.numeric[name]], dtype=object)
+    return table.frame[name]
 
 
 def _parse_numbers(table: Table, name: str) -> np.ndarray:
@@ -418,13 +454,14 @@ def _check_bounds(name: str, values: np.ndarray, present: np.ndarray, rule: dict
         ("exclusiveMinimum", lambda v, b: v <= b, "not above"),
         ("exclusiveMaximum", lambda v, b: v >= b, "not below"),
     ]
+    found = []
     for key, broken, words in tests:
         if key in rule:
             bad = present & broken(values, rule[key])
             if bad.any():
                 at = int(np.argmax(bad))
-                return at, f"column '{name}' holds {values[at]:g}, {words} {rule[key]:g}"
-    return None
+                found.append((at, f"column '{name}' holds {values[at]:g}, {words} {rule[key]:g}"))
+    return min(found) if found else None
 
 
 def _check_text(name: str, text: pd.Series, present: np.ndarray, rule: dict) -> tuple[int, str] | None:
@@ -448,8 +485,15 @@ def _check_text(name: str, text: pd.Series, present: np.ndarray, rule: dict) -> 
 
 
 def _search(text: pd.Series, pattern: str) -> np.ndarray:
-    compiled = re.compile(pattern)
+    compiled = re.compile(_ecma_end(pattern))
     return np.fromiter((compiled.search(v) is not None for v in text), dtype=bool, count=len(text))
+
+
+def _ecma_end(pattern: str) -> str:
+    """A final ``$`` matches only at the very end, as in ECMA-262 (Python's also matches before a final newline)."""
+    if pattern.endswith("$") and not pattern.endswith("\\$"):
+        return pattern[:-1] + r"\Z"
+    return pattern
 
 
 def _matches_any(text: pd.Series, rule: dict) -> np.ndarray:

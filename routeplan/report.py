@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from rich import box
 from rich.console import Group
 from rich.table import Table
 from rich.text import Text
@@ -62,27 +63,27 @@ def _interval(value: float, low: float, high: float, fmt: str = "{:.2f}") -> str
 
 def _accuracy_table(frame, title: str, level: str | None, basis: str) -> Table:
     prefix = "audit_" if basis == "audit" else ""
-    table = Table(title=title, title_justify="left")
-    table.add_column("expert", overflow="fold")
+    table = Table(title=title, title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False,
+                  caption="n: scored/answered (scored = answers on cases with truth); "
+                          "*: interval too wide to act on", caption_justify="left")
+    table.add_column("expert", overflow="fold", min_width=6)
     if level:
-        table.add_column(level, overflow="fold")
-    table.add_column("answers", justify="right")
-    table.add_column("scored", justify="right")
-    table.add_column("accuracy (95% CI)", justify="right")
-    table.add_column("kappa", justify="right")
-    table.add_column("saved/fee (95% CI)", justify="right")
-    table.add_column("note", overflow="fold")
+        table.add_column(level, overflow="fold", max_width=12)
+    table.add_column("n", justify="right", no_wrap=True)
+    table.add_column("accuracy [95% CI]", justify="right", no_wrap=True)
+    table.add_column("kappa", justify="right", no_wrap=True)
+    table.add_column("saved/fee [95% CI]", justify="right", no_wrap=True)
     for row in frame.to_dict(orient="records"):
         wide = bool(row.get(prefix + "too_wide"))
-        cells = [str(row["expert"])] + ([str(row[level])] if level else [])
         n_scored = row.get(prefix + "n_scored", 0)
+        n_scored = int(n_scored) if n_scored == n_scored else 0
+        accuracy = _interval(row[prefix + "accuracy"], row[prefix + "accuracy_low"], row[prefix + "accuracy_high"])
+        cells = [str(row["expert"])] + ([str(row[level])] if level else [])
         cells += [
-            str(int(row["n_answered"])),
-            str(int(n_scored)) if n_scored == n_scored else "0",
-            _interval(row[prefix + "accuracy"], row[prefix + "accuracy_low"], row[prefix + "accuracy_high"]),
+            f"{n_scored}/{int(row['n_answered'])}",
+            accuracy + ("*" if wide else " "),
             "-" if row[prefix + "kappa"] != row[prefix + "kappa"] else f"{row[prefix + 'kappa']:.2f}",
             _interval(row[prefix + "value_per_fee"], row[prefix + "value_low"], row[prefix + "value_high"], "{:.1f}"),
-            "too few to act on" if wide else "",
         ]
         table.add_row(*cells, style="dim" if wide else None)
     return table
@@ -118,7 +119,7 @@ def render_competence(report, *, by: str | None = None, basis: str = "truth") ->
             parts.append(_accuracy_table(frame, f"Competence by {by}", by, basis))
     per_class = report.per_class
     if per_class is not None and len(per_class):
-        table = Table(title="Per class (truth basis)", title_justify="left")
+        table = Table(title="Per class (truth basis)", title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False)
         for name in ("expert", "class", "support", "recall (95% CI)", "precision (95% CI)"):
             table.add_column(name, justify="left" if name in ("expert", "class") else "right", overflow="fold")
         for row in per_class.to_dict(orient="records"):
@@ -127,7 +128,8 @@ def render_competence(report, *, by: str | None = None, basis: str = "truth") ->
                           _interval(row["precision"], row["precision_low"], row["precision_high"]))
         parts.append(table)
     if report.agreement is not None and len(report.agreement):
-        table = Table(title="Agreement between experts (Cohen's kappa, shared cases)", title_justify="left")
+        table = Table(title="Agreement between experts (Cohen's kappa, shared cases)", title_justify="left",
+                      box=box.SIMPLE_HEAD, pad_edge=False)
         for name in ("expert", "expert", "shared", "agreement", "kappa"):
             table.add_column(name, justify="left" if name == "expert" else "right", overflow="fold")
         for row in report.agreement.to_dict(orient="records"):
@@ -149,3 +151,56 @@ def render_competence(report, *, by: str | None = None, basis: str = "truth") ->
                         f"from {int(row['n_answers'])} answers\n")
         parts.append(text)
     return Group(*parts)
+
+
+def render_fit(report) -> Group:
+    """Render a :class:`routeplan.fitting.FitReport`: candidates and baselines on held-out cases.
+
+    Parameters
+    ----------
+    report : FitReport
+
+    Returns
+    -------
+    rich.console.Group
+    """
+    table = Table(title=f"Routers on {report.n_selection} held-out cases (fitted on {report.n_train})",
+                  title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False)
+    table.add_column("router", overflow="fold")
+    table.add_column("system cost [95% CI]", justify="right", no_wrap=True)
+    table.add_column("accuracy", justify="right")
+    table.add_column("coverage", justify="right")
+    shares = [c for c in report.table.columns if c.startswith("share_")]
+    for column in shares:
+        table.add_column(column[len("share_"):], justify="right")
+    for row in report.table.to_dict(orient="records"):
+        name = row["router"] + (" (kept)" if row["router"] == report.chosen else "")
+        table.add_row(
+            name,
+            _interval(row["system_cost"], row["ci_low"], row["ci_high"], "{:.3f}"),
+            f"{row['accuracy']:.3f}",
+            f"{row['coverage']:.0%}",
+            *[f"{row[c]:.0%}" for c in shares],
+            style="bold" if row["router"] == report.chosen else ("dim" if row.get("kind") != "router" else None),
+        )
+    text = Text()
+    text.append("Answers on cases with truth: " + ", ".join(f"{k} {v}" for k, v in report.answers_per_expert.items()) + "\n")
+    ece = report.calibration or {}
+    if ece:
+        text.append("Calibration (expected calibration error, validation split): " + _ece_words(ece) + "\n")
+    for note in report.notes:
+        text.append(f"Note: {note}\n")
+    text.append(f"Stored models: {', '.join(f'{k} #{v}' for k, v in report.model_ids.items())}; kept {report.chosen}.")
+    return Group(table, text)
+
+
+def _ece_words(ece: dict) -> str:
+    parts = []
+    for key, value in ece.items():
+        if isinstance(value, dict):
+            inner = ", ".join(f"{k} {v:.3f}" for k, v in value.items() if isinstance(v, (int, float)))
+            if inner:
+                parts.append(f"{key}: {inner}")
+        elif isinstance(value, (int, float)):
+            parts.append(f"{key} {value:.3f}")
+    return "; ".join(parts) or "not available"

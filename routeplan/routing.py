@@ -39,6 +39,10 @@ __all__ = ["LPResult", "capacity_lp", "route_exact", "route_with_prices"]
 #: Default number of cases routed together by :func:`route_with_prices`.
 DEFAULT_CHUNK_SIZE = 1024
 
+# HiGHS through scipy. The interior-point solver (with crossover to a vertex, HiGHS's
+# default) is ~10x faster than the simplex chosen by method="highs" on these LPs.
+_LP_METHOD = "highs-ipm"
+
 
 @dataclass(frozen=True)
 class LPResult:
@@ -76,10 +80,15 @@ class LPResult:
 def capacity_lp(expected_costs: ArrayLike, capacities: ArrayLike, n_classes: int) -> LPResult:
     """Solve the capacity-constrained assignment LP of one batch of cases.
 
-    The LP is solved with ``scipy.optimize.linprog(method="highs")`` in sparse form. As the
-    model options have no cap, only the cheapest class of each case can carry weight in an
-    optimal solution, so the LP is built over ``1 + M`` options per case (the best class and
-    the experts) and mapped back; this is exact and keeps ``n = 20,000`` cases to seconds.
+    The LP is solved in sparse form by HiGHS through ``scipy.optimize.linprog`` (its
+    interior-point solver, ``method="highs-ipm"``, whose crossover returns a vertex). It is
+    first reduced without changing its optimum or its dual prices: an option that carries no
+    cap (a class, or an expert whose share is 1 or more) is free, so each case needs only its
+    cheapest free option; and a capped expert whose cost is not below that one can be
+    replaced by it at no extra cost (and with capacity to spare), so it is dropped. Cases
+    left with no capped candidate go to their cheapest free option without entering the LP.
+    The dropped options' dual constraints are implied by the free option's, as prices are
+    ``>= 0``, so the dual is the same too.
 
     Parameters
     ----------
@@ -127,10 +136,13 @@ def route_with_prices(
     at a time, with a running count per expert. After each chunk an expert may hold at most
     ``floor(cap_j * t)`` of the first ``t`` cases. Inside a chunk, when an expert is
     preferred by more cases than its remaining quota, the cases that lose least by moving
-    (smallest gap to their next-best allowed option; ties first) fall back to that next-best
-    option, and this repeats until no expert is over quota. The class options have no cap,
-    so this always ends. With ``chunk_size=1`` it is the plain per-case rule; larger chunks
-    are vectorised and let the fallback choose the cheapest cases to move.
+    fall back, each to its next-best option that still has room (a class, or an expert
+    under its quota); exact ties lose nothing and move first. A moved case never returns to
+    the expert it left, and this repeats until no expert is over quota; the class options
+    have no cap, so it always ends. With ``chunk_size=1`` this is the plain per-case rule
+    ("an expert's share of the cases routed so far may not exceed its cap"); larger chunks
+    are vectorised and let the fallback pick the cheapest cases to move. The caps hold at
+    every chunk boundary, so at the end of the stream as well.
 
     Parameters
     ----------
@@ -206,43 +218,53 @@ def route_exact(expected_costs: ArrayLike, capacities: ArrayLike, n_classes: int
 
 
 def _solve(costs: np.ndarray, n_classes: int, limits: np.ndarray) -> LPResult:
-    """Solve the reduced LP (best class + experts) and map it back to all options."""
+    """Solve the LP over the options that can matter and map the solution back."""
+    n, n_options = costs.shape
+    n_experts = n_options - n_classes
+    capped = np.flatnonzero(limits < n)
+    free_options = np.setdiff1d(np.arange(n_options), n_classes + capped)
+    free = free_options[np.argmin(costs[:, free_options], axis=1)]
+    free_cost = costs[np.arange(n), free]
+    # Only a capped expert cheaper than the case's best uncapped option can carry weight.
+    cases, which = np.nonzero(costs[:, n_classes + capped] < free_cost[:, None])
+    assignment = np.zeros_like(costs)
+    assignment[np.arange(n), free] = 1.0
+    prices = np.zeros(n_experts)
+    if cases.size:
+        x_free, x_pair, marginals = _solve_reduced(costs, free_cost, n_classes, capped,
+                                                   limits[capped], cases, which)
+        lp_cases = np.unique(cases)
+        assignment[lp_cases, free[lp_cases]] = x_free
+        assignment[cases, n_classes + capped[which]] = x_pair
+        # HiGHS reports d(objective)/d(b_ub) <= 0; the price of one case of capacity is
+        # its negative (clipped at 0 against round-off).
+        prices[capped] = np.maximum(-marginals, 0.0)
+    objective = float(np.sum(assignment * costs))
+    loads = assignment[:, n_classes:].sum(axis=0)
+    return LPResult(assignment, objective, prices, loads, limits.copy())
+
+
+def _solve_reduced(costs: np.ndarray, free_cost: np.ndarray, n_classes: int,
+                   capped: np.ndarray, limits: np.ndarray, cases: np.ndarray,
+                   which: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """HiGHS on the reduced LP: one free variable per case plus the candidate pairs."""
     from scipy import sparse
     from scipy.optimize import linprog
 
-    n, n_options = costs.shape
-    n_experts = n_options - n_classes
-    best_class = np.argmin(costs[:, :n_classes], axis=1)
-    assignment = np.zeros_like(costs)
-    capped = np.flatnonzero(limits < n)
-    if n == 0 or capped.size == 0:
-        # No cap can bind: the LP optimum is each case's cheapest option.
-        routes = np.argmin(costs, axis=1)
-        assignment[np.arange(n), routes] = 1.0
-        loads = assignment[:, n_classes:].sum(axis=0)
-        return LPResult(assignment, float(costs[np.arange(n), routes].sum()),
-                        np.zeros(n_experts), loads, limits.copy())
-    width = 1 + n_experts
-    reduced = np.column_stack([costs[np.arange(n), best_class], costs[:, n_classes:]])
-    rows = np.repeat(np.arange(n), width)
-    A_eq = sparse.csr_matrix((np.ones(n * width), (rows, np.arange(n * width))),
-                             shape=(n, n * width))
-    ub_cols = (np.arange(n)[None, :] * width + 1 + capped[:, None]).ravel()
-    ub_rows = np.repeat(np.arange(capped.size), n)
-    A_ub = sparse.csr_matrix((np.ones(ub_cols.size), (ub_rows, ub_cols)),
-                             shape=(capped.size, n * width))
-    res = linprog(reduced.ravel(), A_ub=A_ub, b_ub=limits[capped], A_eq=A_eq,
-                  b_eq=np.ones(n), bounds=(0, None), method="highs")
+    lp_cases, row = np.unique(cases, return_inverse=True)
+    n_lp, n_pairs = lp_cases.size, cases.size
+    c = np.concatenate([free_cost[lp_cases], costs[cases, n_classes + capped[which]]])
+    eq_rows = np.concatenate([np.arange(n_lp), row])
+    A_eq = sparse.csr_matrix((np.ones(n_lp + n_pairs), (eq_rows, np.arange(n_lp + n_pairs))),
+                             shape=(n_lp, n_lp + n_pairs))
+    A_ub = sparse.csr_matrix((np.ones(n_pairs), (which, n_lp + np.arange(n_pairs))),
+                             shape=(capped.size, n_lp + n_pairs))
+    res = linprog(c, A_ub=A_ub, b_ub=limits, A_eq=A_eq, b_eq=np.ones(n_lp),
+                  bounds=(0, None), method=_LP_METHOD)
     if res.status != 0:
         raise ValueError(f"capacity LP failed: {res.message}")
-    x = np.clip(res.x.reshape(n, width), 0.0, None)
-    assignment[np.arange(n), best_class] = x[:, 0]
-    assignment[:, n_classes:] = x[:, 1:]
-    prices = np.zeros(n_experts)
-    # HiGHS reports d(objective)/d(b_ub) <= 0; the price of a case of capacity is its negative.
-    prices[capped] = np.maximum(-np.asarray(res.ineqlin.marginals, dtype=np.float64), 0.0)
-    loads = assignment[:, n_classes:].sum(axis=0)
-    return LPResult(assignment, float(res.fun), prices, loads, limits.copy())
+    x = np.clip(res.x, 0.0, 1.0)
+    return x[:n_lp], x[n_lp:], np.asarray(res.ineqlin.marginals, dtype=np.float64)
 
 
 # --------------------------------------------------------------------------- streaming
@@ -278,23 +300,24 @@ def _enforce_quota(costs: np.ndarray, routes: np.ndarray, allowed: np.ndarray,
     routes = routes.copy()
     n_experts = quota.size
     while True:
-        moved = False
-        for j in range(n_experts):
-            members = np.flatnonzero(routes == n_classes + j)
-            excess = members.size - quota[j]
-            if excess <= 0:
-                continue
-            allowed[members, n_classes + j] = False
-            sub = np.where(allowed[members], costs[members], np.inf)
-            fallback = np.argmin(sub, axis=1)
-            regret = sub[np.arange(members.size), fallback] - costs[members, n_classes + j]
-            order = np.argsort(regret, kind="stable")
-            keep, move = order[excess:], order[:excess]
-            allowed[members[keep], n_classes + j] = True
-            routes[members[move]] = fallback[move]
-            moved = True
-        if not moved:
+        counts = _expert_counts(routes, n_classes, n_experts)
+        over = np.flatnonzero(counts > quota)
+        if over.size == 0:
             return routes
+        j = over[0]
+        members = np.flatnonzero(routes == n_classes + j)
+        allowed[members, n_classes + j] = False
+        # Fall back to an option with room: a class, or an expert still under its quota.
+        open_ = allowed[members].copy()
+        open_[:, n_classes:] &= (counts < quota)[None, :]
+        sub = np.where(open_, costs[members], np.inf)
+        fallback = np.argmin(sub, axis=1)
+        regret = sub[np.arange(members.size), fallback] - costs[members, n_classes + j]
+        order = np.argsort(regret, kind="stable")
+        excess = counts[j] - quota[j]
+        keep, move = order[excess:], order[:excess]
+        allowed[members[keep], n_classes + j] = True
+        routes[members[move]] = fallback[move]
 
 
 # --------------------------------------------------------------------------- validation

@@ -560,6 +560,93 @@ class Workspace:
             "policies": q("SELECT COUNT(*) FROM policies")[0][0],
         }
 
+    # ------------------------------------------------------------------ rounds (planner)
+
+    def assignment_frame(self):
+        """All assignments with their round's state.
+
+        Returns
+        -------
+        pandas.DataFrame
+            Columns assignment_id, round_id, case_id, expert, strategy, selection_prob, audit
+            (bool), fee, state (``open`` or ``answered``), round_state.
+        """
+        import pandas as pd
+
+        rows = self.db.execute(
+            "SELECT a.assignment_id, a.round_id, a.case_id, a.expert, a.strategy, a.selection_prob, a.audit, "
+            "a.fee, a.state, r.state FROM assignments a JOIN rounds r ON r.round_id = a.round_id "
+            "ORDER BY a.assignment_id"
+        ).fetchall()
+        frame = pd.DataFrame(rows, columns=["assignment_id", "round_id", "case_id", "expert", "strategy",
+                                            "selection_prob", "audit", "fee", "state", "round_state"])
+        frame["audit"] = frame["audit"].astype(bool)
+        return frame
+
+    def add_round(self, *, strategy: str, budget: float, seed: int | None, due_at: str | None, detail: dict) -> int:
+        """Insert a round (state ``open``) and return its id (call inside :meth:`transaction`)."""
+        cursor = self.db.conn.execute(
+            "INSERT INTO rounds (created_at, strategy, budget, seed, state, due_at, detail) "
+            "VALUES (?, ?, ?, ?, 'open', ?, ?)",
+            (_now(), strategy, float(budget), seed, due_at, json.dumps(detail, sort_keys=True)),
+        )
+        return int(cursor.lastrowid)
+
+    def add_assignments(self, rows: Sequence[tuple]) -> int:
+        """Insert assignments: tuples (round_id, case_id, expert, strategy, selection_prob, audit, fee)."""
+        at = _now()
+        self.db.conn.executemany(
+            "INSERT INTO assignments (round_id, case_id, expert, strategy, selection_prob, audit, fee, state, "
+            "created_at) VALUES (?, ?, ?, ?, ?, ?, ?, 'open', ?)",
+            [(*r, at) for r in rows],
+        )
+        return len(rows)
+
+    def round_record(self, round_id: int) -> dict | None:
+        """The round's row (detail parsed from JSON), or None if there is no such round."""
+        rows = self._rows("SELECT * FROM rounds WHERE round_id = ?", (int(round_id),))
+        if not rows:
+            return None
+        record = dict(rows[0])
+        record["detail"] = json.loads(record["detail"]) if record["detail"] else {}
+        return record
+
+    def round_sheet(self, round_id: int) -> list[dict]:
+        """A round's assignments with any stored answer: assignment_id, case_id, expert, state, answer."""
+        return [
+            dict(r)
+            for r in self._rows(
+                "SELECT a.assignment_id, a.case_id, a.expert, a.state, n.answer FROM assignments a "
+                "LEFT JOIN answers n ON n.case_id = a.case_id AND n.expert = a.expert "
+                "WHERE a.round_id = ? ORDER BY a.assignment_id",
+                (int(round_id),),
+            )
+        ]
+
+    def case_details(self, case_ids: Sequence[str]) -> dict[str, tuple[bytes, str | None]]:
+        """Feature bytes (float64) and display JSON of the given cases, keyed by case_id."""
+        out: dict[str, tuple[bytes, str | None]] = {}
+        keys = list(case_ids)
+        for start in range(0, len(keys), 900):
+            chunk = keys[start : start + 900]
+            marks = ",".join("?" * len(chunk))
+            for case_id, blob, display in self.db.execute(
+                f"SELECT case_id, features, display FROM cases WHERE case_id IN ({marks})", chunk
+            ):
+                out[case_id] = (blob, display)
+        return out
+
+    def set_round_state(self, round_id: int, state: str) -> None:
+        """Set a round's state (``open`` or ``closed``; call inside :meth:`transaction`)."""
+        self.db.conn.execute("UPDATE rounds SET state = ? WHERE round_id = ?", (state, int(round_id)))
+
+    def display_column_names(self) -> list[str]:
+        """Names of the display columns stored with any case, sorted."""
+        rows = self.db.execute(
+            "SELECT DISTINCT j.key FROM cases c, json_each(c.display) j WHERE c.display IS NOT NULL ORDER BY j.key"
+        ).fetchall()
+        return [r[0] for r in rows]
+
     # ------------------------------------------------------------------ helpers
 
     def _rows(self, sql: str, params: Sequence = ()) -> list[sqlite3.Row]:

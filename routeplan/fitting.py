@@ -1,0 +1,273 @@
+"""Fitting routers on a workspace and storing them as versions.
+
+``fit_workspace`` is what ``routeplan fit`` runs: it reads the workspace into arrays
+(:mod:`routeplan.pool`), standardises the features (:mod:`routeplan.features`), holds out a
+validation split, fits the candidate routers (:mod:`routeplan.learner`), compares them and the
+baselines by validation system cost with 95% intervals, and stores every fitted router as named
+arrays plus JSON (never pickled), marking the chosen one.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from .errors import InputError, NotFitted
+from .features import FeatureSpec, fit_features
+from .pool import Pool, load_pool
+from .workspace import Workspace
+
+__all__ = ["FitReport", "answer_weights", "fit_workspace", "held_out_predictions", "load_router", "MIN_TRUTH_CASES"]
+
+MIN_TRUTH_CASES = 40
+"""Fewer cases with truth than this cannot be split into fitting and selection parts usefully."""
+
+
+@dataclass
+class FitReport:
+    """What ``routeplan fit`` did.
+
+    Attributes
+    ----------
+    chosen : str
+        Name of the router kept.
+    model_ids : dict of str to int
+        Stored model id of every fitted candidate.
+    table : pandas.DataFrame
+        Candidates and baselines on the held-out selection cases (see
+        :func:`routeplan.learner.select_router`).
+    notes : list of str
+        Caveats of the comparison.
+    answers_per_expert : dict of str to int
+        Answers on cases with truth that each expert contributed.
+    n_train, n_selection : int
+        Cases used to fit and to compare.
+    calibration : dict
+        Expected calibration error before and after calibration, from the chosen router.
+    """
+
+    chosen: str
+    model_ids: dict[str, int]
+    table: pd.DataFrame
+    notes: list[str]
+    answers_per_expert: dict[str, int]
+    n_train: int
+    n_selection: int
+    calibration: dict = field(default_factory=dict)
+
+    def to_dict(self) -> dict:
+        """Plain data for ``--json``."""
+        table = self.table.replace({np.nan: None}).to_dict(orient="records")
+        return {"chosen": self.chosen, "model_ids": self.model_ids, "table": table, "notes": self.notes,
+                "answers_per_expert": self.answers_per_expert, "n_train": self.n_train,
+                "n_selection": self.n_selection, "calibration": self.calibration}
+
+
+def fit_workspace(
+    ws: Workspace,
+    *,
+    routers: tuple[str, ...] | None = None,
+    random_state: int = 0,
+    max_epochs: int | None = None,
+    verbose: bool = False,
+    console: Any = None,
+) -> FitReport:
+    """Fit the candidate routers on a workspace, keep the best, store every one.
+
+    Parameters
+    ----------
+    ws : Workspace
+    routers : tuple of str, optional
+        Candidates (names of :data:`routeplan.learner.CANDIDATES`); default the learner's
+        default set. With one name, that router is kept.
+    random_state : int, default=0
+        Seeds the split and every candidate.
+    max_epochs : int, optional
+        Cap on training epochs (default: the routers' own).
+    verbose : bool, default=False
+        Show progress bars.
+    console : rich.console.Console, optional
+
+    Returns
+    -------
+    FitReport
+
+    Raises
+    ------
+    InputError
+        Too few cases with truth, no experts, or an unknown router name.
+    """
+    from .learner import CANDIDATES, fit_candidates
+
+    pool = load_pool(ws)
+    if routers:
+        unknown = [r for r in routers if r not in CANDIDATES]
+        if unknown:
+            raise InputError(f"unknown router {unknown[0]!r}; choose from {', '.join(sorted(CANDIDATES))}")
+    if not pool.experts:
+        raise InputError("no experts yet; add them with 'routeplan experts add NAME --fee F'")
+    mask = pool.has_truth
+    if mask.sum() < MIN_TRUTH_CASES:
+        raise InputError(f"only {int(mask.sum())} case(s) have truth; fitting needs at least {MIN_TRUTH_CASES} "
+                         "(import more with 'routeplan truth import')")
+    if len(np.unique(pool.y[mask])) < 2:
+        raise InputError("every case with truth has the same label; fitting needs at least two labels")
+    spec = fit_features(pool.X[mask], pool.feature_names)
+    X = spec.transform(pool.X[mask])
+    y, A = pool.y[mask], pool.answers[mask]
+    weights = answer_weights(pool.selection_prob[mask], A)
+    best, fitted, table = fit_candidates(
+        X, y, A, fees=pool.fees, cost_matrix=pool.cost_matrix(), sample_weight=weights,
+        random_state=random_state, names=routers, expert_names=list(pool.experts),
+        router_params={"max_epochs": max_epochs} if max_epochs else None, verbose=verbose, console=console,
+    )
+    ids = pool.case_ids[mask]
+    selection = np.asarray(table.attrs.get("selection_index", []), dtype=np.int64)
+    training = np.setdiff1d(np.arange(len(ids)), selection)
+    counts = {name: int((A[:, j] >= 0).sum()) for j, name in enumerate(pool.experts)}
+    metrics = _metrics(table, best, counts, fitted[best], pool, len(selection))
+    model_ids = {}
+    with ws.transaction():
+        for name, router in fitted.items():
+            arrays, meta = router.get_arrays()
+            params = {
+                "meta": meta, "router": name, "features": spec.to_dict(), "labels": list(pool.labels),
+                "experts": [{"name": n, "fee": float(f), "capacity": float(c)}
+                            for n, f, c in zip(pool.experts, pool.fees, pool.capacities)],
+                "error_cost": pool.error_cost, "training_case_ids": [str(c) for c in ids[training]],
+                "validation_case_ids": [str(c) for c in ids[selection]], "seed": random_state,
+            }
+            model_ids[name] = ws.add_model(name, params, metrics if name == best else {"chosen": best},
+                                           arrays, chosen=name == best)
+        ws.log("fit", {"chosen": best, "model_ids": model_ids, "seed": random_state,
+                       "cases": int(mask.sum()), "answers": counts})
+    return FitReport(best, model_ids, table, list(table.attrs.get("notes", [])), counts,
+                     len(training), len(selection), metrics.get("calibration", {}))
+
+
+def answer_weights(selection_prob: np.ndarray, answers: np.ndarray, *, clip: float = 10.0) -> np.ndarray:
+    """Per-answer weights for the learners: inverse selection probability, self-normalised.
+
+    Answers from rounds get ``1 / p`` (Horvitz & Thompson, JASA 1952), divided by its mean over
+    that expert's round answers so that they weigh like historical answers (weight 1) on
+    average (the self-normalised or Hajek form), and truncated at ``clip`` times the mean
+    to bound the variance (weight truncation, common practice). NaN where there is no answer.
+
+    Parameters
+    ----------
+    selection_prob : ndarray of shape (n, M)
+        NaN for historical answers and missing ones.
+    answers : ndarray of shape (n, M)
+        -1 where unknown.
+    clip : float, default=10.0
+
+    Returns
+    -------
+    ndarray of shape (n, M)
+    """
+    raw = np.where(np.isfinite(selection_prob), 1.0 / np.where(np.isfinite(selection_prob), selection_prob, 1.0), np.nan)
+    weights = np.ones_like(raw)
+    for j in range(raw.shape[1]):
+        asked = np.isfinite(raw[:, j]) & (answers[:, j] >= 0)
+        if asked.any():
+            scaled = raw[asked, j] / raw[asked, j].mean()
+            weights[asked, j] = np.minimum(scaled, clip)
+    return np.where(answers >= 0, weights, np.nan)
+
+
+def _triple(row: pd.Series, name: str, n: int) -> list[float | None]:
+    """[estimate, low, high]: the table's interval for system cost, a Wilson interval for shares."""
+    from .stats import wilson_interval
+
+    if name == "system_cost":
+        return [_num(row.get(k)) for k in ("system_cost", "ci_low", "ci_high")]
+    share = _num(row.get(name))
+    if share is None or n == 0:
+        return [share, None, None]
+    low, high = wilson_interval(share * n, n)
+    return [share, float(low), float(high)]
+
+
+def _num(value: Any) -> float | None:
+    return None if value is None or value != value else float(value)
+
+
+def _metrics(table: pd.DataFrame, best: str, counts: dict, router: Any, pool: Pool, n_selection: int) -> dict:
+    row = table.loc[table["router"] == best].iloc[0]
+    clean = table.replace({np.nan: None}).to_dict(orient="records")
+    return {
+        "chosen": best,
+        "candidates": clean,
+        "validation": {
+            "n_cases": n_selection,
+            "system_cost": _triple(row, "system_cost", n_selection),
+            "accuracy": _triple(row, "accuracy", n_selection),
+            "coverage": _triple(row, "coverage", n_selection),
+            "workload": {name: _triple(row, f"share_{name}", n_selection) for name in pool.experts},
+        },
+        "answers_per_expert": counts,
+        "calibration": getattr(router, "calibration_", {}) and _plain(router.calibration_),
+        "notes": list(table.attrs.get("notes", [])),
+    }
+
+
+def _plain(value: Any) -> Any:
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_plain(v) for v in value]
+    if isinstance(value, (np.floating, float)):
+        return None if value != value else float(value)
+    if isinstance(value, np.integer):
+        return int(value)
+    if isinstance(value, np.ndarray):
+        return _plain(value.tolist())
+    return value
+
+
+def load_router(ws: Workspace, model_id: int | None = None) -> tuple[int, Any, dict, dict]:
+    """Rebuild a stored router (default: the chosen one).
+
+    Returns
+    -------
+    model_id : int
+    router : fitted router from :mod:`routeplan.learner`
+    params : dict
+        Stored parameters: ``meta``, ``features``, ``labels``, ``experts``, ``validation_case_ids``.
+    metrics : dict
+    """
+    from .learner import router_from_arrays
+
+    model_id, kind, params, metrics, arrays = ws.load_model(model_id)
+    return model_id, router_from_arrays(arrays, params["meta"]), params, metrics
+
+
+def held_out_predictions(ws: Workspace, pool: Pool) -> np.ndarray | None:
+    """The chosen model's class for each case it did not train on (-1 elsewhere); None if unfitted.
+
+    Parameters
+    ----------
+    ws : Workspace
+    pool : Pool
+
+    Returns
+    -------
+    ndarray of int, shape (n_cases,), or None
+    """
+    try:
+        _, router, params, _ = load_router(ws)
+    except NotFitted:
+        return None
+    spec = FeatureSpec.from_dict(params["features"])
+    if list(spec.names) != list(pool.feature_names):
+        return None
+    trained = set(params.get("training_case_ids", []))
+    scored = np.array([cid not in trained for cid in pool.case_ids], dtype=bool)
+    pred = np.full(len(pool.case_ids), -1, dtype=np.int64)
+    if scored.any():
+        proba = router.predict_proba(spec.transform(pool.X[scored]))
+        pred[scored] = np.argmax(proba, axis=1)
+    return pred

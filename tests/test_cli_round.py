@@ -1,0 +1,348 @@
+"""Tests of ``routeplan round plan / export / close`` through click's CliRunner.
+
+The workspace is built from a small seeded cases file written here (invented values; they
+exercise the commands, not any number). Constraint checks are "common practice" for a
+budgeted labelling plan unless a source is named.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import math
+import shutil
+import sqlite3
+from fractions import Fraction
+from pathlib import Path
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+from jsonschema import Draft202012Validator
+
+from routeplan.cli import cli
+from routeplan.workspace import DB_NAME
+
+SCHEMAS = Path(__file__).resolve().parents[1] / "schemas"
+EXPERTS = {"ann": (0.1, 0.5), "bo": (0.25, 1.0), "cy": (0.05, 0.3)}
+LEADS = ("=", "+", "-", "@")
+
+
+def invoke(ws: Path, *args):
+    return CliRunner().invoke(cli, ["--workspace", str(ws), *map(str, args)])
+
+
+def ok(result):
+    assert result.exit_code == 0, (result.exit_code, result.stderr, result.exception)
+    return result
+
+
+def one_line_error(result, *fragments: str) -> str:
+    assert result.exit_code == 2, (result.exit_code, result.stdout, result.stderr)
+    lines = result.stderr.strip("\n").split("\n")
+    assert len(lines) == 1 and "Traceback" not in result.stderr, result.stderr
+    for fragment in fragments:
+        assert fragment in lines[0], (fragment, lines[0])
+    return lines[0]
+
+
+def rows(ws: Path, sql: str, params: tuple = ()) -> list[tuple]:
+    conn = sqlite3.connect(ws / DB_NAME)
+    try:
+        return conn.execute(sql, params).fetchall()
+    finally:
+        conn.close()
+
+
+def dump(ws: Path) -> str:
+    conn = sqlite3.connect(ws / DB_NAME)
+    try:
+        return "\n".join(conn.iterdump())
+    finally:
+        conn.close()
+
+
+def _cases_csv(path: Path) -> None:
+    """240 seeded cases: 2 features, truth on 3 of 4, a display column; ids and notes that look like formulas."""
+    rng = np.random.default_rng(11)
+    n = 240
+    X = rng.normal(size=(n, 2))
+    labels = np.array(["a", "b", "c"])[np.digitize(X[:, 0] + 0.3 * rng.normal(size=n), [-0.5, 0.5])]
+    with open(path, "w", newline="", encoding="utf-8") as handle:
+        writer = csv.writer(handle)
+        writer.writerow(["case_id", "x0", "x1", "truth", "note"])
+        for i in range(n):
+            case_id = f"{LEADS[i % 4]}c{i}" if i % 3 == 0 else f"c{i}"
+            truth = "" if i % 4 == 3 else labels[i]
+            note = f"{LEADS[i % 4]}1+{i}" if i % 2 == 0 else f"plain {i}"
+            writer.writerow([case_id, f"{X[i, 0]:.6f}", f"{X[i, 1]:.6f}", truth, note])
+
+
+@pytest.fixture(scope="module")
+def template(tmp_path_factory) -> Path:
+    root = tmp_path_factory.mktemp("round_template")
+    _cases_csv(root / "cases.csv")
+    ws = root / "ws"
+    ok(invoke(ws, "init", "--labels", "a,b,c"))
+    ok(invoke(ws, "cases", "import", root / "cases.csv"))
+    for name, (fee, cap) in EXPERTS.items():
+        ok(invoke(ws, "experts", "add", name, "--fee", fee, "--capacity", cap))
+    return ws
+
+
+@pytest.fixture
+def ws(template, tmp_path) -> Path:
+    return Path(shutil.copytree(template, tmp_path / "ws"))
+
+
+def plan(ws: Path, *args) -> dict:
+    return json.loads(ok(invoke(ws, "round", "plan", *args, "--json")).stdout)
+
+
+def assignments(ws: Path, round_id: int | None = None) -> list[tuple]:
+    where = "" if round_id is None else f" WHERE round_id = {int(round_id)}"
+    return rows(ws, "SELECT case_id, expert, strategy, selection_prob, audit, fee FROM assignments"
+                    f"{where} ORDER BY assignment_id")
+
+
+# --------------------------------------------------------------------------- plan
+
+
+def test_plan_respects_budget_caps_capacities_and_truth(ws):
+    budget, cap = 8.0, 30
+    info = plan(ws, "--budget", budget, "--max-per-expert", cap, "--seed", 1)
+    Draft202012Validator(json.loads((SCHEMAS / "round-plan.schema.json").read_text())).validate(info)
+    got = assignments(ws, info["round"])
+    assert len(got) == info["assignments"] > 0
+    assert sum(r[5] for r in got) <= budget + 1e-9
+    counts = {name: sum(1 for r in got if r[1] == name) for name in EXPERTS}
+    for name, (_, capacity) in EXPERTS.items():
+        assert counts[name] <= cap
+        # capacity: at most ceil(capacity x assignments in the round), exact decimal arithmetic
+        assert counts[name] <= math.ceil(Fraction(str(capacity)) * len(got))
+    assert len({(r[0], r[1]) for r in got}) == len(got)
+    no_truth = {r[0] for r in rows(ws, "SELECT case_id FROM cases WHERE truth IS NULL")}
+    assert not any(r[0] in no_truth for r in got)
+    # the JSON figures are the stored ones
+    for e in info["experts"]:
+        assert e["cases"] == counts[e["expert"]]
+        assert e["spend"] == pytest.approx(sum(r[5] for r in got if r[1] == e["expert"]))
+        assert e["audit"] == sum(r[4] for r in got if r[1] == e["expert"])
+    assert all(0 < r[3] <= 1 for r in got)
+
+
+def test_plan_table_lists_every_expert(ws):
+    out = ok(invoke(ws, "round", "plan", "--budget", 3)).stdout
+    for name in EXPERTS:
+        assert name in out
+    assert "expected gain" in out
+
+
+def test_same_seed_reproduces_plan_exactly(ws, tmp_path):
+    other = Path(shutil.copytree(ws, tmp_path / "twin"))
+    third = Path(shutil.copytree(ws, tmp_path / "third"))
+    plan(ws, "--budget", 6, "--seed", 5)
+    plan(other, "--budget", 6, "--seed", 5)
+    plan(third, "--budget", 6, "--seed", 6)
+    assert assignments(ws) == assignments(other)
+    assert assignments(ws) != assignments(third)
+
+
+@pytest.mark.parametrize("strategy", ["random", "uncertain"])
+def test_other_strategies_run(ws, strategy):
+    info = plan(ws, "--budget", 4, "--strategy", strategy)
+    assert info["strategy"] == strategy and info["assignments"] > 0
+    assert {r[2] for r in assignments(ws)} <= {strategy, "audit"}
+
+
+def test_audit_share_met_within_one_fee(ws):
+    budget, share = 10.0, 0.3
+    info = plan(ws, "--budget", budget, "--audit-share", share)
+    audit_spend = sum(r[5] for r in assignments(ws) if r[4])
+    assert share * budget - max(f for f, _ in EXPERTS.values()) < audit_spend <= share * budget + 1e-9
+    assert info["audit_spend"] == pytest.approx(audit_spend)
+
+
+def test_later_rounds_skip_answered_and_assigned_pairs(ws, tmp_path):
+    with_truth = [r[0] for r in rows(ws, "SELECT case_id FROM cases WHERE truth IS NOT NULL ORDER BY pos")]
+    history = tmp_path / "history.csv"
+    with open(history, "w", newline="", encoding="utf-8") as handle:
+        writer = csv.writer(handle)
+        writer.writerow(["case_id", "expert", "answer"])
+        for case_id in with_truth[:40]:
+            writer.writerow([case_id, "ann", "a"])
+    ok(invoke(ws, "answers", "import", history))
+    first = plan(ws, "--budget", 6)
+    second = plan(ws, "--budget", 6, "--seed", 9)
+    one = {(r[0], r[1]) for r in assignments(ws, first["round"])}
+    two = {(r[0], r[1]) for r in assignments(ws, second["round"])}
+    answered = {(c, "ann") for c in with_truth[:40]}
+    assert two and not (one & two)
+    assert not ((one | two) & answered)
+
+
+def test_include_unverified_reaches_cases_without_truth(ws):
+    info = plan(ws, "--budget", 20, "--include-unverified")
+    no_truth = {r[0] for r in rows(ws, "SELECT case_id FROM cases WHERE truth IS NULL")}
+    assert any(r[0] in no_truth for r in assignments(ws, info["round"]))
+
+
+def test_dry_run_stores_nothing(ws):
+    before = dump(ws)
+    info = plan(ws, "--budget", 4, "--dry-run")
+    assert info["round"] is None and info["assignments"] > 0
+    assert dump(ws) == before
+
+
+@pytest.mark.parametrize(
+    "args,fragment",
+    [
+        (["--budget", "0.01"], "buys no assignment"),
+        (["--budget", "-3"], "--budget must be a positive number"),
+        (["--budget", "5", "--due-days", "0"], "--due-days"),
+    ],
+)
+def test_plan_bad_input_leaves_workspace_unchanged(ws, args, fragment):
+    before = dump(ws)
+    one_line_error(invoke(ws, "round", "plan", *args), fragment)
+    assert dump(ws) == before
+
+
+def test_plan_without_truth_says_what_to_do(tmp_path):
+    ws = tmp_path / "bare"
+    ok(invoke(ws, "init", "--labels", "a,b"))
+    (tmp_path / "c.csv").write_text("case_id,x\nq1,0.5\nq2,1.5\nq3,-1\n")
+    ok(invoke(ws, "cases", "import", tmp_path / "c.csv"))
+    ok(invoke(ws, "experts", "add", "ann", "--fee", "0.1"))
+    one_line_error(invoke(ws, "round", "plan", "--budget", "1"), "--include-unverified")
+
+
+def test_due_days_is_stored(ws):
+    info = plan(ws, "--budget", 2, "--due-days", 3)
+    stored = rows(ws, "SELECT due_at FROM rounds WHERE round_id = ?", (info["round"],))[0][0]
+    assert stored == info["due_at"] and stored is not None
+
+
+# --------------------------------------------------------------------------- export
+
+
+def _read_sheet(path: Path) -> tuple[list[str], list[dict]]:
+    """Read a sheet the way a spreadsheet shows it: numbers as numbers, empty cells as null."""
+    with open(path, newline="", encoding="utf-8") as handle:
+        reader = csv.DictReader(handle)
+        records = list(reader)
+        header = list(reader.fieldnames or [])
+    out = []
+    for record in records:
+        row = {}
+        for key, cell in record.items():
+            if cell == "":
+                row[key] = None
+            elif key in ("case_id", "expert", "answer"):
+                row[key] = cell
+            else:
+                try:
+                    row[key] = float(cell)
+                except ValueError:
+                    row[key] = cell
+        out.append(row)
+    return header, out
+
+
+def test_export_writes_one_valid_neutralised_sheet_per_expert(ws, tmp_path):
+    info = plan(ws, "--budget", 8)
+    out = tmp_path / "sheets"
+    result = json.loads(ok(invoke(ws, "round", "export", info["round"], "--out", out,
+                                  "--columns", "note,x0", "--json")).stdout)
+    validator = Draft202012Validator(json.loads((SCHEMAS / "sheet-row.schema.json").read_text()))
+    stored = assignments(ws, info["round"])
+    seen_formula = 0
+    for e in info["experts"]:
+        if e["cases"] == 0:
+            continue
+        header, records = _read_sheet(out / f"{e['expert']}.csv")
+        assert header == ["case_id", "note", "x0", "expert", "answer"]
+        assert len(records) == e["cases"]
+        assert {r["case_id"].lstrip("'") for r in records} == {r[0] for r in stored if r[1] == e["expert"]}
+        for record in records:
+            validator.validate(record)
+            # OWASP CSV-injection guidance (common practice): no text cell may start a formula
+            for key in ("case_id", "note"):
+                value = record[key]
+                if isinstance(value, str) and value.lstrip("'")[:1] in LEADS:
+                    assert value.startswith("'")
+                    seen_formula += 1
+    assert seen_formula > 0
+    assert sorted(s["expert"] for s in result["sheets"]) == sorted(e["expert"] for e in info["experts"] if e["cases"])
+
+
+def test_export_refuses_unknown_round_and_column(ws, tmp_path):
+    one_line_error(invoke(ws, "round", "export", 7, "--out", tmp_path / "s"), "no round 7")
+    info = plan(ws, "--budget", 2)
+    one_line_error(invoke(ws, "round", "export", info["round"], "--out", tmp_path / "s", "--columns", "nope"),
+                   "unknown column 'nope'", "x0")
+
+
+def test_export_keeps_filled_sheets_unless_told(ws, tmp_path):
+    info = plan(ws, "--budget", 2)
+    out = tmp_path / "sheets"
+    ok(invoke(ws, "round", "export", info["round"], "--out", out))
+    sheet = next(out.glob("*.csv"))
+    sheet.write_text(sheet.read_text() + "# filled in\n")
+    one_line_error(invoke(ws, "round", "export", info["round"], "--out", out), "already exists", "--overwrite")
+    assert sheet.read_text().endswith("# filled in\n")
+    ok(invoke(ws, "round", "export", info["round"], "--out", out, "--overwrite"))
+    assert not sheet.read_text().endswith("# filled in\n")
+
+
+@pytest.mark.parametrize("hostile", ["../escape", "..", "sub/inner", "/tmp/abs"])
+def test_export_refuses_expert_name_leading_outside(ws, tmp_path, hostile):
+    # A name the importers would refuse, written straight into the database to test the guard.
+    info = plan(ws, "--budget", 2)
+    case_id = rows(ws, "SELECT case_id FROM cases WHERE truth IS NOT NULL LIMIT 1")[0][0]
+    conn = sqlite3.connect(ws / DB_NAME)
+    with conn:
+        conn.execute("INSERT INTO experts VALUES (?, 0.1, 1.0, '2024-01-01T00:00:00+00:00')", (hostile,))
+        conn.execute("INSERT INTO assignments (round_id, case_id, expert, strategy, selection_prob, audit, fee, "
+                     "state, created_at) VALUES (?, ?, ?, 'value', 0.5, 0, 0.1, 'open', 'x')",
+                     (info["round"], case_id, hostile))
+    conn.close()
+    out = tmp_path / "deep" / "sheets"
+    one_line_error(invoke(ws, "round", "export", info["round"], "--out", out), "not safe as a file name")
+    assert not list(out.glob("*.csv"))
+    assert not (tmp_path / "deep" / "escape.csv").exists()
+
+
+def test_export_refuses_sheet_linked_outside(ws, tmp_path):
+    # resolve-and-check: an existing link DIR/ann.csv -> elsewhere is not followed
+    info = plan(ws, "--budget", 4)
+    out = tmp_path / "sheets"
+    out.mkdir()
+    victim = tmp_path / "victim.csv"
+    victim.write_text("keep me\n")
+    (out / "ann.csv").symlink_to(victim)
+    one_line_error(invoke(ws, "round", "export", info["round"], "--out", out, "--overwrite"), "not safe")
+    assert victim.read_text() == "keep me\n"
+
+
+# --------------------------------------------------------------------------- close
+
+
+def test_close_counts_answered_and_expired(ws, tmp_path):
+    info = plan(ws, "--budget", 3)
+    got = assignments(ws, info["round"])
+    truth = dict(rows(ws, "SELECT case_id, truth FROM cases"))
+    answers = tmp_path / "answers.csv"
+    with open(answers, "w", newline="", encoding="utf-8") as handle:
+        writer = csv.writer(handle)
+        writer.writerow(["case_id", "expert", "answer"])
+        for case_id, expert, *_ in got[:5]:
+            writer.writerow([case_id, expert, truth[case_id]])
+    ok(invoke(ws, "answers", "import", answers))
+    closed = json.loads(ok(invoke(ws, "round", "close", info["round"], "--json")).stdout)
+    assert closed == {"round": info["round"], "answered": 5, "expired": len(got) - 5, "already_closed": False}
+    status = json.loads(ok(invoke(ws, "status", "--json")).stdout)
+    assert [r["state"] for r in status["rounds"]] == ["closed"]
+    again = json.loads(ok(invoke(ws, "round", "close", info["round"], "--json")).stdout)
+    assert again["already_closed"] is True
+    one_line_error(invoke(ws, "round", "close", 99), "no round 99")

@@ -1,0 +1,208 @@
+"""The column-wise schema checker (``files.check_rows``) against the reference validator.
+
+Reference library: ``jsonschema.Draft202012Validator`` (the jsonschema package, JSON Schema
+2020-12). For every schema in ``schemas/``, hypothesis generates small tables of rows; the
+table passes ``check_rows`` exactly when every row is valid for the reference validator, and
+when it fails, the reported row is the first row the reference validator refuses.
+
+One documented difference: JSON Schema patterns are ECMA-262 regular expressions (JSON Schema
+2020-12 validation spec, section 6.3.3), where ``$`` matches only at the end of the text;
+jsonschema runs them with Python's :mod:`re`, whose ``$`` also matches before a final newline.
+``check_rows`` follows ECMA-262, so text ending in a newline is left out of the comparison and
+checked on its own below.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from pathlib import Path
+
+import jsonschema
+import numpy as np
+import pandas as pd
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from routeplan.errors import InputError
+from routeplan.files import Table, check_rows, load_schema, read_table
+
+SCHEMA_DIR = Path(__file__).resolve().parents[1] / "schemas"
+SCHEMA_NAMES = sorted(p.name[: -len(".schema.json")] for p in SCHEMA_DIR.glob("*.schema.json"))
+# check_rows evaluates the keyword subset listed in routeplan.files; the schemas of files routeplan
+# writes (decisions, round plans) use more and are checked with jsonschema where they are written.
+_TOP = {"$schema", "$id", "title", "description", "type", "required", "properties", "additionalProperties"}
+_RULE = {"type", "minimum", "maximum", "exclusiveMinimum", "exclusiveMaximum", "minLength", "maxLength",
+         "pattern", "enum", "not", "description"}
+
+
+def _within_subset(schema: dict) -> bool:
+    rules = list(schema.get("properties", {}).values())
+    if isinstance(schema.get("additionalProperties"), dict):
+        rules.append(schema["additionalProperties"])
+    for rule in rules:
+        if set(rule) - _RULE:
+            return False
+        negated = rule.get("not", {})
+        if set(negated) - {"anyOf", "pattern"} or any(set(b) - {"pattern"} for b in negated.get("anyOf", [])):
+            return False
+    return schema.get("type") == "object" and not set(schema) - _TOP
+
+
+ROW_SCHEMAS = [name for name in SCHEMA_NAMES if _within_subset(load_schema(name))]
+IMPORTED = {"cases-row", "truth-row", "experts-row", "answers-row"}  # the schemas routeplan.ingest checks with
+
+
+def test_every_imported_schema_is_within_the_checked_subset():
+    assert IMPORTED <= set(ROW_SCHEMAS)
+
+
+def test_every_schema_is_valid_2020_12():
+    assert SCHEMA_NAMES, "no schemas found"
+    for name in SCHEMA_NAMES:
+        schema = load_schema(name)
+        assert schema["$schema"] == "https://json-schema.org/draft/2020-12/schema"
+        jsonschema.Draft202012Validator.check_schema(schema)  # the meta-schema of the reference library
+
+
+# --------------------------------------------------------------------------- generated rows
+
+_INTERESTING_TEXT = [
+    "model", "Model", "MODEL", "models", "a", "A.b", "a..b", "..", "../x", "x/y", "x\\y", ".x", "x.", "x-", "_x",
+    "x\x01", "\x7f", "tab\there", "sp ace", "é", "名前", "0", "1.5", "-2", "x" * 64, "y" * 65, "z" * 200, "w" * 201,
+    "",
+]
+
+
+def _spells_finite_number(text: str) -> bool:
+    """True if ``pandas.to_numeric`` reads the text as a finite number (then it is a number, not text)."""
+    value = pd.to_numeric(pd.Series([text], dtype=object), errors="coerce").iloc[0]
+    return bool(pd.notna(value) and math.isfinite(value))
+
+
+_text = st.one_of(
+    st.sampled_from(_INTERESTING_TEXT),
+    st.text(max_size=12),
+    st.text(alphabet="abcXYZ019._-/ \x00\x1f", max_size=70),
+).filter(lambda s: not s.endswith("\n"))  # see the module docstring (ECMA-262 vs Python `$`)
+_number = st.floats(allow_nan=False, allow_infinity=False, width=64)
+_non_number_text = _text.filter(lambda s: not _spells_finite_number(s))
+
+
+def _cell_strategy(rule: dict):
+    kinds = rule.get("type", ["string", "number", "null"])
+    kinds = {kinds} if isinstance(kinds, str) else set(kinds)
+    if kinds & {"number", "integer"} and "string" not in kinds:
+        # a number column: numbers, missing cells, and text that is not a number
+        return st.one_of(_number, _number, st.none(), _non_number_text)
+    options = [_text, _text, st.none()]
+    if "number" in kinds:
+        # numbers or text: in a CSV a cell that spells a number is a number, so text here never does
+        options = [_non_number_text, _non_number_text, st.none(), _number]
+    return st.one_of(*options)
+
+
+@st.composite
+def tables(draw, schema: dict):
+    """(columns, rows): a set of columns and 1-4 rows of typed JSON values."""
+    properties = schema["properties"]
+    columns = [name for name in properties if draw(st.booleans()) or (name in schema["required"] and draw(st.booleans()))]
+    extra = schema.get("additionalProperties", True)
+    if draw(st.integers(0, 4)) == 0:
+        columns.append(draw(st.sampled_from(["extra", "f1", "note"])))
+    n_rows = draw(st.integers(1, 4))
+    rules = {c: properties.get(c, extra if isinstance(extra, dict) else {}) for c in columns}
+    rows = [{c: draw(_cell_strategy(rules[c])) for c in columns} for _ in range(n_rows)]
+    return columns, rows
+
+
+def _as_table(columns: list[str], rows: list[dict]) -> Table:
+    """The table ``files.read_table`` would make: numeric columns as float64, others as text."""
+    cells, numeric, empty = {}, {}, {}
+    for name in columns:
+        values = [row[name] for row in rows]
+        empty[name] = np.array([v is None for v in values])
+        if any(isinstance(v, float) for v in values) and not any(isinstance(v, str) for v in values):
+            array = np.array([np.nan if v is None else v for v in values], dtype=np.float64)
+            numeric[name] = cells[name] = array
+        else:  # text: numbers appear as their shortest repr, as in a CSV file
+            cells[name] = pd.Series([repr(v) if isinstance(v, float) else v for v in values], dtype=object)
+    frame = pd.DataFrame(cells, columns=columns)
+    return Table(frame, "generated", "", False, numeric, empty)
+
+
+@pytest.mark.parametrize("name", ROW_SCHEMAS)
+@settings(max_examples=100, deadline=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.filter_too_much])
+@given(data=st.data())
+def test_check_rows_agrees_with_jsonschema(name, data):
+    schema = load_schema(name)
+    columns, rows = data.draw(tables(schema))
+    validator = jsonschema.Draft202012Validator(schema)  # reference library
+    verdicts = [validator.is_valid(row) for row in rows]
+    table = _as_table(columns, rows)
+    try:
+        check_rows(table, schema)
+    except InputError as exc:
+        assert not all(verdicts), f"check_rows refused valid rows: {exc.message}"
+        # Parquet-style numbering (is_text=False): record i is row i + 1; header problems are row 1
+        assert exc.line == verdicts.index(False) + 1, (exc.message, verdicts)
+    else:
+        failing = [(row, [e.message for e in validator.iter_errors(row)]) for row, ok in zip(rows, verdicts) if not ok]
+        assert all(verdicts), f"check_rows accepted invalid rows: {failing}"
+
+
+def test_check_rows_returns_parsed_numbers():
+    schema = load_schema("experts-row")
+    table = _as_table(["name", "fee", "capacity"], [
+        {"name": "a", "fee": "0.25", "capacity": None},
+        {"name": "b", "fee": "3", "capacity": 0.5},
+    ])
+    parsed = check_rows(table, schema)
+    np.testing.assert_array_equal(parsed["fee"], [0.25, 3.0])
+    assert np.isnan(parsed["capacity"][0]) and parsed["capacity"][1] == 0.5
+
+
+def test_check_rows_numeric_columns_must_be_finite():
+    schema = load_schema("cases-row")
+    table = _as_table(["case_id", "f1"], [{"case_id": "a", "f1": 1.0}, {"case_id": "b", "f1": None}])
+    # the schema alone lets a display column be empty ...
+    assert jsonschema.Draft202012Validator(schema).is_valid({"case_id": "b", "f1": None})
+    check_rows(table, schema)
+    # ... a feature column may not be
+    with pytest.raises(InputError, match="'f1' is empty") as info:
+        check_rows(table, schema, numeric_columns=("f1",))
+    assert info.value.line == 2
+
+
+@pytest.mark.parametrize("schema_name,column,value", [
+    ("experts-row", "name", "ab\n"),
+    ("experts-row", "name", "model\n"),
+    ("answers-row", "case_id", "c1\n"),
+])
+def test_pattern_end_anchor_follows_ecma_262(schema_name, column, value):
+    """``$`` does not match before a final newline (ECMA-262; JSON Schema 2020-12 validation, 6.3.3)."""
+    schema = load_schema(schema_name)
+    row = {c: ("x" if c != "fee" else 1.0) for c in schema["required"]}
+    row[column] = value
+    with pytest.raises(InputError):
+        check_rows(_as_table(list(row), [row]), schema)
+
+
+# --------------------------------------------------------------------------- reading files
+
+
+def test_read_table_keeps_ids_as_text_and_strips_cells(tmp_path):
+    path = tmp_path / "t.csv"
+    path.write_bytes("\ufeffcase_id , f1\r\n007 ,  1.5\r\n 8,2\r\n".encode("utf-8"))
+    table = read_table(path, text_columns=("case_id",))
+    assert list(table.frame.columns) == ["case_id", "f1"]
+    assert table.frame["case_id"].tolist() == ["007", "8"]
+    np.testing.assert_array_equal(table.numeric["f1"], [1.5, 2.0])
+    assert table.line_of(1) == 3
+
+
+def test_schemas_in_package_are_the_schemas_folder():
+    """The installed package ships the same schema documents as ``schemas/``."""
+    for name in SCHEMA_NAMES:
+        assert load_schema(name) == json.loads((SCHEMA_DIR / f"{name}.schema.json").read_text(encoding="utf-8"))

@@ -1,0 +1,145 @@
+"""The SQLite workspace: creation, refusal to overwrite, transactions, the append-only journal.
+
+Database facts are checked through Python's own :mod:`sqlite3` (the reference client), not
+through routeplan.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import sqlite3
+
+import numpy as np
+import pytest
+
+from conftest import db_dump, query, run_cli
+from routeplan.errors import InputError, WorkspaceExists, WorkspaceMissing
+from routeplan.workspace import DB_NAME, SCHEMA_VERSION, Workspace
+
+
+def test_create_then_open(tmp_path):
+    with Workspace.create(tmp_path / "w", ["yes", "no"], error_cost=3.0) as ws:
+        assert ws.labels == ["yes", "no"]
+        assert ws.error_cost == 3.0
+        assert ws.schema_version == SCHEMA_VERSION
+        assert ws.feature_columns == []
+    assert sorted(p.name for p in (tmp_path / "w").iterdir()) == [DB_NAME]  # no temporary file left
+    with Workspace.open(tmp_path / "w") as ws:
+        assert ws.labels == ["yes", "no"]
+        assert [e["command"] for e in ws.journal()] == ["init"]
+    # sqlite3 reports WAL journalling (chosen so readers never block the writer)
+    assert query(tmp_path / "w", "PRAGMA journal_mode")[0][0] == "wal"
+
+
+def test_create_refuses_to_overwrite(stocked_ws):
+    before = db_dump(stocked_ws)
+    with pytest.raises(WorkspaceExists, match="already exists"):
+        Workspace.create(stocked_ws, ["a", "b"])
+    assert db_dump(stocked_ws) == before
+
+
+def test_open_without_workspace(tmp_path):
+    with pytest.raises(WorkspaceMissing, match="routeplan init"):
+        Workspace.open(tmp_path)
+
+
+@pytest.mark.parametrize("labels", [["one"], ["a", "a"], ["a", ""], ["a", "b\x01"]])
+def test_create_refuses_bad_labels(tmp_path, labels):
+    with pytest.raises(InputError):
+        Workspace.create(tmp_path / "w", labels)
+    assert not (tmp_path / "w" / DB_NAME).exists()
+
+
+@pytest.mark.parametrize("cost", [0.0, -1.0, float("nan"), float("inf")])
+def test_create_refuses_bad_error_cost(tmp_path, cost):
+    with pytest.raises(InputError, match="--error-cost"):
+        Workspace.create(tmp_path / "w", ["a", "b"], error_cost=cost)
+
+
+def test_reopening_changes_nothing(stocked_ws):
+    before = db_dump(stocked_ws)
+    Workspace.open(stocked_ws).close()
+    assert db_dump(stocked_ws) == before
+
+
+@pytest.mark.parametrize(
+    "sql",
+    ["UPDATE journal SET command = 'forged'", "DELETE FROM journal", "UPDATE journal SET detail = '{}' WHERE entry_id = 1"],
+)
+def test_journal_refuses_update_and_delete(stocked_ws, sql):
+    before = db_dump(stocked_ws)
+    conn = sqlite3.connect(stocked_ws / DB_NAME)
+    try:
+        with pytest.raises(sqlite3.DatabaseError, match="append-only"):
+            conn.execute(sql)
+        conn.rollback()
+    finally:
+        conn.close()
+    assert db_dump(stocked_ws) == before
+
+
+def test_journal_accepts_appends(stocked_ws):
+    n = query(stocked_ws, "SELECT COUNT(*) FROM journal")[0][0]
+    with Workspace.open(stocked_ws) as ws, ws.transaction():
+        ws.log("probe", {"k": 1})
+    assert query(stocked_ws, "SELECT COUNT(*) FROM journal")[0][0] == n + 1
+
+
+def test_journal_records_each_import_with_the_file_digest(empty_ws, write_file):
+    path = write_file("cases.csv", "case_id,f1\na,1\nb,2\n")
+    assert run_cli(empty_ws, "cases", "import", path).exit_code == 0
+    rows = query(empty_ws, "SELECT command, input_file, input_sha256 FROM journal ORDER BY entry_id")
+    # the digest agrees with hashlib's sha256 of the file's bytes (reference implementation)
+    assert rows[-1] == ("cases import", str(path), hashlib.sha256(path.read_bytes()).hexdigest())
+    assert [r[0] for r in rows] == ["init", "cases import"]
+
+
+def test_transaction_is_all_or_nothing(stocked_ws):
+    before = db_dump(stocked_ws)
+    with Workspace.open(stocked_ws) as ws:
+        with pytest.raises(RuntimeError):
+            with ws.transaction():
+                ws.upsert_experts([("zed", 1.0, 0.5)])
+                ws.log("experts add", {"experts": [["zed", 1.0, 0.5]]})
+                raise RuntimeError("stop half way")
+        assert "zed" not in {e["name"] for e in ws.experts()}
+    assert db_dump(stocked_ws) == before
+
+
+def test_database_constraints_back_up_the_importers(stocked_ws):
+    """Foreign keys and CHECK constraints refuse rows the importers should never send."""
+    with Workspace.open(stocked_ws) as ws:
+        conn = ws.db.conn
+        with pytest.raises(sqlite3.IntegrityError):
+            conn.execute("INSERT INTO experts VALUES ('neg', -1, 0.5, 'now')")
+        with pytest.raises(sqlite3.IntegrityError):
+            conn.execute("INSERT INTO experts VALUES ('big', 1, 1.5, 'now')")
+        with pytest.raises(sqlite3.IntegrityError):  # foreign key: no such case
+            conn.execute(
+                "INSERT INTO answers (case_id, expert, answer, source_file, source_sha256, imported_at) "
+                "VALUES ('nope', 'alice', 'accept', 'f', 's', 'now')"
+            )
+        with pytest.raises(sqlite3.IntegrityError):  # foreign key: label outside the set
+            conn.execute(
+                "INSERT INTO answers (case_id, expert, answer, source_file, source_sha256, imported_at) "
+                "VALUES ('c2', 'alice', 'maybe', 'f', 's', 'now')"
+            )
+
+
+def test_case_frame_returns_the_stored_features(stocked_ws):
+    with Workspace.open(stocked_ws) as ws:
+        frame, X = ws.case_frame()
+    assert frame["case_id"].tolist() == ["c1", "c2", "c3", "c4", "c5", "c6"]
+    assert X.dtype == np.float64 and X.shape == (6, 2)
+    np.testing.assert_array_equal(X[:, 0], [0.5, 1.0, 2.5, -1.0, 0.0, 4.0])  # the values in conftest.CASES_CSV
+
+
+def test_seen_input_and_answer_frame(stocked_ws):
+    with Workspace.open(stocked_ws) as ws:
+        sha = query(stocked_ws, "SELECT input_sha256 FROM journal WHERE command = 'answers import'")[0][0]
+        assert ws.seen_input("answers import", sha)
+        assert not ws.seen_input("truth import", sha)
+        answers = ws.answer_frame()
+    assert len(answers) == 2
+    assert answers["selection_prob"].isna().all()  # historical answers carry no selection probability
+    assert not answers["audit"].any()
