@@ -84,7 +84,8 @@ class Commands:
     def skip(self, what: str) -> None:
         """Say (and remember) that a step is skipped because this routeplan lacks its command."""
         print(f"\n(skipped: this routeplan has no `{what}` command yet)")
-        self.skipped.append(what)
+        if what not in self.skipped:
+            self.skipped.append(what)
 
     def help_text(self, path: tuple[str, ...]) -> str:
         """The ``--help`` output of a command (empty if it has none)."""

@@ -356,6 +356,79 @@ def fit(app, seed, routers, max_epochs, as_json):
     app.console.print(render_fit(report))
 
 
+# --------------------------------------------------------------------------- freeze and route
+
+
+@cli.command()
+@click.option("--out", "out_path", required=True, type=click.Path(dir_okay=False, path_type=Path),
+              help="The policy file to write (JSON manifest + arrays + sha256).")
+@click.option("--card", "card_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
+              help="The Markdown policy card (default: the --out name with .md).")
+@click.option("--model", "model_id", type=int, default=None, help="A stored model id (default: the chosen one).")
+@json_option
+@pass_app
+def freeze(app, out_path, card_path, model_id, as_json):
+    """Freeze the fitted router as a routing policy file, with a policy card beside it.
+
+    Solves the capacity LP on the fit's held-out cases for each expert's dual price, and
+    records held-out estimates (system cost, accuracy, coverage, workload, with 95%
+    intervals) of the capped routing in the file. Capacities are the experts' current
+    ones. The file is recorded in the workspace.
+
+    Example:
+
+    \b
+        routeplan freeze --out tiles-policy.json --card tiles-policy.md
+    """
+    from .freezing import freeze_workspace
+
+    with app.workspace() as ws:
+        result = freeze_workspace(ws, out_path, card=card_path, model_id=model_id)
+    if as_json:
+        app.emit_json(result.to_dict())
+    elif not app.quiet:
+        app.console.print(result)
+
+
+@cli.command()
+@click.option("--policy", "policy_path", required=True, type=click.Path(dir_okay=False, path_type=Path),
+              help="A policy file written by 'routeplan freeze'.")
+@click.argument("cases_path", metavar="CASES", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--out", "out_path", required=True, type=click.Path(dir_okay=False, path_type=Path),
+              help="The decisions file: Parquet if it ends in .parquet or .pq, else CSV.")
+@click.option("--exact", is_flag=True,
+              help="Solve the capacity LP over the whole file (least total cost) instead of routing with "
+                   "the policy's prices and a running count.")
+@click.option("--id-column", default="case_id", show_default=True, help="Column with each case's unique id.")
+@click.option("--chunk-size", type=click.IntRange(min=1), default=65536, show_default=True,
+              help="Cases scored at once (bounds memory; does not change the decisions).")
+@json_option
+@pass_app
+def route(app, policy_path, cases_path, out_path, exact, id_column, chunk_size, as_json):
+    """Route new cases (CSV or Parquet) with a frozen policy; no workspace needed.
+
+    Writes one row per case, in input order: case_id, route (model or an expert's name),
+    label (the model's class where route is model, else empty), expected_cost and the
+    expected cost of every option. Each expert's capacity share is held. Refuses a policy
+    whose sha256, format version or manifest does not check out.
+
+    Example:
+
+    \b
+        routeplan route --policy tiles-policy.json new_tiles.csv --out decisions.csv
+    """
+    from .freezing import route_file
+
+    result = route_file(policy_path, cases_path, out_path, exact=exact, id_column=id_column,
+                        chunk_size=chunk_size, console=app.console, progress=not (app.quiet or as_json))
+    if result.outside_warning:
+        click.echo(result.outside_warning, err=True)
+    if as_json:
+        app.emit_json(result.to_dict())
+    elif not app.quiet:
+        app.console.print(result)
+
+
 # --------------------------------------------------------------------------- competence
 
 

@@ -507,6 +507,21 @@ class Workspace:
         }
         return int(row[0]), row[1], json.loads(row[2]), json.loads(row[3] or "{}"), arrays
 
+    # ------------------------------------------------------------------ policies
+
+    def add_policy(self, path: str, sha256: str, model_id: int | None, manifest: dict) -> int:
+        """Record a frozen policy file (call inside :meth:`transaction`); returns its id."""
+        cursor = self.db.conn.execute(
+            "INSERT INTO policies (created_at, path, sha256, model_id, manifest) VALUES (?, ?, ?, ?, ?)",
+            (_now(), str(path), sha256, model_id, json.dumps(manifest, sort_keys=True)),
+        )
+        return int(cursor.lastrowid)
+
+    def policies(self) -> list[dict]:
+        """Recorded policies (policy_id, created_at, path, sha256, model_id), newest first."""
+        return [dict(r) for r in self._rows(
+            "SELECT policy_id, created_at, path, sha256, model_id FROM policies ORDER BY policy_id DESC")]
+
     # ------------------------------------------------------------------ status
 
     def status(self) -> dict:

@@ -1,0 +1,62 @@
+"""``routeplan fit`` end to end on scikit-learn's digits with the published simulated expert.
+
+Source of the protocol: Mozannar & Sontag, "Consistent Estimators for Learning to Defer to an
+Expert", ICML 2020: an expert always right on classes 0..k-1 and uniformly random on the
+others. A good deferral system beats both the classifier alone and the expert alone
+(see ../shared/reference/README.md, "Learning to defer: the simulated-expert protocol").
+"""
+
+from __future__ import annotations
+
+import json
+import sqlite3
+
+import pytest
+
+from routeplan.workspace import DB_NAME
+from sklearn_workspace import digits_workspace, invoke
+
+
+@pytest.fixture(scope="module")
+def digits5(tmp_path_factory):
+    return digits_workspace(tmp_path_factory.mktemp("fit"), k=5, n_answers=None)
+
+
+@pytest.mark.slow
+def test_fit_beats_model_alone_and_expert_alone_on_digits(digits5):
+    result = invoke(digits5, "fit", "--seed", "0", "--max-epochs", "60", "--json")
+    report = json.loads(result.stdout)
+    rows = {row["router"]: row for row in report["table"]}
+    chosen = rows[report["chosen"]]
+    expert_alone = next(r for name, r in rows.items() if name.startswith("oracle_k"))
+    model_alone = next(r for name, r in rows.items() if name.startswith("model alone"))
+    # Mozannar & Sontag (ICML 2020): the deferral system beats both the classifier and the expert alone.
+    assert chosen["system_cost"] < model_alone["system_cost"]
+    assert chosen["system_cost"] < expert_alone["system_cost"]
+    # It defers mostly on the expert's classes 0..k-1, so it neither decides everything nor defers everything.
+    assert 0.0 < chosen["coverage"] < 1.0
+    assert report["answers_per_expert"] == {"oracle_k": 1797}
+
+
+@pytest.mark.slow
+def test_fit_stores_every_candidate_and_marks_one_chosen(digits5):
+    invoke(digits5, "fit", "--seed", "1", "--max-epochs", "5", "--router", "plugin", "--router", "softmax-mlp")
+    conn = sqlite3.connect(digits5 / DB_NAME)
+    kinds = conn.execute("SELECT kind, chosen FROM models ORDER BY model_id DESC LIMIT 2").fetchall()
+    arrays = conn.execute("SELECT COUNT(*) FROM model_arrays WHERE model_id = (SELECT MAX(model_id) FROM models)").fetchone()[0]
+    journal = conn.execute("SELECT command FROM journal WHERE command = 'fit'").fetchall()
+    conn.close()
+    assert sorted(k for k, _ in kinds) == ["plugin", "softmax-mlp"]
+    assert sum(c for _, c in kinds) == 1  # exactly one of them is kept (common practice: one active version)
+    assert arrays > 0  # weights stored as arrays, not pickled
+    assert len(journal) >= 1
+
+
+def test_fit_refuses_unknown_router(tmp_path):
+    from click.testing import CliRunner
+    from routeplan.cli import cli
+
+    invoke(tmp_path / "w", "init", "--labels", "a,b")
+    result = CliRunner().invoke(cli, ["--workspace", str(tmp_path / "w"), "fit", "--router", "nonsense"])
+    assert result.exit_code == 2
+    assert "nonsense" in result.stderr and "Traceback" not in result.stderr
