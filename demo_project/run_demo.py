@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import re
 import shlex
 import shutil
@@ -46,6 +47,13 @@ class DemoStopped(Exception):
         self.code = code
 
 
+def _child_env() -> dict[str, str]:
+    """The environment for routeplan: ours, with room for wide tables when piped."""
+    env = dict(os.environ)
+    env.setdefault("COLUMNS", str(max(110, shutil.get_terminal_size(fallback=(110, 24)).columns)))
+    return env
+
+
 def _routeplan(args: list[str], *, capture: bool = False, show: bool = True) -> subprocess.CompletedProcess:
     """Run ``routeplan --workspace workspace ARGS`` in WORK; stop the demo if it fails."""
     full = ["--workspace", WORKSPACE, *args]
@@ -56,6 +64,7 @@ def _routeplan(args: list[str], *, capture: bool = False, show: bool = True) -> 
         cwd=WORK,
         text=True,
         capture_output=capture,
+        env=_child_env(),
     )
     if proc.returncode != 0:
         if capture:
@@ -150,6 +159,13 @@ def _describe_plan(payload: Any) -> None:
             print(f"  {key}: {value}")
         elif isinstance(value, dict) and all(isinstance(v, (int, float, str)) for v in value.values()) and len(value) <= 10:
             print(f"  {key}: " + ", ".join(f"{k}={v}" for k, v in value.items()))
+        elif isinstance(value, list) and value and all(isinstance(v, str) for v in value):
+            for line in value:
+                print(f"  {key}: {line}")
+        elif isinstance(value, list) and all(isinstance(v, dict) and "expert" in v for v in value):
+            for row in value:
+                plain = {k: v for k, v in row.items() if k != "expert" and isinstance(v, (int, float, str))}
+                print(f"  {row['expert']}: " + ", ".join(f"{k}={v:.3g}" if isinstance(v, float) else f"{k}={v}" for k, v in plain.items()))
 
 
 def _setup(cmds: Commands, summary: dict[str, Any]) -> None:
@@ -343,7 +359,8 @@ def _print_summary(cmds: Commands, summary: dict[str, Any], seed: int) -> None:
         print(f"  {routeplan} --workspace {WORKSPACE} competence")
     if summary.get("rounds"):
         print("  rerun the demo with --budget 10 or --rounds 8 and compare the cost per tile;")
-        print(f"  {routeplan} --workspace {WORKSPACE} round plan --budget 25 --strategy random"
+        dry = " --dry-run" if cmds.has_option(("round", "plan"), "--dry-run") else ""
+        print(f"  {routeplan} --workspace {WORKSPACE} round plan --budget 25 --strategy random{dry}"
               "   (what does the default strategy gain?)")
     print(f"  peek at {WORK / DATA / tileworks.PROFILES_FILE} to see how good each expert really is.")
 

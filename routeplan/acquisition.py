@@ -43,9 +43,11 @@ Strategies
 Both ``value`` and ``uncertain`` first keep a floor of exploration: every (expert, region)
 cell whose accuracy is not yet known tightly (fewer than ``tight_n`` answers with truth and
 a posterior standard deviation of at least ``tight_sd``) gets up to ``explore_min`` picks,
-handed out round-robin in a seeded order. On a cold start (no answers) every cell is loose,
-so the first round is spread over experts and regions; inside a cell the picks are spread
-over classes (below), so it is spread over classes too.
+handed out round-robin in a seeded order, spending at most ``explore_share`` of the budget
+left after the audit (so that on a small budget the floor does not crowd out the chosen
+strategy). On a cold start (no answers) every cell is loose, so the first round is spread
+over experts and regions; inside a cell the picks are spread over classes (below), so it is
+spread over classes too.
 
 Audit share
 -----------
@@ -524,7 +526,7 @@ def select_assignments(
     audit_share: float = 0.1,
     max_per_expert: int | None = None,
     explore_min: int = 2,
-    explore_share: float = 0.5,
+    explore_share: float = 0.2,
     tight_sd: float = 0.1,
     tight_n: int = 10,
     prior: tuple[float, float] = (1.0, 1.0),
@@ -549,7 +551,7 @@ def select_assignments(
         Most assignments per expert in this round.
     explore_min : int, default=2
         Floor of picks per loose (expert, region) cell and round (value, uncertain).
-    explore_share : float, default=0.5
+    explore_share : float, default=0.2
         Largest share of the budget left after the audit that the floor may spend.
     tight_sd : float, default=0.1
         A cell is tight once its posterior standard deviation is below this...
@@ -856,7 +858,8 @@ def _other_best(alpha, beta, fees, capacities, error_cost) -> NDArray[np.float64
     return out
 
 
-def _spread(k: int, sizes: NDArray[np.int64], rng: np.random.Generator) -> tuple[NDArray[np.int64], NDArray[np.float64]]:
+def _spread(k: int, sizes: NDArray[np.int64],
+            rng: np.random.Generator) -> tuple[NDArray[np.int64], NDArray[np.float64]]:
     """Spread ``k`` picks over strata of ``sizes``: one each, the rest by largest remainders.
 
     Returns the picks per stratum and the factor by which a stratum was itself chosen

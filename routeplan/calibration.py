@@ -24,9 +24,11 @@ from scipy.special import expit, log_softmax
 
 __all__ = [
     "apply_platt",
+    "apply_stack",
     "apply_temperature",
     "expected_calibration_error",
     "fit_platt",
+    "fit_stack",
     "fit_temperature",
 ]
 
@@ -167,3 +169,73 @@ def apply_platt(logits: ArrayLike, a: ArrayLike, b: ArrayLike) -> np.ndarray:
     """Probabilities ``sigmoid(a z + b)``; ``a`` and ``b`` broadcast (e.g. one per column)."""
     a_arr, b_arr = np.asarray(a, dtype=np.float64), np.asarray(b, dtype=np.float64)
     return expit(a_arr * np.asarray(logits, dtype=np.float64) + b_arr)
+
+
+def fit_stack(
+    logits: ArrayLike,
+    outcomes: ArrayLike,
+    sample_weight: ArrayLike | None = None,
+    *,
+    min_count: int = 20,
+    l2: float = 1e-3,
+) -> np.ndarray:
+    """Combine several logits of one probability by a logistic regression on validation.
+
+    ``P(outcome = 1) = sigmoid(sum_p a_p z_p + b)``, fitted by weighted log-loss with
+    coefficients ``a_p`` kept in [0, 100] (each input is an estimate of the same
+    probability, so none should count against it) and a small ridge ``l2`` on them.
+    With one column this is Platt scaling; with several it is stacking (Wolpert,
+    "Stacked generalization", Neural Networks 5(2), 1992) with a logistic combiner.
+
+    Parameters
+    ----------
+    logits : array-like of shape (n, p)
+    outcomes : array-like of shape (n,)
+        0/1 outcomes (or soft targets in [0, 1]).
+    sample_weight : array-like of shape (n,), optional
+    min_count : int, default=20
+        With fewer cases or a single outcome value, return ``(1, 0, .., 0)``: the first
+        column alone, unchanged.
+    l2 : float, default=1e-3
+
+    Returns
+    -------
+    ndarray of shape (p + 1,)
+        ``a_1 .. a_p, b``.
+    """
+    Z = np.asarray(logits, dtype=np.float64)
+    if Z.ndim == 1:
+        Z = Z[:, None]
+    t = np.asarray(outcomes, dtype=np.float64).reshape(-1)
+    w = np.ones_like(t) if sample_weight is None else np.asarray(sample_weight, np.float64)
+    if Z.shape[0] != t.shape[0] or w.shape != t.shape:
+        raise ValueError("logits, outcomes and sample_weight must have the same length")
+    if np.any((t < 0) | (t > 1)) or np.any(~np.isfinite(w)) or np.any(w < 0):
+        raise ValueError("outcomes must lie in [0, 1] and weights be finite and >= 0")
+    p = Z.shape[1]
+    identity = np.zeros(p + 1)
+    identity[0] = 1.0
+    if t.size < min_count or np.ptp(t) == 0 or w.sum() <= 0:
+        return identity
+    w = w / w.mean()
+    X1 = np.hstack([Z, np.ones((Z.shape[0], 1))])
+
+    def loss(theta: np.ndarray) -> tuple[float, np.ndarray]:
+        s = X1 @ theta
+        ll = t * np.logaddexp(0.0, -s) + (1.0 - t) * np.logaddexp(0.0, s)
+        grad = X1.T @ (w * (expit(s) - t)) / t.size
+        pen = np.r_[theta[:p], 0.0]
+        return float((w * ll).mean() + l2 * (pen @ pen)), grad + 2 * l2 * pen
+
+    res = minimize(loss, x0=identity, jac=True, method="L-BFGS-B",
+                   bounds=[(0.0, 100.0)] * p + [(-50.0, 50.0)])
+    return res.x
+
+
+def apply_stack(logits: ArrayLike, coef: ArrayLike) -> np.ndarray:
+    """Probabilities ``sigmoid(logits @ coef[:-1] + coef[-1])``; logits (n, p)."""
+    Z = np.asarray(logits, dtype=np.float64)
+    c = np.asarray(coef, dtype=np.float64)
+    if Z.ndim == 1:
+        Z = Z[:, None]
+    return expit(Z @ c[:-1] + c[-1])

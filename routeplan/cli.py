@@ -429,6 +429,67 @@ def route(app, policy_path, cases_path, out_path, exact, id_column, chunk_size, 
         app.console.print(result)
 
 
+# --------------------------------------------------------------------------- rehearse
+
+
+@cli.command()
+@click.option("--rounds", "n_rounds", type=click.IntRange(1, 50), default=6, show_default=True, help="Rounds per strategy.")
+@click.option("--budget", "budget_per_round", type=click.FloatRange(min=0, min_open=True), default=10.0, show_default=True,
+              help="Budget per round, in fee units.")
+@click.option("--cases", "n_pool", type=click.IntRange(100, 200_000), default=3000, show_default=True,
+              help="Cases in the simulated pool (all with truth).")
+@click.option("--strategies", default="value,uncertain,random", show_default=True,
+              help="Comma-separated strategies to compare.")
+@click.option("--audit-share", type=click.FloatRange(0, 1), default=0.1, show_default=True)
+@click.option("--seed", type=int, default=0, show_default=True)
+@click.option("--plot", "plot_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
+              help="Write the curves to this PNG.")
+@json_option
+@pass_app
+def rehearse(app, n_rounds, budget_per_round, n_pool, strategies, audit_share, seed, plot_path, as_json):
+    """Rehearse a budget on a simulated scenario before spending money.
+
+    Plays the rounds for each strategy on a synthetic pool with known competence (three
+    experts of different fees and regional strengths), fits a router after each round, and
+    shows how the exact system cost falls with the fees spent. Needs no workspace.
+
+    Example:
+
+    \b
+        routeplan rehearse --rounds 6 --budget 10 --plot rehearsal.png
+    """
+    from .errors import InputError
+    from .rehearse import STRATEGIES, budget_to_reach
+    from .rehearse import rehearse as run
+
+    chosen = [s.strip() for s in strategies.split(",") if s.strip()]
+    unknown = [s for s in chosen if s not in STRATEGIES]
+    if unknown or not chosen:
+        raise InputError(f"--strategies: unknown strategy {unknown[0] if unknown else ''!r}; choose from {', '.join(STRATEGIES)}")
+    from rich.progress import Progress
+
+    with Progress(console=app.console, disable=app.quiet or as_json, transient=True) as bar:
+        task = bar.add_task("rehearsing", total=len(chosen) * n_rounds)
+        result = run(n_pool=n_pool, strategies=chosen, n_rounds=n_rounds, budget_per_round=budget_per_round,
+                     audit_share=audit_share, random_state=seed,
+                     progress=lambda text: bar.update(task, advance=1, description=text))
+    target = result.full_information_cost + 0.01
+    reach = budget_to_reach(result.curves, target)
+    if plot_path is not None:
+        from .figures import rehearsal_plot
+
+        rehearsal_plot(result.curves, plot_path, bayes_cost=result.bayes_cost,
+                       full_information_cost=result.full_information_cost)
+    if as_json:
+        app.emit_json({**result.to_dict(), "target": target, "budget_to_reach_target": reach})
+        return
+    from .report import render_rehearsal
+
+    app.console.print(render_rehearsal(result, reach, target))
+    if plot_path is not None:
+        app.say(f"Wrote the plot to {plot_path}")
+
+
 # --------------------------------------------------------------------------- competence
 
 
@@ -517,9 +578,9 @@ def round_group() -> None:
 @pass_app
 def round_plan(app, budget, strategy, seed, audit_share, max_per_expert, include_unverified, regions, due_days,
                dry_run, as_json):
-    """Choose which cases go to which expert in a new round, under a budget.
+    """Choose which cases go to which expert in a new round.
 
-    Each expert takes at most --max-per-expert cases and at most its capacity share of the
+    The fees of the round's assignments add up to at most --budget. Each expert takes at most --max-per-expert cases and at most its capacity share of the
     round's assignments (rounded up); no expert is asked twice about a case. Every
     assignment records its selection probability.
 

@@ -53,3 +53,38 @@ def competence_heatmap(frame: pd.DataFrame, level: str, path: str | Path, *, acc
     fig.savefig(path)
     plt.close(fig)
     return path
+
+
+def rehearsal_plot(curves: pd.DataFrame, path: str | Path, *, bayes_cost: float, full_information_cost: float) -> Path:
+    """System cost against cumulative spend, one line per strategy, with the two references.
+
+    Parameters
+    ----------
+    curves : pandas.DataFrame
+        :attr:`routeplan.rehearse.Rehearsal.curves`.
+    path : str or Path
+    bayes_cost, full_information_cost : float
+
+    Returns
+    -------
+    Path
+    """
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    fig, ax = plt.subplots(figsize=(6.4, 4.0), dpi=120)
+    for strategy, rows in curves.groupby("strategy", sort=False):
+        ax.plot(rows["spend"], rows["system_cost"], marker="o", label=str(strategy))
+    ax.axhline(full_information_cost, linestyle="--", color="grey", label="all answers known")
+    ax.axhline(bayes_cost, linestyle=":", color="black", label="Bayes-optimal")
+    ax.set_xlabel("cumulative fees spent")
+    ax.set_ylabel("system cost per case (exact, held-out)")
+    ax.set_title("Rehearsal: system cost against budget")
+    ax.legend(frameon=False)
+    fig.tight_layout()
+    path = Path(path)
+    fig.savefig(path)
+    plt.close(fig)
+    return path

@@ -204,3 +204,38 @@ def _ece_words(ece: dict) -> str:
         elif isinstance(value, (int, float)):
             parts.append(f"{key} {value:.3f}")
     return "; ".join(parts) or "not available"
+
+
+def render_rehearsal(result, reach: dict, target: float) -> Group:
+    """Render a :class:`routeplan.rehearse.Rehearsal`: cost per round and strategy.
+
+    Parameters
+    ----------
+    result : Rehearsal
+    reach : dict of str to float
+        Spend at which each strategy first reached ``target``.
+    target : float
+
+    Returns
+    -------
+    rich.console.Group
+    """
+    curves = result.curves
+    strategies = list(dict.fromkeys(curves["strategy"]))
+    table = Table(title="Exact system cost per case on held-out cases, after each round", title_justify="left",
+                  box=box.SIMPLE_HEAD, pad_edge=False)
+    table.add_column("round", justify="right")
+    table.add_column("spend", justify="right")
+    for s in strategies:
+        table.add_column(s, justify="right")
+    for round_no, rows in curves.groupby("round"):
+        by = dict(zip(rows["strategy"], rows["system_cost"]))
+        table.add_row(str(round_no), f"{rows['spend'].max():.1f}", *[f"{by.get(s, float('nan')):.3f}" for s in strategies])
+    text = Text()
+    text.append(f"Bayes-optimal cost {result.bayes_cost:.3f}; same router with every answer known "
+                f"{result.full_information_cost:.3f} (those answers would cost {result.full_information_spend:.0f}).\n")
+    for s in strategies:
+        spent = reach.get(s, float("inf"))
+        text.append(f"{s}: within 0.01 of the all-answers cost ({target:.3f}) "
+                    + (f"after spending {spent:.1f}\n" if spent != float("inf") else "not reached in these rounds\n"))
+    return Group(table, text)

@@ -99,7 +99,8 @@ class RoundPlan:
         for name in ("expert", "cases", "audit", "spend", "expected gain"):
             table.add_column(name, justify="left" if name == "expert" else "right", overflow="fold")
         for e in self.experts:
-            table.add_row(e["expert"], str(e["cases"]), str(e["audit"]), f"{e['spend']:.4g}", f"{e['expected_gain']:.4g}")
+            table.add_row(e["expert"], str(e["cases"]), str(e["audit"]), f"{e['spend']:.4g}",
+                          f"{e['expected_gain']:.4g}")
         parts: list = [head, table]
         parts.append(Text("expected gain: expected drop of the summed decision cost over the workspace's "
                           "cases, in fee units, once these answers are in", style="dim"))
@@ -288,12 +289,12 @@ def _plan_result(sel: Selection, experts: list[dict], strategy, seed, budget, au
             "capacity": float(e["capacity"]),
             "cases": int(mine.sum()),
             "audit": int((mine & sel.audit).sum()),
-            "spend": round(float(sel.spend[j]), 12),
+            "spend": round(float(sel.spend[j]), 9),
             "expected_gain": round(float(sel.gain[j]), 12),
         })
     return RoundPlan(
-        round=None, strategy=strategy, seed=seed, budget=budget, spend=round(float(sel.spend.sum()), 12),
-        audit_share=audit_share, audit_spend=round(sel.audit_spend, 12), assignments=int(sel.case.size),
+        round=None, strategy=strategy, seed=seed, budget=budget, spend=round(float(sel.spend.sum()), 9),
+        audit_share=audit_share, audit_spend=round(sel.audit_spend, 9), assignments=int(sel.case.size),
         experts=rows, due_at=due_at, notes=list(sel.notes),
     )
 
@@ -302,7 +303,8 @@ def _check_something_fits(pool: Pool, experts: list[dict], budget: float) -> Non
     """Refuse a plan that cannot hold a single assignment, saying why."""
     open_experts = pool.capacities > 0
     if not open_experts.any():
-        raise InputError("every expert has capacity 0; raise one with 'routeplan experts add NAME --fee F --capacity C'")
+        raise InputError("every expert has capacity 0; raise one with "
+                         "'routeplan experts add NAME --fee F --capacity C'")
     usable = pool.eligible[:, open_experts].any(axis=0)
     if not usable.any():
         raise InputError("no eligible (case, expert) pair: every candidate case was already asked of every expert "

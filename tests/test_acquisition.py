@@ -268,7 +268,7 @@ def test_cold_start_spreads_over_experts_regions_and_classes():
     # Cold start (no answers): the exploration floor gives every (expert, region) cell picks,
     # and picks inside a cell cover every class present (common practice: stratified first round).
     pool = make_pool(fees=(0.05, 0.05, 0.05), capacities=(1.0, 1.0, 1.0))
-    sel = select_assignments(pool, budget=6, audit_share=0.0, random_state=0)
+    sel = select_assignments(pool, budget=8, audit_share=0.0, random_state=0)
     assert (sel.cell_picks >= 2).all()
     for j in range(3):
         for r in range(pool.n_regions):
@@ -284,8 +284,21 @@ def test_exploration_floor_stops_when_cell_is_tight():
     answered[1, 1] = 0.0
     correct = answered * 0.8
     pool = make_pool(fees=(0.1, 0.1), capacities=(1.0, 1.0), n_regions=2, answered=answered, correct=correct)
-    sel = select_assignments(pool, budget=0.2, audit_share=0.0, explore_min=2, random_state=0)
+    sel = select_assignments(pool, budget=0.2, audit_share=0.0, explore_min=2, explore_share=1.0, random_state=0)
     assert sel.cell_picks[1, 1] == 2 and sel.cell_picks.sum() == 2
+
+
+def test_exploration_floor_spends_at_most_its_share():
+    # The floor may spend at most explore_share of the budget left after the audit (documented rule).
+    # Expert 1 costs more than an error, so its KG is 0 (Frazier, Powell & Dayanik 2008) and only the
+    # floor sends it cases: its 4 loose cells want 2 picks each (8 x 1.5 = 12); a share of 0.2 of 15
+    # allows 3, i.e. 2 picks; a share of 1 allows all 8.
+    answered = np.array([[50.0] * 4, [0.0] * 4])
+    pool = make_pool(fees=(0.1, 1.5), capacities=(1.0, 1.0), answered=answered, correct=answered * 0.8)
+    capped = select_assignments(pool, budget=15, audit_share=0.0, explore_share=0.2, random_state=1)
+    full = select_assignments(pool, budget=15, audit_share=0.0, explore_share=1.0, random_state=1)
+    assert (capped.expert == 1).sum() == 2
+    assert (full.expert == 1).sum() == 8
 
 
 def test_value_avoids_expert_that_cannot_change_decisions():
@@ -311,6 +324,31 @@ def test_value_targets_region_where_model_is_unsure():
                 pending=np.zeros((1, 2)), model_cost=model_cost, population_region=region)
     sel = select_assignments(pool, budget=5, audit_share=0.0, random_state=0)
     assert sel.cell_picks[0, 1] > 0 and sel.cell_picks[0, 0] == 0
+
+
+def test_uncertain_prefers_widest_accuracy_estimate():
+    # Uncertainty sampling (Lewis & Gale, SIGIR 1994) at the cell level: the Beta variance
+    # ab / ((a+b)^2 (a+b+1)) is largest for the cell with no answers, so it gets the picks.
+    answered = np.array([[200.0, 0.0]])
+    pool = make_pool(fees=(0.1,), capacities=(1.0,), n_regions=2, answered=answered, correct=answered * 0.7)
+    sel = select_assignments(pool, budget=1.0, audit_share=0.0, strategy="uncertain", explore_share=0.0,
+                             random_state=0)
+    assert sel.cell_picks[0, 1] == 10 and sel.cell_picks[0, 0] == 0
+
+
+def test_random_is_uniform_over_eligible_pairs():
+    # Uniform over pairs: each expert's share of the picks follows its eligible pairs, so the
+    # inclusion ratio picks / eligible is the same for every expert up to one pick (definition).
+    pool = make_pool(n=1200, fees=(0.1, 0.1, 0.1), capacities=(1.0, 1.0, 1.0))
+    keep = np.random.default_rng(4).random(pool.eligible.shape) < np.array([0.9, 0.5, 0.2])
+    pool = with_(pool, eligible=keep)
+    sel = select_assignments(pool, budget=30, audit_share=0.0, strategy="random", random_state=0)
+    e = keep.sum(axis=0)
+    k = np.bincount(sel.expert, minlength=3)
+    assert k.sum() == 300
+    ratio = k / e
+    assert np.all(np.abs(ratio - k.sum() / e.sum()) <= 1.0 / e)
+    assert np.allclose(sel.selection_prob, ratio[sel.expert])
 
 
 # --------------------------------------------------------------------------- unbiasedness

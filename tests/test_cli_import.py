@@ -106,6 +106,29 @@ def test_answers_import_counts_historical_answers_in_the_message(stocked_ws, wri
                          ("c2", "bob", "refer", None, None)]
 
 
+def test_answers_to_a_round_are_linked_and_the_rest_counted_as_historical(stocked_ws, write_file):
+    planned = run_cli(stocked_ws, "round", "plan", "--budget", "1", "--strategy", "random", "--seed", "0",
+                      "--include-unverified")
+    assert planned.exit_code == 0, planned.stderr
+    stored = set(query(stocked_ws, "SELECT case_id, expert FROM answers"))
+    asked = [(c, e, a, r) for c, e, a, r in query(
+        stocked_ws, "SELECT case_id, expert, assignment_id, round_id FROM assignments ORDER BY assignment_id")
+        if (c, e) not in stored]
+    assert asked, "the plan asked nothing new"
+    unasked = next((c, e) for c in ("c1", "c2", "c3", "c4", "c5", "c6") for e in ("alice", "bob")
+                   if (c, e) not in stored and (c, e) not in {(a[0], a[1]) for a in asked})
+    rows = [(c, e) for c, e, _, _ in asked] + [unasked]
+    path = write_file("answers.csv", "case_id,expert,answer\n" + "".join(f"{c},{e},reject\n" for c, e in rows))
+    result = run_cli(stocked_ws, "answers", "import", path)
+    assert result.exit_code == 0, result.stderr
+    assert f"{len(rows)} answer(s) added" in result.stdout
+    assert "historical: 1" in result.stdout and f"linked to assignments: {len(asked)}" in result.stdout
+    linked = query(stocked_ws, "SELECT case_id, expert, assignment_id, round_id FROM answers WHERE assignment_id IS NOT NULL")
+    assert sorted(linked) == sorted(asked)
+    states = dict(query(stocked_ws, "SELECT assignment_id, state FROM assignments"))
+    assert all(states[a] == "answered" for _, _, a, _ in asked)
+
+
 def test_answers_import_of_several_files_is_all_or_nothing(stocked_ws, write_file):
     good = write_file("good.csv", "case_id,expert,answer\nc2,alice,reject\n")
     bad = write_file("bad.csv", "case_id,expert,answer\nc4,bob,maybe\n")

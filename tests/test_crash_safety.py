@@ -76,6 +76,7 @@ def test_sigkill_during_import_leaves_all_or_nothing(large_cases_csv, template_d
     rng = np.random.default_rng(20240612)
     ws = copy_workspace(template_dirs["empty"], tmp_path / "killed")
     outcomes = []
+    mid_write = 0  # kills that hit a child with uncommitted pages in the write-ahead log
     for k in range(N_KILLS):
         base = _wal_size(ws)
         proc = _start(ws, large_cases_csv)
@@ -86,17 +87,20 @@ def test_sigkill_during_import_leaves_all_or_nothing(large_cases_csv, template_d
             while proc.poll() is None and _wal_size(ws) <= base and time.perf_counter() < deadline:
                 time.sleep(0.002)
             time.sleep(rng.uniform(0.0, 1.0) * write_s)
+        alive, wal_at_kill = proc.poll() is None, _wal_size(ws)
         proc.send_signal(signal.SIGKILL)
         proc.wait()
-        integrity, n_cases, n_logged = _state(ws)
+        integrity, n_cases, n_logged = _state(ws)  # reading also recovers the WAL, and removes it on close
         assert integrity == "ok", (k, integrity)
         assert n_cases in (0, N_CASES), (k, n_cases)
         assert n_logged == (1 if n_cases == N_CASES else 0), (k, n_cases, n_logged)
         outcomes.append(n_cases)
+        mid_write += alive and wal_at_kill > 0 and n_cases == 0
         if n_cases == N_CASES:  # wholly in: carry on with a fresh workspace
             ws = copy_workspace(template_dirs["empty"], tmp_path / f"killed_{k}")
-    print(f"kills: {N_KILLS}; wholly in: {outcomes.count(N_CASES)}; wholly out: {outcomes.count(0)}; "
-          f"full import {full_s:.2f} s (writing {write_s:.2f} s)")
+    print(f"kills: {N_KILLS}; wholly in: {outcomes.count(N_CASES)}; wholly out: {outcomes.count(0)} "
+          f"({mid_write} inside the write); full import {full_s:.2f} s (writing {write_s:.2f} s)")
+    assert mid_write >= 1, "no kill landed inside the write transaction"
 
     # the workspace that took the last kill still works: the import goes through
     done = subprocess.run(

@@ -133,7 +133,7 @@ def _as_table(columns: list[str], rows: list[dict]) -> Table:
 
 
 @pytest.mark.parametrize("name", ROW_SCHEMAS)
-@settings(max_examples=100, deadline=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.filter_too_much])
+@settings(max_examples=100, deadline=None, derandomize=True, suppress_health_check=[HealthCheck.too_slow, HealthCheck.filter_too_much])
 @given(data=st.data())
 def test_check_rows_agrees_with_jsonschema(name, data):
     schema = load_schema(name)

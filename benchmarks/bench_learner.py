@@ -1,0 +1,169 @@
+"""Benchmarks of the routers (routeplan.learner).
+
+Run:  .venv/bin/python benchmarks/bench_learner.py [--quick]
+
+1. Fit time on 100,000 x 32 (K = 10 classes, M = 5 experts, all answers known, 10 epochs)
+   against scikit-learn's LogisticRegression (lbfgs) on the same matrix (goal: at most 3x)
+   and MLPClassifier with the same hidden sizes and epochs (goal: faster).
+2. Scoring 1,000,000 cases in a fresh subprocess (goal: < 5 s, peak memory < 1.5 GB,
+   measured with resource.getrusage ru_maxrss).
+3. Gap to the Bayes-optimal cost on the synthetic scenario with all answers (20,000 cases).
+4. Plug-in vs softmax surrogate vs one-vs-all on digits (Mozannar & Sontag's expert).
+
+Wall-clock figures depend on the machine's load; CPU seconds are printed beside them.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import subprocess
+import sys
+import tempfile
+import textwrap
+import time
+import warnings
+
+import numpy as np
+
+from routeplan import costs, simulate
+from routeplan.learner import PluginRouter, SurrogateRouter
+
+
+def _timed(fn):
+    """Run fn(); return (result, wall seconds, CPU seconds)."""
+    w, c = time.perf_counter(), time.process_time()
+    out = fn()
+    return out, time.perf_counter() - w, time.process_time() - c
+
+
+def bench_fit(n: int) -> None:
+    """Fit time against scikit-learn on the same matrix."""
+    from sklearn.exceptions import ConvergenceWarning
+    from sklearn.linear_model import LogisticRegression
+    from sklearn.neural_network import MLPClassifier
+
+    sc = simulate.make_scenario(n, n_features=32, n_classes=10, n_experts=5, random_state=0)
+    X, y, A = sc.X, sc.y, sc.answers(1)
+    print(f"\n[1] fit on {n:,} x 32, K=10, M=5, 10 epochs (all answers known)")
+    epochs = {"max_epochs": 10, "patience": 10**6, "random_state": 0}
+    rows = []
+    for name, make in [("PluginRouter (classifier + correctness nets)", lambda: PluginRouter(**epochs)),
+                       ("SurrogateRouter softmax (correctness + scorer)", lambda: SurrogateRouter(**epochs)),
+                       ("PluginRouter linear", lambda: PluginRouter(head="linear", **epochs))]:
+        _, wall, cpu = _timed(lambda: make().fit(X, y, A, fees=sc.fees))
+        rows.append((name, wall, cpu))
+    threads = min(2, os.cpu_count() or 1)
+    lr = LogisticRegression(solver="lbfgs", max_iter=1000)
+    _, lr_wall, lr_cpu = _timed(lambda: lr.fit(X, y))
+    mlp = MLPClassifier(hidden_layer_sizes=(64, 64), max_iter=10, batch_size=256,
+                        early_stopping=False, random_state=0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        _, mlp_wall, mlp_cpu = _timed(lambda: mlp.fit(X, y))
+    print(f"  {'LogisticRegression(lbfgs)':48s} wall {lr_wall:6.2f} s  cpu {lr_cpu:6.2f} s "
+          f"({lr.n_iter_[0]} iterations, up to {threads} BLAS threads)")
+    print(f"  {'MLPClassifier(64, 64), 10 epochs, batch 256':48s} wall {mlp_wall:6.2f} s  cpu {mlp_cpu:6.2f} s")
+    for name, wall, cpu in rows:
+        print(f"  {name:48s} wall {wall:6.2f} s  cpu {cpu:6.2f} s  "
+              f"x LogReg {wall / lr_wall:4.2f} (goal <= 3)  x MLPClassifier {wall / mlp_wall:4.2f} (goal < 1)")
+
+
+_SCORER = textwrap.dedent("""
+    import resource, sys, time, json
+    import numpy as np
+    from routeplan.learner import router_from_arrays
+    data = np.load(sys.argv[1], allow_pickle=False)
+    meta = json.loads(open(sys.argv[2]).read())
+    router = router_from_arrays({k: data[k] for k in data.files}, meta)
+    rng = np.random.default_rng(0)
+    X = rng.standard_normal((1_000_000, 32), dtype=np.float32)
+    before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    t0 = time.perf_counter(); c0 = time.process_time()
+    ec = router.predict_costs(X)
+    routes = np.argmin(ec, axis=1)
+    wall, cpu = time.perf_counter() - t0, time.process_time() - c0
+    t1 = time.perf_counter(); r2 = router.predict_route(X); wall_route = time.perf_counter() - t1
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    print(json.dumps({"wall": wall, "cpu": cpu, "wall_route": wall_route,
+                      "rss_before_mb": before / 1024, "peak_mb": peak / 1024,
+                      "same": bool((routes == r2).all())}))
+""")
+
+
+def bench_score() -> None:
+    """Score 1,000,000 cases in a subprocess; time and peak memory."""
+    import json
+
+    sc = simulate.make_scenario(5_000, n_features=32, n_classes=10, n_experts=5, random_state=0)
+    router = PluginRouter(max_epochs=3, random_state=0).fit(sc.X, sc.y, sc.answers(1), fees=sc.fees)
+    arrays, meta = router.get_arrays()
+    with tempfile.TemporaryDirectory() as tmp:
+        npz, js = os.path.join(tmp, "w.npz"), os.path.join(tmp, "m.json")
+        np.savez(npz, **arrays)
+        with open(js, "w") as fh:
+            json.dump(meta, fh)
+        out = subprocess.run([sys.executable, "-c", _SCORER, npz, js], check=True,
+                             capture_output=True, text=True)
+    r = json.loads(out.stdout.strip().splitlines()[-1])
+    print("\n[2] scoring 1,000,000 x 32 (PluginRouter MLP 64x64, K=10, M=5), fresh process")
+    print(f"  predict_costs + argmin: wall {r['wall']:.2f} s (goal < 5), cpu {r['cpu']:.2f} s; "
+          f"predict_route alone: {r['wall_route']:.2f} s")
+    print(f"  peak RSS {r['peak_mb']:.0f} MB (goal < 1536); before scoring {r['rss_before_mb']:.0f} MB "
+          f"(interpreter, torch and the 128 MB input)")
+
+
+def bench_bayes(n_train: int) -> None:
+    """Gap to the exact Bayes-optimal cost on the synthetic scenario."""
+    sc = simulate.make_scenario(n_train + 10_000, random_state=0)
+    A = sc.answers(1)
+    tr, te = np.arange(n_train), np.arange(n_train, n_train + 10_000)
+    ec = costs.expected_cost_vectors(sc.proba[te], sc.correct_proba[te],
+                                     cost_matrix=costs.error_cost_matrix(sc.n_classes), fees=sc.fees)
+    bayes = ec.min(axis=1).mean()
+    print(f"\n[3] synthetic scenario (8 features, K=5, M=3), {n_train:,} training cases, all answers; "
+          f"exact expected cost on 10,000 held-out cases; Bayes-optimal {bayes:.4f}")
+    for name, make in [("plugin", lambda: PluginRouter(random_state=0)),
+                       ("softmax", lambda: SurrogateRouter(random_state=0)),
+                       ("ova", lambda: SurrogateRouter(loss="ova", random_state=0))]:
+        router, wall, cpu = _timed(lambda: make().fit(sc.X[tr], sc.y[tr], A[tr], fees=sc.fees))
+        cost = ec[np.arange(len(te)), router.predict_route(sc.X[te])].mean()
+        print(f"  {name:8s} cost {cost:.4f}  gap {cost - bayes:+.4f}  (fit wall {wall:.1f} s, cpu {cpu:.1f} s)")
+
+
+def bench_digits() -> None:
+    """Plug-in vs the two surrogates on digits with the simulated expert."""
+    from sklearn.model_selection import train_test_split
+
+    print("\n[4] digits, expert right on classes < k and uniform otherwise (Mozannar & Sontag 2020);"
+          "\n    expected cost on a 30% held-out split (the expert's draws averaged out)")
+    for k in (2, 5, 8):
+        d = simulate.digits_scenario(k, random_state=0)
+        tr, te = train_test_split(np.arange(len(d.y)), test_size=0.3, random_state=0, stratify=d.y)
+        exp_expert = np.where(d.y[te] < k, 0.0, 0.9)
+        line = [f"  k={k}:"]
+        for name, make in [("plugin", lambda: PluginRouter(random_state=0)),
+                           ("softmax", lambda: SurrogateRouter(random_state=0)),
+                           ("ova", lambda: SurrogateRouter(loss="ova", random_state=0))]:
+            r = make().fit(d.X[tr], d.y[tr], d.answers[tr], fees=np.zeros(1))
+            routes = r.predict_route(d.X[te])
+            cost = np.where(routes < 10, routes != d.y[te], exp_expert).mean()
+            line.append(f"{name} {cost:.4f} (defers {np.mean(routes >= 10):.2f})")
+            if name == "plugin":
+                model = float((r.predict_proba(d.X[te]).argmax(1) != d.y[te]).mean())
+        line.append(f"| model alone {model:.4f}, expert alone {exp_expert.mean():.4f}")
+        print(" ".join(line))
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--quick", action="store_true", help="smaller fit benchmark (20,000 cases)")
+    args = parser.parse_args()
+    bench_fit(20_000 if args.quick else 100_000)
+    bench_score()
+    bench_bayes(20_000)
+    bench_digits()
+
+
+if __name__ == "__main__":
+    main()
