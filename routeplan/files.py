@@ -30,6 +30,7 @@ from .errors import InputError
 
 __all__ = [
     "Table",
+    "undo_neutralise",
     "read_table",
     "load_schema",
     "check_rows",
@@ -83,6 +84,15 @@ class Table:
         """Build the :class:`InputError` for a record (or for the whole file)."""
         line = None if position is None else self.line_of(position)
         return InputError(message, source=self.source, line=line)
+
+    def take(self, positions: np.ndarray, columns: list[str] | None = None) -> "Table":
+        """The records at ``positions`` (and only ``columns``), keeping their line numbers."""
+        positions = np.asarray(positions, dtype=np.int64)
+        columns = list(self.frame.columns) if columns is None else columns
+        lines = np.array([self.line_of(p) for p in positions], dtype=np.int64)
+        pick = lambda d: {k: v[positions] for k, v in d.items() if k in columns}  # noqa: E731
+        frame = self.frame.iloc[positions][columns].reset_index(drop=True)
+        return Table(frame, self.source, self.sha256, self.is_text, pick(self.numeric), pick(self.empty), lines)
 
     def renamed(self, mapping: dict[str, str]) -> "Table":
         """The same table with columns renamed."""
@@ -517,6 +527,13 @@ def neutralise_formula(value: Any) -> Any:
     """
     if isinstance(value, str) and value.startswith(_FORMULA_LEAD):
         return "'" + value
+    return value
+
+
+def undo_neutralise(value: Any) -> Any:
+    """Remove the apostrophe that :func:`neutralise_formula` put before a formula-looking cell."""
+    if isinstance(value, str) and len(value) > 1 and value[0] == "'" and value[1] in "=+-@\t\r":
+        return value[1:]
     return value
 
 

@@ -19,7 +19,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import InputError
-from .files import Table, check_rows, load_schema, read_table
+from .files import Table, check_rows, load_schema, read_table, undo_neutralise
 from .workspace import Workspace
 
 __all__ = [
@@ -423,7 +423,31 @@ def import_answers(ws: Workspace, paths: Sequence[str | Path], *, strict: bool =
     return [result for result, _, _ in plans]
 
 
+def _sheet_as_answers(ws: Workspace, table: Table) -> tuple[Table, int]:
+    """Accept a filled sheet from ``round export``: drop its display columns and blank answers.
+
+    Columns that the workspace knows as feature or display columns are dropped; rows with an
+    empty answer (not answered yet) are skipped; the apostrophe that export puts before
+    formula-looking cells is removed. Returns the table and the number of blank rows.
+    """
+    frame = table.frame
+    known = set(ws.feature_columns) | set(ws.display_column_names())
+    keep = [c for c in frame.columns if c not in known or c in ("case_id", "expert", "answer")]
+    blank = table.empty["answer"] if "answer" in table.empty else np.zeros(len(frame), dtype=bool)
+    if len(keep) < len(frame.columns) or blank.any():
+        table = table.take(np.flatnonzero(~blank), keep)
+    for column in ("case_id", "answer"):
+        if column in table.frame.columns:
+            table.frame[column] = table.frame[column].map(undo_neutralise)
+    return table, int(blank.sum())
+
+
 def _plan_answers(ws, table, labels, experts, claimed, strict, result) -> list[tuple]:
+    blank = 0
+    if "answer" in table.frame.columns:
+        table, blank = _sheet_as_answers(ws, table)
+        if len(table.frame) == 0:
+            raise table.fail("every answer cell is empty; fill in the answer column first")
     check_rows(table, load_schema("answers-row"))
     frame = table.frame
     _check_known(table, "expert", experts, "expert", "add it with 'routeplan experts add NAME --fee F'")
@@ -461,5 +485,5 @@ def _plan_answers(ws, table, labels, experts, claimed, strict, result) -> list[t
     result.rows = len(frame)
     result.added = len(rows)
     result.notes = {"historical": historical, "linked_to_assignments": len(rows) - historical,
-                    "repeated_rows": len(frame) - len(unique)}
+                    "repeated_rows": len(frame) - len(unique), "left_blank": blank}
     return rows

@@ -34,7 +34,7 @@ def render_status(info: dict) -> Group:
                 f"models: {info['models']}; policies: {info['policies']}")
     parts: list = [head]
     if info["experts"]:
-        table = Table(title="Experts", title_justify="left", expand=False)
+        table = Table(title="Experts", title_justify="left", expand=False, box=box.SIMPLE_HEAD, pad_edge=False)
         for name, justify in (("expert", "left"), ("fee", "right"), ("capacity", "right"),
                               ("answers", "right"), ("historical", "right"), ("spent", "right")):
             table.add_column(name, justify=justify, overflow="fold")
@@ -45,12 +45,13 @@ def render_status(info: dict) -> Group:
     else:
         parts.append(Text("No experts yet: routeplan experts add NAME --fee F"))
     if info["rounds"]:
-        table = Table(title="Rounds", title_justify="left")
-        for name in ("round", "strategy", "budget", "state", "assigned", "answered", "open"):
-            table.add_column(name, justify="left" if name in ("strategy", "state") else "right")
+        table = Table(title="Rounds", title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False, collapse_padding=True)
+        for name in ("round", "strategy", "budget", "spent", "state", "asked", "answered", "open", "overdue", "expired"):
+            table.add_column(name, justify="left" if name in ("strategy", "state") else "right", overflow="fold")
         for r in info["rounds"]:
-            table.add_row(str(r["round"]), r["strategy"], f"{r['budget']:g}", r["state"],
-                          str(r["assignments"]), str(r["answered"]), str(r["open"]))
+            table.add_row(str(r["round"]), r["strategy"], f"{r['budget']:g}", f"{r['spent']:g}", r["state"],
+                          str(r["assignments"]), str(r["answered"]), str(r["open"]), str(r["overdue"]),
+                          str(r["expired"]), style="bold red" if r["overdue"] else None)
         parts.append(table)
     return Group(*parts)
 

@@ -544,23 +544,23 @@ class Workspace:
                     "spent": float(spent.get(name, 0.0) or 0.0),
                 }
             )
-        rounds = [
-            {
-                "round": r[0],
-                "created_at": r[1],
-                "strategy": r[2],
-                "budget": r[3],
-                "state": r[4],
-                "assignments": r[5],
-                "answered": r[6],
-                "open": r[5] - r[6],
-            }
-            for r in q(
-                "SELECT r.round_id, r.created_at, r.strategy, r.budget, r.state, COUNT(a.assignment_id), "
-                "COALESCE(SUM(a.state = 'answered'), 0) FROM rounds r LEFT JOIN assignments a "
-                "ON a.round_id = r.round_id GROUP BY r.round_id ORDER BY r.round_id"
-            )
-        ]
+        now = _now()
+        rounds = []
+        for r in q(
+            "SELECT r.round_id, r.created_at, r.strategy, r.budget, r.state, r.due_at, COUNT(a.assignment_id), "
+            "COALESCE(SUM(a.state = 'answered'), 0), COALESCE(SUM(a.fee), 0) FROM rounds r LEFT JOIN assignments a "
+            "ON a.round_id = r.round_id GROUP BY r.round_id ORDER BY r.round_id"
+        ):
+            still_open = r[6] - r[7]
+            closed = r[4] != "open"
+            overdue = not closed and r[5] is not None and r[5] < now
+            rounds.append({
+                "round": r[0], "created_at": r[1], "strategy": r[2], "budget": r[3], "state": r[4],
+                "due_at": r[5], "assignments": r[6], "answered": r[7], "spent": float(r[8]),
+                "open": 0 if closed else still_open,
+                "overdue": still_open if overdue else 0,
+                "expired": still_open if closed else 0,
+            })
         return {
             "workspace": str(self.folder.resolve()),
             "schema_version": self.schema_version,
