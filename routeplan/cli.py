@@ -440,8 +440,9 @@ def route(app, policy_path, cases_path, out_path, exact, id_column, chunk_size, 
               help="Cases in the simulated pool (all with truth).")
 @click.option("--strategies", default="value,uncertain,random", show_default=True,
               help="Comma-separated strategies to compare.")
-@click.option("--audit-share", type=click.FloatRange(0, 1), default=0.1, show_default=True)
-@click.option("--seed", type=int, default=0, show_default=True)
+@click.option("--audit-share", type=click.FloatRange(0, 1), default=0.1, show_default=True,
+              help="Share of each round's budget spent uniformly at random.")
+@click.option("--seed", type=int, default=0, show_default=True, help="Seeds the scenario, the rounds and the routers.")
 @click.option("--plot", "plot_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
               help="Write the curves to this PNG.")
 @json_option

@@ -289,6 +289,8 @@ BAD_FILES = [
     ("truth-not-utf8", "truth", "stocked", b"case_id,truth\nc2,accept\nc4,\x80\n", ["UTF-8"], 3),
     ("experts-not-utf8", "experts", "stocked", b"name,fee\nZo\xeb,1\n", ["UTF-8"], 2),
     ("answers-not-utf8", "answers", "stocked", b"case_id,expert,answer\nc2,al\xc3ice,accept\n", ["UTF-8"], 2),
+    ("answers-not-utf8-ragged", "answers", "stocked", b"case_id,expert,answer\nc2,bob,accept\nc4,al\xffice,accept,x\n",
+     ["UTF-8"], 3),
     # NaN or infinite features (IEEE 754 special values as text)
     *[(f"cases-feature-{word}", "cases", "empty", f"case_id,f1,f2\nc1,1,2\nc2,3,{word}\n", ["'f2'", "finite"], 3)
       for word in ("nan", "NaN", "inf", "-inf", "Infinity", "1e999")],

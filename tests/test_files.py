@@ -202,6 +202,15 @@ def test_read_table_keeps_ids_as_text_and_strips_cells(tmp_path):
     assert table.line_of(1) == 3
 
 
+@pytest.mark.parametrize("eol", ["\n", "\r\n", "\r"])
+def test_read_table_accepts_every_common_line_end(tmp_path, eol):
+    # LF (Unix), CRLF (RFC 4180) and a lone CR (classic Mac OS) all end a record (common practice)
+    path = tmp_path / "t.csv"
+    path.write_bytes(eol.join(["case_id,expert,answer", "c1,ann,yes", "c2,bo,no"]).encode("utf-8"))
+    table = read_table(path, text_columns=("case_id", "expert", "answer"))
+    assert table.frame.values.tolist() == [["c1", "ann", "yes"], ["c2", "bo", "no"]]
+
+
 def test_schemas_in_package_are_the_schemas_folder():
     """The installed package ships the same schema documents as ``schemas/``."""
     for name in SCHEMA_NAMES:
