@@ -78,11 +78,10 @@ Budget, caps and capacities
 Spend is the sum of the fees of the picks; fees below ``fee_floor * error_cost`` count as
 that floor when spending (so an expert with fee 0 cannot absorb an unbounded round), while
 the fee recorded stays the real one. ``max_per_expert`` caps each expert's picks in the
-round (audit included). Capacity is read as the largest share of the round's assignments an
-expert may take: after the plan, ``n_j <= ceil(capacity_j * N)`` for every expert ``j``
-(``N`` = assignments in the round). The planner keeps that true after every pick, so it holds
-for the final plan; capacities that sum to less than 1 can leave budget unspent (a note says
-so). An expert with capacity 0 gets nothing.
+round (audit included). Capacity is read as the largest share of the round's candidate
+cases an expert may be asked about: ``n_j <= ceil(capacity_j * n_cases)`` (``n_cases`` = rows
+of the pool). It is the same share that bounds the expert's workload when routing, so a
+round never asks an expert about more cases than it could be sent. An expert with capacity 0 gets nothing.
 """
 
 from __future__ import annotations
@@ -444,32 +443,20 @@ def _kg(costs: RegionCosts, r: int, alpha: float, beta: float, qs: tuple[int, ..
 # --------------------------------------------------------------------------- budget ledger
 
 
-def _within(n: int, total: int, capacity: float) -> bool:
-    """True if ``n`` of ``total`` assignments respects the capacity share (ceil rule)."""
-    return n <= math.ceil(capacity * total - _EPS)
-
-
-def _capacity_room(n: int, total: int, capacity: float) -> int:
-    """Most further picks one expert can take alone while keeping ``n <= ceil(c * N)``."""
+def _capacity_limit(n_cases: int, capacity: float) -> int:
+    """Most picks an expert may take in a round over ``n_cases`` candidates: ``ceil(c * n_cases)``."""
     if capacity >= 1.0:
         return _BIG
-    if capacity <= 0.0 or not _within(n, total, capacity):
-        return 0
-    q = max(0, math.ceil((capacity * total - n + 1) / (1.0 - capacity)) - 1)
-    while q > 0 and not _within(n + q, total + q, capacity):
-        q -= 1
-    while _within(n + q + 1, total + q + 1, capacity):
-        q += 1
-    return q
+    return max(0, math.ceil(capacity * n_cases - _EPS))
 
 
 class _Ledger:
     """Picks per expert, picks in all, and budget left (counted with the fee floor)."""
 
     def __init__(self, fee_eff: NDArray[np.float64], capacities: NDArray[np.float64],
-                 max_per_expert: int | None, budget: float) -> None:
+                 max_per_expert: int | None, budget: float, n_cases: int) -> None:
         self.fee = fee_eff
-        self.capacity = capacities
+        self.limit = np.array([_capacity_limit(n_cases, float(c)) for c in capacities], dtype=np.int64)
         self.max_per = _BIG if max_per_expert is None else int(max_per_expert)
         self.n = np.zeros(fee_eff.size, dtype=np.int64)
         self.total = 0
@@ -480,7 +467,7 @@ class _Ledger:
         """Most picks expert ``j`` can take now (budget, cap, capacity)."""
         money = self.left if left is None else left
         afford = int(math.floor((money + self.tol) / self.fee[j])) if money + self.tol >= self.fee[j] else 0
-        cap = _capacity_room(int(self.n[j]), self.total, float(self.capacity[j]))
+        cap = int(self.limit[j] - self.n[j])
         return max(0, min(afford, cap, self.max_per - int(self.n[j])))
 
     def take(self, j: int, q: int) -> float:
@@ -583,7 +570,7 @@ def select_assignments(
     eligible = pool.eligible.copy()
     eligible[:, pool.capacities <= 0] = False
     fee_eff = np.maximum(pool.fees.astype(np.float64), fee_floor * pool.error_cost)
-    ledger = _Ledger(fee_eff, pool.capacities.astype(np.float64), max_per_expert, budget)
+    ledger = _Ledger(fee_eff, pool.capacities.astype(np.float64), max_per_expert, budget, pool.eligible.shape[0])
     notes: list[str] = []
 
     audit_budget = audit_share * budget
@@ -624,7 +611,7 @@ def _finish(pool, costs, case, expert, prob, audit, alpha, beta, ledger, budget,
 
 def _cheapest_fee(ledger: _Ledger) -> float:
     """Cheapest counted fee among experts that could still take a pick (inf if none)."""
-    able = [ledger.fee[j] for j in range(ledger.fee.size) if ledger.capacity[j] > 0]
+    able = [ledger.fee[j] for j in range(ledger.fee.size) if ledger.limit[j] > ledger.n[j]]
     return float(min(able)) if able else math.inf
 
 

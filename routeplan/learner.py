@@ -233,7 +233,7 @@ def _train_loop(
     after ``patience`` epochs without improvement. Returns the per-epoch scores.
     """
     opt = torch.optim.Adam(net.parameters(), lr=settings.learning_rate,
-                           weight_decay=settings.weight_decay)
+                           weight_decay=settings.weight_decay, foreach=True)
     n = tensors[0].shape[0]
     batch_size = _effective_batch(n, settings.batch_size)
     history: list[tuple[float, float]] = []
@@ -243,10 +243,10 @@ def _train_loop(
         for _ in range(settings.max_epochs):
             net.train()
             perm = torch.randperm(n, generator=gen)
+            shuffled = [t[perm] for t in tensors]  # one gather per epoch, then slices
             for s in range(0, n, batch_size):
-                idx = perm[s:s + batch_size]
                 opt.zero_grad(set_to_none=True)
-                loss = loss_fn(net, *(t[idx] for t in tensors))
+                loss = loss_fn(net, *(t[s:s + batch_size] for t in shuffled))
                 loss.backward()
                 opt.step()
             net.eval()

@@ -163,9 +163,10 @@ def _check_constraints(pool: Pool, sel, budget: float, max_per_expert):
     for j in range(m):
         if max_per_expert is not None:
             assert counts[j] <= max_per_expert
-        # capacity share of the round's assignments, ceil rule, in exact decimal arithmetic
+        # capacity: share of the round's candidate cases, ceil rule, in exact decimal arithmetic
         cap = Fraction(str(pool.capacities[j]))
-        assert counts[j] <= math.ceil(cap * total), (j, counts[j], total)
+        n_cases = pool.eligible.shape[0]
+        assert counts[j] <= math.ceil(cap * n_cases), (j, counts[j], n_cases)
     # never the same (case, expert) twice, never an ineligible pair (common practice)
     pairs = set(zip(sel.case.tolist(), sel.expert.tolist()))
     assert len(pairs) == sel.case.size

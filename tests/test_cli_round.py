@@ -118,8 +118,9 @@ def test_plan_respects_budget_caps_capacities_and_truth(ws):
     counts = {name: sum(1 for r in got if r[1] == name) for name in EXPERTS}
     for name, (_, capacity) in EXPERTS.items():
         assert counts[name] <= cap
-        # capacity: at most ceil(capacity x assignments in the round), exact decimal arithmetic
-        assert counts[name] <= math.ceil(Fraction(str(capacity)) * len(got))
+        # capacity: at most ceil(capacity x candidate cases), exact decimal arithmetic
+        n_candidates = rows(ws, "SELECT COUNT(*) FROM cases WHERE truth IS NOT NULL")[0][0]
+        assert counts[name] <= math.ceil(Fraction(str(capacity)) * n_candidates)
     assert len({(r[0], r[1]) for r in got}) == len(got)
     no_truth = {r[0] for r in rows(ws, "SELECT case_id FROM cases WHERE truth IS NULL")}
     assert not any(r[0] in no_truth for r in got)
