@@ -111,8 +111,11 @@ def apply_temperature(logits: ArrayLike, temperature: float) -> np.ndarray:
     """Class probabilities ``softmax(logits / T)``, shape (n, K)."""
     if not temperature > 0:
         raise ValueError(f"temperature must be > 0, got {temperature!r}")
-    Z = np.asarray(logits, dtype=np.float64)
-    return np.exp(log_softmax(Z / float(temperature), axis=1))
+    Z = np.asarray(logits, dtype=np.float64) / float(temperature)  # a new array
+    Z -= Z.max(axis=1, keepdims=True)
+    np.exp(Z, out=Z)
+    Z /= Z.sum(axis=1, keepdims=True)
+    return Z
 
 
 def fit_platt(

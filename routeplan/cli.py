@@ -347,7 +347,7 @@ def fit(app, seed, routers, max_epochs, as_json):
 
     with app.workspace() as ws:
         report = fit_workspace(ws, routers=tuple(routers) or None, random_state=seed, max_epochs=max_epochs,
-                               verbose=not (app.quiet or as_json), console=app.console)
+                               verbose=app.console.is_terminal and not (app.quiet or as_json), console=app.console)
     if as_json:
         app.emit_json(report.to_dict())
         return

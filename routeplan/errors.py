@@ -23,12 +23,15 @@ class InputError(RouteplanError):
         The file (or option) the problem is in.
     line : int, optional
         1-based line of a text file (the header is line 1), or 1-based row of a Parquet file.
+    unit : str, default="line"
+        How the position is named: ``line`` (CSV) or ``row`` (Parquet).
     """
 
-    def __init__(self, message: str, *, source: str | None = None, line: int | None = None):
+    def __init__(self, message: str, *, source: str | None = None, line: int | None = None, unit: str = "line"):
         self.message = message
         self.source = source
         self.line = line
+        self.unit = unit
         super().__init__(self.one_line())
 
     def one_line(self) -> str:
@@ -37,7 +40,7 @@ class InputError(RouteplanError):
         if self.source is not None:
             where = self.source
             if self.line is not None:
-                where += f" line {self.line}"
+                where += f" {self.unit} {self.line}"
             where += ": "
         return (where + self.message).replace("\n", " ").replace("\r", " ")
 

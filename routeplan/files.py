@@ -83,7 +83,7 @@ class Table:
     def fail(self, message: str, position: int | None = None) -> InputError:
         """Build the :class:`InputError` for a record (or for the whole file)."""
         line = None if position is None else self.line_of(position)
-        return InputError(message, source=self.source, line=line)
+        return InputError(message, source=self.source, line=line, unit="line" if self.is_text else "row")
 
     def take(self, positions: np.ndarray, columns: list[str] | None = None) -> "Table":
         """The records at ``positions`` (and only ``columns``), keeping their line numbers."""
@@ -135,12 +135,14 @@ def read_table(path: str | Path, *, text_columns: tuple[str, ...] = ()) -> Table
     source = str(path)
     if not path.is_file():
         raise InputError("no such file", source=source)
-    data = path.read_bytes()
-    sha = hashlib.sha256(data).hexdigest()
     if path.suffix.lower() in (".parquet", ".pq"):
+        data = path.read_bytes()
+        sha = hashlib.sha256(data).hexdigest()
         arrow, is_text, lines = _read_parquet(data, source), False, None
     else:
-        arrow, lines = _read_csv(data, source, text_columns)
+        scan = _scan(path)
+        sha = scan.sha256
+        arrow, lines = _read_csv(path, scan, source, text_columns)
         is_text = True
     table = _to_table(arrow, source, sha, is_text, lines, text_columns)
     _check_header(table)
@@ -149,16 +151,49 @@ def read_table(path: str | Path, *, text_columns: tuple[str, ...] = ()) -> Table
     return table
 
 
-def _read_csv(data: bytes, source: str, text_columns: tuple[str, ...]):
+@dataclass(frozen=True)
+class _Scan:
+    """What one streaming pass over a CSV file's bytes found (the file is not held in memory)."""
+
+    sha256: str
+    head: bytes
+    has_text: bool
+    has_nul: bool
+    has_quote: bool
+    has_blank_line: bool
+
+
+def _scan(path: Path, block: int = 1 << 22) -> _Scan:
+    """Hash the file and look for NUL bytes, quotes and blank lines, block by block."""
+    digest = hashlib.sha256()
+    head = b""
+    has_text = has_nul = has_quote = has_blank = False
+    tail = b""
+    with open(path, "rb") as handle:
+        for chunk in iter(lambda: handle.read(block), b""):
+            digest.update(chunk)
+            if len(head) < 65536:
+                head += chunk[: 65536 - len(head)]
+            has_text = has_text or bool(chunk.strip())
+            has_nul = has_nul or b"\x00" in chunk
+            has_quote = has_quote or b'"' in chunk
+            joined = tail + chunk
+            has_blank = has_blank or b"\n\n" in joined or b"\n\r\n" in joined
+            tail = chunk[-2:]
+    return _Scan(digest.hexdigest(), head, has_text, has_nul, has_quote, has_blank)
+
+
+def _read_csv(path: Path, scan: _Scan, source: str, text_columns: tuple[str, ...]):
     import pyarrow as pa
     import pyarrow.csv as pacsv
 
-    if not data.strip():
+    if not scan.has_text:
         raise InputError("the file is empty", source=source)
-    if b"\x00" in data:
+    if scan.has_nul:
+        data = path.read_bytes()
         line = data[: data.index(b"\x00")].count(b"\n") + 1
         raise InputError("the file contains a NUL character", source=source, line=line)
-    first = re.split(rb"\r\n|\n|\r", data, maxsplit=1)[0]  # the header line, whatever the line ends
+    first = re.split(rb"\r\n|\n|\r", scan.head, maxsplit=1)[0]  # the header line, whatever the line ends
     _check_utf8(first, source)
     header = first.decode("utf-8").lstrip("\ufeff")
     try:
@@ -169,7 +204,7 @@ def _read_csv(data: bytes, source: str, text_columns: tuple[str, ...]):
     # traceback for non-UTF-8 bytes; a parse error is explained below instead
     try:
         arrow = pacsv.read_csv(
-            pa.BufferReader(data),
+            str(path),
             read_options=pacsv.ReadOptions(encoding="utf8"),
             convert_options=pacsv.ConvertOptions(
                 null_values=[""],
@@ -179,20 +214,23 @@ def _read_csv(data: bytes, source: str, text_columns: tuple[str, ...]):
             ),
         )
     except (pa.ArrowInvalid, pa.ArrowException, ValueError) as exc:
+        data = path.read_bytes()
         _check_utf8(data, source)
         _check_csv_shape(data.decode("utf-8"), source)
         raise InputError(f"cannot parse the CSV: {_first_line(exc)}", source=source) from None
     if any(pa.types.is_binary(t) or pa.types.is_large_binary(t) for t in arrow.schema.types):
-        _check_utf8(data, source)
-    if b'"' in data and _spans_lines(arrow):
+        _check_utf8(path.read_bytes(), source)
+    if scan.has_quote and _spans_lines(arrow):
         # a quoted value holding a line break: refuse it (one record per line keeps line numbers right)
+        data = path.read_bytes()
         _check_utf8(data, source)
         _check_csv_shape(data.decode("utf-8"), source)
         raise InputError("a value spans several lines; put one record per line", source=source)
     arrow = arrow.rename_columns([n.strip() for n in arrow.column_names])
     if len(names) != arrow.num_columns:
         raise InputError("cannot parse the header", source=source, line=1)
-    return arrow, _record_lines(data, arrow.num_rows)
+    lines = _record_lines(path.read_bytes(), arrow.num_rows) if scan.has_blank_line else None
+    return arrow, lines
 
 
 def _spans_lines(arrow) -> bool:

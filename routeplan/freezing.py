@@ -439,8 +439,9 @@ def route_file(
     out = Path(out_path)
     _check_out_path(out, [Path(policy_path), Path(cases_path)])
     policy = load_policy(policy_path)
-    ids, columns = _read_cases(cases_path, id_column, list(policy.spec.names))
-    costs, n_outside = _score_chunks(policy, columns, len(ids), int(chunk_size), console, progress)
+    ids, X = _read_cases(cases_path, id_column, list(policy.spec.names))
+    costs, n_outside = _score_chunks(policy, X, int(chunk_size), console, progress)
+    del X
     if exact:
         routes = route_exact(costs, policy.capacities, policy.n_classes)
     else:
@@ -462,8 +463,20 @@ def _check_out_path(out: Path, inputs: list[Path]) -> None:
         raise InputError(f"the folder {folder} does not exist", source=str(out))
 
 
-def _read_cases(path: str | os.PathLike, id_column: str, names: list[str]) -> tuple[np.ndarray, dict]:
-    """Read and check a cases file; return the ids and the float64 feature columns."""
+def _read_cases(path: str | os.PathLike, id_column: str, names: list[str]) -> tuple[np.ndarray, np.ndarray]:
+    """Read and check a cases file; return the ids and the (n, d) float64 feature matrix.
+
+    A fast path reads only the needed columns with pyarrow and checks them vectorised. At
+    the first thing it does not like it hands over to :func:`routeplan.files.read_table`
+    and :func:`routeplan.files.check_rows`, which either name the file, line and problem
+    or accept the file (then their values are used).
+    """
+    fast = _read_cases_fast(Path(path), id_column, names)
+    return fast if fast is not None else _read_cases_checked(path, id_column, names)
+
+
+def _read_cases_checked(path: str | os.PathLike, id_column: str, names: list[str]) -> tuple[np.ndarray, np.ndarray]:
+    """The careful reader: every problem raised with its file and line."""
     from .files import Table, check_rows, load_schema, read_table
 
     table = read_table(path, text_columns=(id_column,))
@@ -485,21 +498,105 @@ def _read_cases(path: str | os.PathLike, id_column: str, names: list[str]) -> tu
     if repeated.any():
         at = int(np.argmax(repeated))
         raise table.fail(f"case id {ids[at]!r} appears twice; every case needs its own id", at)
-    return ids, {name: parsed[name] for name in names}
+    X = np.empty((len(ids), len(names)), dtype=np.float64)
+    for j, name in enumerate(names):
+        X[:, j] = parsed[name]
+    return ids, X
 
 
-def _score_chunks(policy: Policy, columns: dict, n: int, chunk_size: int, console: Any,
+_ID_MAX = 200
+_CONTROL = "[\\x00-\\x1f\\x7f]"
+
+
+def _read_cases_fast(path: Path, id_column: str, names: list[str]) -> tuple[np.ndarray, np.ndarray] | None:
+    """Only the needed columns, read and checked with pyarrow; None if anything looks off."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    if not path.is_file():
+        return None
+    keep = [id_column, *names]
+    try:
+        table = _arrow_parquet(path, keep) if path.suffix.lower() in _PARQUET else _arrow_csv(path, keep, id_column)
+    except (pa.ArrowException, ValueError, OSError, UnicodeDecodeError):
+        return None
+    if table is None or table.num_rows == 0:
+        return None
+    ids = table.column(id_column)
+    if not (pa.types.is_string(ids.type) or pa.types.is_large_string(ids.type)):
+        return None
+    ids = pc.utf8_trim_whitespace(ids)
+    if ids.null_count or not _ids_ok(ids):
+        return None
+    X = np.empty((table.num_rows, len(names)), dtype=np.float64)
+    for j, name in enumerate(names):
+        column = table.column(name)
+        if not (pa.types.is_integer(column.type) or pa.types.is_floating(column.type)) or column.null_count:
+            return None
+        X[:, j] = column.cast(pa.float64()).to_numpy()
+    if not np.isfinite(X).all():
+        return None
+    return ids.to_numpy(zero_copy_only=False).astype(object), X
+
+
+def _ids_ok(ids: Any) -> bool:
+    """Ids non-empty, at most 200 characters, no control characters, all different."""
+    import pyarrow.compute as pc
+
+    lengths = pc.utf8_length(ids)
+    if pc.min(lengths).as_py() < 1 or pc.max(lengths).as_py() > _ID_MAX:
+        return False
+    if pc.any(pc.match_substring_regex(ids, _CONTROL)).as_py():
+        return False
+    return pc.count_distinct(ids).as_py() == len(ids)
+
+
+def _arrow_parquet(path: Path, keep: list[str]) -> Any:
+    """The needed columns of a Parquet file (None if a name is missing or repeated)."""
+    import pyarrow.parquet as pq
+
+    found = pq.read_schema(path).names
+    if len(set(found)) != len(found) or any(name not in found for name in keep):
+        return None
+    return pq.read_table(path, columns=keep)
+
+
+def _arrow_csv(path: Path, keep: list[str], id_column: str) -> Any:
+    """The needed columns of a CSV file (None if the header is not plain and complete)."""
+    import csv as csv_module
+
+    import pyarrow as pa
+    import pyarrow.csv as pacsv
+
+    with open(path, "rb") as handle:
+        first = handle.readline(1 << 20)
+    if first.startswith(b"\xef\xbb\xbf") or not first.endswith(b"\n") or b"\x00" in first:
+        return None
+    header = next(csv_module.reader([first.decode("utf-8").rstrip("\r\n")]), [])
+    if any(h != h.strip() or not h for h in header) or len(set(header)) != len(header):
+        return None
+    if any(name not in header for name in keep):
+        return None
+    types = {name: pa.float64() for name in keep[1:]}
+    types[id_column] = pa.string()
+    return pacsv.read_csv(
+        path,
+        convert_options=pacsv.ConvertOptions(include_columns=keep, column_types=types, null_values=[""],
+                                             strings_can_be_null=True, quoted_strings_can_be_null=True),
+    )
+
+
+def _score_chunks(policy: Policy, X: np.ndarray, chunk_size: int, console: Any,
                   progress: bool) -> tuple[np.ndarray, int]:
     """Score the cases chunk by chunk; also count cases outside the training range."""
+    n = X.shape[0]
     costs = np.empty((n, policy.n_classes + len(policy.experts)), dtype=np.float64)
     n_outside = 0
-    names = list(policy.spec.names)
     with _progress_bar(console, progress, n) as advance:
         for start in range(0, n, chunk_size):
             stop = min(start + chunk_size, n)
-            X = np.column_stack([columns[name][start:stop] for name in names]) if names else np.zeros((stop - start, 0))
-            costs[start:stop] = _score(policy, X)
-            n_outside += int(policy.spec.outside_range(X).sum())
+            costs[start:stop] = _score(policy, X[start:stop])
+            n_outside += int(policy.spec.outside_range(X[start:stop]).sum())
             advance(stop - start)
     return costs, n_outside
 
@@ -507,7 +604,7 @@ def _score_chunks(policy: Policy, columns: dict, n: int, chunk_size: int, consol
 @contextlib.contextmanager
 def _progress_bar(console: Any, enabled: bool, total: int) -> Iterator[Any]:
     """A rich progress bar over cases (a no-op when disabled)."""
-    if not enabled:
+    if not enabled or (console is not None and not console.is_terminal):
         yield lambda k: None
         return
     from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
@@ -938,7 +1035,7 @@ def _card_use(manifest: Mapping[str, Any]) -> list[str]:
     return ["## Intended use", "",
             f"Route new cases of the same kind as the training pool: for each case, either the model decides "
             f"one of the labels ({labels}) or the case goes to one of the experts below. The policy reads the "
-            f"feature columns {feats}. It weighs one wrong decision at {cost:g} fee units against each expert's "
+            f"feature columns {feats}. It weighs one wrong decision (cost {cost:g}, in the unit of the fees) against each expert's "
             "fee and holds each expert's capacity (largest share of routed cases). It supports people who "
             "decide; it is not meant to replace their judgement where a decision needs a licensed person.", ""]
 
@@ -998,7 +1095,7 @@ def _fmt(value: Any, pattern: str) -> str:
 def _card_cautions() -> list[str]:
     """What a team must keep doing."""
     return ["## Cautions", "",
-            "- Keep people in charge: the experts and a responsible person must be able to review, overrule "
+            "- Human oversight: keep people in charge; the experts and a responsible person must be able to review, overrule "
             "and stop the routing, and the model's own decisions should be sampled and checked regularly.",
             "- Check subgroups: the estimates above are averages over the held-out cases; look at accuracy "
             "and workload per group, site or region (`routeplan competence --by group`) before relying on it.",

@@ -255,7 +255,12 @@ class Workspace:
                 f"no workspace in {folder.resolve()}; run 'routeplan init --labels A,B' there "
                 "or point --workspace (or ROUTEPLAN_WORKSPACE) at one"
             )
-        db = cls._connect(path)
+        try:
+            db = cls._connect(path)
+            db.execute("SELECT COUNT(*) FROM sqlite_master").fetchone()
+        except sqlite3.DatabaseError as exc:
+            raise InputError(f"{path} is not a routeplan workspace ({exc}); restore it from a backup "
+                             "or point --workspace at another folder") from None
         if migrations.pending(db):
             migrations.apply(db)
         return cls(folder, db)

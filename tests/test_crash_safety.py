@@ -81,7 +81,7 @@ def test_sigkill_during_import_leaves_all_or_nothing(large_cases_csv, template_d
         base = _wal_size(ws)
         proc = _start(ws, large_cases_csv)
         if k % 2 == 0:  # anywhere in the run
-            time.sleep(rng.uniform(0.0, 1.1) * full_s)
+            time.sleep(rng.uniform(0.0, 1.0) * full_s)
         else:  # once the child writes
             deadline = time.perf_counter() + 3 * full_s
             while proc.poll() is None and _wal_size(ws) <= base and time.perf_counter() < deadline:

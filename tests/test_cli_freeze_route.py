@@ -1,0 +1,447 @@
+"""Tests of ``routeplan freeze`` and ``routeplan route`` through click's CliRunner.
+
+One workspace is built per module from ``routeplan.simulate.make_scenario`` (seeded; its
+values exercise the commands, they are not correctness data). The stored model follows the
+layout ``routeplan fit`` writes (params with meta, features, labels, experts,
+training/validation case ids; metrics with the candidate table), fitted here with a small
+linear plug-in router to keep the module fast; one slow test runs the real
+``fit_workspace`` before freezing. Each check names its outside reference beside it.
+"""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import json
+import math
+import re
+import shutil
+import sqlite3
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from click.testing import CliRunner
+from jsonschema import Draft202012Validator
+
+from routeplan.cli import cli
+from routeplan.workspace import DB_NAME
+
+SCHEMAS = Path(__file__).resolve().parents[1] / "schemas"
+LABELS = ("low", "mid", "high")
+EXPERTS = {"ana": 0.2, "ben": 0.1, "cy": 0.05}  # name -> capacity share
+N_TRUTH, N_NEW, N_FEATURES = 320, 100, 4
+
+
+def invoke(ws: Path, *args):
+    return CliRunner().invoke(cli, ["--workspace", str(ws), *map(str, args)])
+
+
+def ok(result):
+    assert result.exit_code == 0, (result.exit_code, result.stdout, result.stderr, result.exception)
+    return result
+
+
+def one_line_error(result, *fragments: str) -> str:
+    """Exit 2 and one stderr line holding every fragment, no traceback (DESIGN.md contract)."""
+    assert result.exit_code == 2, (result.exit_code, result.stdout, result.stderr, result.exception)
+    lines = result.stderr.strip("\n").split("\n")
+    assert len(lines) == 1 and "Traceback" not in result.stderr, result.stderr
+    for fragment in fragments:
+        assert fragment in lines[0], (fragment, lines[0])
+    return lines[0]
+
+
+def validator(name: str) -> Draft202012Validator:
+    return Draft202012Validator(json.loads((SCHEMAS / f"{name}.schema.json").read_text()))
+
+
+def store_model(folder: Path, seed: int = 0) -> int:
+    """Fit a small plug-in router on the workspace and store it the way ``fit`` does."""
+    from routeplan.features import fit_features
+    from routeplan.learner import PluginRouter, select_router
+    from routeplan.pool import load_pool
+    from routeplan.workspace import Workspace
+
+    with Workspace.open(folder) as ws:
+        pool = load_pool(ws)
+        mask = pool.has_truth
+        spec = fit_features(pool.X[mask], pool.feature_names)
+        X, y, A = spec.transform(pool.X[mask]), pool.y[mask], pool.answers[mask]
+        ids = pool.case_ids[mask]
+        order = np.random.default_rng(seed).permutation(len(y))
+        train, val = order[: int(0.75 * len(y))], order[int(0.75 * len(y)):]
+        router = PluginRouter(head="linear", max_epochs=5, random_state=seed).fit(
+            X[train], y[train], A[train], fees=pool.fees, cost_matrix=pool.cost_matrix())
+        table = select_router({"plugin": router}, X[val], y[val], A[val], expert_names=list(pool.experts)).table
+        arrays, meta = router.get_arrays()
+        params = {"meta": meta, "router": "plugin", "features": spec.to_dict(), "labels": list(pool.labels),
+                  "experts": [{"name": n, "fee": float(f), "capacity": float(c)}
+                              for n, f, c in zip(pool.experts, pool.fees, pool.capacities)],
+                  "error_cost": pool.error_cost, "training_case_ids": [str(c) for c in ids[train]],
+                  "validation_case_ids": [str(c) for c in ids[val]], "seed": seed}
+        metrics = {"chosen": "plugin", "candidates": table.replace({np.nan: None}).to_dict(orient="records")}
+        with ws.transaction():
+            return ws.add_model("plugin", params, metrics, arrays, chosen=True)
+
+
+@pytest.fixture(scope="module")
+def built(tmp_path_factory) -> dict:
+    """A workspace with a stored model, frozen once; the new cases to route."""
+    from routeplan.simulate import make_scenario
+
+    root = tmp_path_factory.mktemp("freeze_route")
+    sc = make_scenario(N_TRUTH + N_NEW, n_features=N_FEATURES, n_classes=3, n_experts=3, random_state=11)
+    names = [f"x{j}" for j in range(N_FEATURES)]
+    frame = pd.DataFrame(sc.X.astype(np.float64), columns=names)
+    frame.insert(0, "case_id", [f"k{i:04d}" for i in range(len(frame))])
+    truth = frame.iloc[:N_TRUTH].assign(truth=[LABELS[v] for v in sc.y[:N_TRUTH]])
+    truth.to_csv(root / "cases.csv", index=False)
+    new = frame.iloc[N_TRUTH:].assign(note="shown only")
+    new.to_csv(root / "new.csv", index=False)
+    answers = sc.answers(random_state=12)[:N_TRUTH]
+    known = np.random.default_rng(13).random(answers.shape) < 0.5
+    rows, cols = np.nonzero(known)
+    experts = list(EXPERTS)
+    pd.DataFrame({"case_id": truth["case_id"].to_numpy()[rows], "expert": np.asarray(experts)[cols],
+                  "answer": np.asarray(LABELS)[answers[rows, cols]]}).to_csv(root / "answers.csv", index=False)
+    ws = root / "ws"
+    ok(invoke(ws, "init", "--labels", ",".join(LABELS)))
+    ok(invoke(ws, "cases", "import", root / "cases.csv"))
+    for name, fee in zip(experts, sc.fees):
+        ok(invoke(ws, "experts", "add", name, "--fee", f"{fee:g}", "--capacity", EXPERTS[name]))
+    ok(invoke(ws, "answers", "import", root / "answers.csv"))
+    model_id = store_model(ws)
+    ok(invoke(ws, "freeze", "--out", root / "policy.json"))
+    return {"root": root, "ws": ws, "policy": root / "policy.json", "new": root / "new.csv",
+            "cases": root / "cases.csv", "model_id": model_id, "names": names}
+
+
+def read_decisions(path: Path) -> list[dict]:
+    """Decision rows as JSON-like dicts (numbers as float, text kept as written)."""
+    with open(path, newline="", encoding="utf-8") as handle:
+        rows = list(csv.DictReader(handle))
+    out = []
+    for row in rows:
+        item = {}
+        for key, value in row.items():
+            item[key] = float(value) if key == "expected_cost" or key.startswith("cost_") else value
+        out.append(item)
+    return out
+
+
+def manifest_of(path: Path) -> dict:
+    return json.loads(path.read_text(encoding="utf-8"))["manifest"]
+
+
+def dense_lp_optimum(costs: np.ndarray, n_classes: int, limits: np.ndarray) -> float:
+    """The capacity LP written out densely and solved by scipy's HiGHS (the reference)."""
+    from scipy.optimize import linprog
+
+    n, n_options = costs.shape
+    A_eq = np.kron(np.eye(n), np.ones((1, n_options)))
+    A_ub = np.zeros((limits.size, n * n_options))
+    for j in range(limits.size):
+        A_ub[j, n_classes + j::n_options] = 1.0
+    res = linprog(costs.ravel(), A_ub=A_ub, b_ub=limits, A_eq=A_eq, b_eq=np.ones(n), bounds=(0, None),
+                  method="highs")
+    assert res.status == 0
+    return float(res.fun)
+
+
+# --------------------------------------------------------------------------- freeze
+
+
+def test_freeze_writes_a_valid_recorded_policy_and_card(built):
+    from routeplan.policy import read_policy
+
+    manifest, arrays = read_policy(built["policy"])
+    # jsonschema's reference Draft 2020-12 validator against our published schema
+    validator("policy-manifest").validate(manifest_of(built["policy"]))
+    document = json.loads(built["policy"].read_text())
+    canonical = json.dumps({"manifest": document["manifest"], "arrays": document["arrays"]},
+                           sort_keys=True, separators=(",", ":"))
+    # hashlib's SHA-256 (FIPS 180-4) of the canonical JSON, as the schema's description defines it
+    digest = hashlib.sha256(canonical.encode("utf-8")).hexdigest()
+    assert digest == document["sha256"]
+    with sqlite3.connect(built["ws"] / DB_NAME) as conn:
+        rows = conn.execute("SELECT sha256, model_id, path FROM policies").fetchall()
+        journal = conn.execute("SELECT detail FROM journal WHERE command = 'freeze'").fetchall()
+    assert rows == [(digest, built["model_id"], str(built["policy"].resolve()))]
+    assert len(journal) == 1 and json.loads(journal[0][0])["sha256"] == digest
+    assert [e["name"] for e in manifest["experts"]] == list(EXPERTS)
+    assert [e["capacity"] for e in manifest["experts"]] == list(EXPERTS.values())
+    assert set(manifest["router"]["arrays"]) == set(arrays)
+    assert manifest["labels"] == list(LABELS) and manifest["features"]["names"] == built["names"]
+
+
+def test_policy_card_has_the_required_sections(built):
+    card = built["policy"].with_suffix(".md").read_text(encoding="utf-8")
+    # the brief's list of card contents (common practice for model cards)
+    for fragment in ("## Intended use", "## Experts, fees, capacities and prices", "## Cautions",
+                     "model alone", "ana alone", "ben alone", "cy alone", "95% interval",
+                     "health, credit, legal", "Human oversight", "Check subgroups", "Validate on local data"):
+        assert fragment in card, fragment
+    for name in ("system cost", "accuracy", "coverage", "workload of ana"):
+        assert name in card
+
+
+def _validation_costs(built):
+    """The stored router's expected costs on its validation cases, rebuilt independently of freeze."""
+    from routeplan.features import FeatureSpec
+    from routeplan.fitting import load_router
+    from routeplan.pool import load_pool
+    from routeplan.workspace import Workspace
+
+    with Workspace.open(built["ws"]) as ws:
+        _, router, params, _ = load_router(ws)
+        pool = load_pool(ws)
+    where = {c: i for i, c in enumerate(pool.case_ids)}
+    pos = np.array([where[c] for c in params["validation_case_ids"]])
+    spec = FeatureSpec.from_dict(params["features"])
+    return router.predict_costs(spec.transform(pool.X[pos]))
+
+
+def test_frozen_prices_are_optimal_duals_of_the_capacity_lp(built):
+    manifest = manifest_of(built["policy"])
+    costs = _validation_costs(built)
+    n, K = costs.shape[0], len(LABELS)
+    caps = np.array([e["capacity"] for e in manifest["experts"]])
+    prices = np.array([e["price"] for e in manifest["experts"]])
+    limits = np.minimum(caps, 1.0) * n
+    optimum = dense_lp_optimum(costs, K, limits)
+    # LP strong duality (e.g. Bertsimas & Tsitsiklis, "Introduction to Linear Optimization",
+    # 1997, Thm 4.4): the Lagrangian dual value sum_i min_o (c_io + p_o) - sum_j p_j L_j equals
+    # the primal optimum exactly when the prices are optimal duals; any other p >= 0 gives less.
+    dual_value = np.min(costs + np.concatenate([np.zeros(K), prices]), axis=1).sum() - prices @ limits
+    assert dual_value == pytest.approx(optimum, rel=1e-6, abs=1e-6)
+    assert np.all(prices >= 0) and prices.max() > 0  # the 5% cap of cy binds on these cases
+
+
+def test_frozen_intervals_are_wilson_and_caps_hold(built):
+    from statsmodels.stats.proportion import proportion_confint
+
+    metrics = manifest_of(built["policy"])["metrics"]
+    for key in ["coverage", *[f"workload_{n}" for n in EXPERTS]]:
+        m = metrics[key]
+        count = round(m["estimate"] * m["n"])
+        # statsmodels' Wilson score interval (Wilson, JASA 1927) as the reference
+        low, high = proportion_confint(count, m["n"], alpha=0.05, method="wilson")
+        assert (m["low"], m["high"]) == pytest.approx((low, high), abs=1e-9), key
+        assert m["level"] == 0.95
+    for name, cap in EXPERTS.items():  # the routed policy keeps each cap on the held-out cases
+        assert metrics[f"workload_{name}"]["estimate"] <= cap + 1e-12
+    cost = metrics["system_cost"]
+    assert 0 <= cost["low"] <= cost["estimate"] <= cost["high"]
+
+
+def test_freeze_without_a_model_is_refused(empty_ws, tmp_path):
+    one_line_error(invoke(empty_ws, "freeze", "--out", tmp_path / "p.json"), "no fitted model", "routeplan fit")
+    assert not (tmp_path / "p.json").exists()
+
+
+def test_freeze_after_the_real_fit(built, tmp_path):
+    from routeplan.fitting import fit_workspace
+    from routeplan.workspace import Workspace
+
+    ws = shutil.copytree(built["ws"], tmp_path / "ws")
+    with Workspace.open(ws) as opened:
+        fit_workspace(opened, routers=("plugin",), max_epochs=2, random_state=1)
+    result = ok(invoke(ws, "freeze", "--out", tmp_path / "p.json", "--card", tmp_path / "card.md", "--json"))
+    info = json.loads(result.stdout)
+    validator("policy-manifest").validate(manifest_of(tmp_path / "p.json"))  # jsonschema reference
+    assert info["sha256"] == json.loads((tmp_path / "p.json").read_text())["sha256"]
+    assert (tmp_path / "card.md").read_text().startswith("# Routing policy card")
+
+
+# --------------------------------------------------------------------------- route
+
+
+def test_route_writes_one_valid_row_per_case_in_order(built, tmp_path):
+    out = tmp_path / "decisions.csv"
+    result = ok(invoke(tmp_path / "no_workspace_here", "route", "--policy", built["policy"], built["new"],
+                       "--out", out))
+    assert "Workload" in result.stdout
+    rows = read_decisions(out)
+    new_ids = pd.read_csv(built["new"], dtype={"case_id": str})["case_id"].tolist()
+    assert [r["case_id"] for r in rows] == new_ids  # one row per input case, input order
+    check = validator("decisions-row")  # jsonschema's reference validator
+    option_columns = [f"cost_model:{label}" for label in LABELS] + [f"cost_{name}" for name in EXPERTS]
+    for row in rows:
+        check.validate(row)
+        assert list(row)[:4] == ["case_id", "route", "label", "expected_cost"]
+        assert list(row)[4:] == option_columns
+        chosen = f"cost_model:{row['label']}" if row["route"] == "model" else f"cost_{row['route']}"
+        assert row["expected_cost"] == row[chosen]  # the schema's definition of expected_cost
+
+
+def test_parquet_output_and_chunk_size_give_the_same_decisions(built, tmp_path):
+    import pyarrow.parquet as pq
+
+    ok(invoke(tmp_path, "route", "--policy", built["policy"], built["new"], "--out", tmp_path / "a.csv"))
+    ok(invoke(tmp_path, "route", "--policy", built["policy"], built["new"], "--out", tmp_path / "b.csv",
+              "--chunk-size", "7"))
+    ok(invoke(tmp_path, "route", "--policy", built["policy"], built["new"], "--out", tmp_path / "c.parquet"))
+    assert (tmp_path / "a.csv").read_bytes() == (tmp_path / "b.csv").read_bytes()
+    from_csv = pd.read_csv(tmp_path / "a.csv", dtype={"case_id": str, "label": str}, keep_default_na=False)
+    from_parquet = pq.read_table(tmp_path / "c.parquet").to_pandas()  # pyarrow reads it back
+    assert from_parquet["case_id"].tolist() == from_csv["case_id"].tolist()
+    assert from_parquet["route"].tolist() == from_csv["route"].tolist()
+    assert from_parquet["label"].fillna("").tolist() == from_csv["label"].tolist()
+    assert np.allclose(from_parquet["expected_cost"], from_csv["expected_cost"], rtol=1e-15, atol=0)
+
+
+@pytest.mark.parametrize("n", [9, 40, N_NEW])
+def test_caps_are_never_exceeded_and_exact_is_lp_optimal(built, tmp_path, n):
+    cases = tmp_path / "subset.csv"
+    pd.read_csv(built["new"], dtype={"case_id": str}).iloc[:n].to_csv(cases, index=False)
+    for mode in ("exact", "priced"):
+        out = tmp_path / f"{mode}.csv"
+        ok(invoke(tmp_path, "route", "--policy", built["policy"], cases, "--out", out,
+                  *(["--exact"] if mode == "exact" else []), "--json"))
+        rows = read_decisions(out)
+        counts = {name: sum(r["route"] == name for r in rows) for name in EXPERTS}
+        for name, cap in EXPERTS.items():  # the capacity contract of DESIGN.md (common practice)
+            assert counts[name] <= math.floor(cap * n + 1e-9), (mode, name, counts)
+        if mode == "exact":
+            costs = np.array([[r[c] for c in list(r)[4:]] for r in rows])
+            limits = np.floor(np.minimum(list(EXPERTS.values()), 1.0) * n + 1e-9)
+            # integral limits on a bipartite (totally unimodular) constraint matrix: the LP
+            # optimum by scipy's HiGHS is the best integral routing (Heller & Tompkins, 1956)
+            optimum = dense_lp_optimum(costs, len(LABELS), limits)
+            assert sum(r["expected_cost"] for r in rows) == pytest.approx(optimum, rel=1e-9, abs=1e-9)
+
+
+def _rehash(document: dict) -> dict:
+    """Recompute the sha256 as the policy-manifest schema's description defines it (hashlib)."""
+    canonical = json.dumps({"manifest": document["manifest"], "arrays": document["arrays"]},
+                           sort_keys=True, separators=(",", ":"))
+    document["sha256"] = hashlib.sha256(canonical.encode("utf-8")).hexdigest()
+    return document
+
+
+def _flip_byte(raw: bytes) -> bytes:
+    longest = max(re.finditer(rb'"data": "([A-Za-z0-9+/=]*)"', raw), key=lambda m: len(m.group(1)))
+    at = longest.start(1) + len(longest.group(1)) // 2  # a byte in the middle of the largest weight array
+    return raw[:at] + bytes([raw[at] ^ 0x01]) + raw[at + 1:]
+
+
+def _loosen_cap(raw: bytes) -> bytes:
+    document = json.loads(raw)
+    document["manifest"]["experts"][0]["capacity"] = 1.0  # an edit by hand, hash left as it was
+    return json.dumps(document).encode()
+
+
+def _new_version(raw: bytes) -> bytes:
+    document = json.loads(raw)
+    document["manifest"].update(format_version=2, format="routeplan-policy/2")
+    return json.dumps(_rehash(document)).encode()
+
+
+def _drop_array(raw: bytes) -> bytes:
+    document = json.loads(raw)
+    document["arrays"].pop(document["manifest"]["router"]["arrays"][0])
+    return json.dumps(_rehash(document)).encode()
+
+
+@pytest.mark.parametrize("damage, fragment", [
+    (_flip_byte, "sha256 does not match"),
+    (lambda raw: raw[: len(raw) // 2], "not a complete policy file"),
+    (lambda raw: raw[:-2], "not a complete policy file"),
+    (_loosen_cap, "sha256 does not match"),
+    (_new_version, "format version 2 is not supported"),
+    (_drop_array, "does not hold"),
+])
+def test_damaged_policies_are_refused(built, tmp_path, damage, fragment):
+    bad = tmp_path / "bad.json"
+    bad.write_bytes(damage(built["policy"].read_bytes()))
+    out = tmp_path / "out.csv"
+    line = one_line_error(invoke(tmp_path, "route", "--policy", bad, built["new"], "--out", out), fragment)
+    assert str(bad) in line
+    assert not out.exists()
+
+
+@pytest.mark.parametrize("edit, fragments", [
+    (lambda f: f.drop(columns="x2"), ("line 1", "missing column(s) 'x2'")),
+    (lambda f: f.assign(x1=f["x1"].astype(object).where(f.index != 3, "abc")), ("line 5", "'x1'", "abc")),
+    (lambda f: f.assign(x0=f["x0"].where(f.index != 5, np.nan)), ("line 7", "'x0'", "empty")),
+    (lambda f: f.assign(case_id=f["case_id"].where(f.index != 8, f["case_id"][2])), ("line 10", "appears twice")),
+])
+def test_bad_cases_files_are_refused_with_the_line(built, tmp_path, edit, fragments):
+    frame = pd.read_csv(built["new"], dtype={"case_id": str})
+    bad = tmp_path / "bad.csv"
+    edit(frame).to_csv(bad, index=False)
+    out = tmp_path / "out.csv"
+    line = one_line_error(invoke(tmp_path, "route", "--policy", built["policy"], bad, "--out", out), *fragments)
+    assert line.startswith(f"Error: {bad}")
+    assert not out.exists()
+
+
+def test_parquet_cases_and_outside_range_warning(built, tmp_path):
+    frame = pd.read_csv(built["new"], dtype={"case_id": str})
+    frame.loc[4, "x3"] = 1e6
+    frame.to_parquet(tmp_path / "new.parquet")
+    result = ok(invoke(tmp_path, "route", "--policy", built["policy"], tmp_path / "new.parquet",
+                       "--out", tmp_path / "d.csv", "--json"))
+    info = json.loads(result.stdout)
+    train = pd.read_csv(built["cases"])
+    cols = built["names"]
+    # pandas' min/max of the training cases is the reference for "outside the training range"
+    outside = ((frame[cols] < train[cols].min()) | (frame[cols] > train[cols].max())).any(axis=1).sum()
+    assert info["n_outside_range"] == outside >= 1
+    assert f"{outside} of {N_NEW} case(s)" in result.stderr and "Warning" in result.stderr
+    assert info["n_cases"] == N_NEW and sum(w["cases"] for w in info["workload"]) == N_NEW
+
+
+def test_formula_like_ids_are_neutralised_in_csv_only(built, tmp_path):
+    import pyarrow.parquet as pq
+
+    frame = pd.read_csv(built["new"], dtype={"case_id": str})
+    frame.loc[0, "case_id"] = "=cmd|x"
+    frame.to_csv(tmp_path / "new.csv", index=False)
+    for out in ("d.csv", "d.parquet"):
+        ok(invoke(tmp_path, "route", "--policy", built["policy"], tmp_path / "new.csv", "--out", tmp_path / out))
+    # OWASP guidance on CSV injection (common practice): a leading = is quoted away in CSV
+    assert read_decisions(tmp_path / "d.csv")[0]["case_id"] == "'=cmd|x"
+    assert pq.read_table(tmp_path / "d.parquet").column("case_id")[0].as_py() == "=cmd|x"
+
+
+def test_route_refuses_to_overwrite_its_input(built, tmp_path):
+    copy = tmp_path / "new.csv"
+    shutil.copy(built["new"], copy)
+    before = copy.read_bytes()
+    one_line_error(invoke(tmp_path, "route", "--policy", built["policy"], copy, "--out", copy), "overwrite")
+    assert copy.read_bytes() == before
+
+
+def test_careful_reader_agrees_with_the_fast_one(built, tmp_path):
+    # A header with a byte-order mark and padded names sends route to files.read_table (the
+    # careful reader); Python's csv module writes the same records either way.
+    frame = pd.read_csv(built["new"], dtype={"case_id": str})
+    plain, padded = tmp_path / "plain.csv", tmp_path / "padded.csv"
+    frame.to_csv(plain, index=False)
+    with open(padded, "w", newline="", encoding="utf-8-sig") as handle:
+        writer = csv.writer(handle)
+        writer.writerow([f" {c} " for c in frame.columns])
+        writer.writerows(frame.itertuples(index=False))
+    for src, out in ((plain, "a.csv"), (padded, "b.csv")):
+        ok(invoke(tmp_path, "route", "--policy", built["policy"], src, "--out", tmp_path / out))
+    assert (tmp_path / "a.csv").read_bytes() == (tmp_path / "b.csv").read_bytes()
+
+
+def test_route_frame_is_row_by_row_and_checks_columns(built):
+    from routeplan.errors import InputError
+    from routeplan.freezing import route_frame
+    from routeplan.policy import read_policy
+
+    manifest, arrays = read_policy(built["policy"])
+    frame = pd.read_csv(built["new"], dtype={"case_id": str}).set_index(np.arange(N_NEW) * 3)
+    whole = route_frame(frame, manifest, arrays)
+    halves = pd.concat([route_frame(frame.iloc[:37], manifest, arrays), route_frame(frame.iloc[37:], manifest, arrays)])
+    pd.testing.assert_frame_equal(whole, halves)  # pandas' own frame comparison
+    assert whole.index.tolist() == frame.index.tolist()
+    with pytest.raises(InputError, match="missing column"):
+        route_frame(frame.drop(columns="x1"), manifest, arrays)
+    with pytest.raises(InputError, match="not a finite number"):
+        route_frame(frame.assign(x0=np.inf), manifest, arrays)
