@@ -48,9 +48,12 @@ def bench_fit(n: int) -> None:
     print(f"\n[1] fit on {n:,} x 32, K=10, M=5, 10 epochs (all answers known)")
     epochs = {"max_epochs": 10, "patience": 10**6, "random_state": 0}
     rows = []
-    for name, make in [("PluginRouter (classifier + correctness nets)", lambda: PluginRouter(**epochs)),
-                       ("SurrogateRouter softmax (correctness + scorer)", lambda: SurrogateRouter(**epochs)),
-                       ("PluginRouter linear", lambda: PluginRouter(head="linear", **epochs))]:
+    candidates = [
+        ("PluginRouter (classifier + correctness nets)", lambda: PluginRouter(**epochs)),
+        ("SurrogateRouter softmax (correctness + scorer)", lambda: SurrogateRouter(**epochs)),
+        ("PluginRouter linear", lambda: PluginRouter(head="linear", **epochs)),
+    ]
+    for name, make in candidates:
         _, wall, cpu = _timed(lambda: make().fit(X, y, A, fees=sc.fees))
         rows.append((name, wall, cpu))
     threads = min(2, os.cpu_count() or 1)
@@ -63,10 +66,13 @@ def bench_fit(n: int) -> None:
         _, mlp_wall, mlp_cpu = _timed(lambda: mlp.fit(X, y))
     print(f"  {'LogisticRegression(lbfgs)':48s} wall {lr_wall:6.2f} s  cpu {lr_cpu:6.2f} s "
           f"({lr.n_iter_[0]} iterations, up to {threads} BLAS threads)")
-    print(f"  {'MLPClassifier(64, 64), 10 epochs, batch 256':48s} wall {mlp_wall:6.2f} s  cpu {mlp_cpu:6.2f} s")
+    print(f"  {'MLPClassifier(64, 64), 10 epochs, batch 256':48s} wall {mlp_wall:6.2f} s  "
+          f"cpu {mlp_cpu:6.2f} s")
     for name, wall, cpu in rows:
-        print(f"  {name:48s} wall {wall:6.2f} s  cpu {cpu:6.2f} s  "
-              f"x LogReg {wall / lr_wall:4.2f} (goal <= 3)  x MLPClassifier {wall / mlp_wall:4.2f} (goal < 1)")
+        print(f"  {name:48s} wall {wall:6.2f} s  cpu {cpu:6.2f} s\n"
+              f"  {'':48s} ratio to LogReg: wall {wall / lr_wall:4.2f}, cpu {cpu / lr_cpu:4.2f} "
+              f"(goal <= 3); to MLPClassifier: wall {wall / mlp_wall:4.2f}, "
+              f"cpu {cpu / mlp_cpu:4.2f} (goal < 1)")
 
 
 _SCORER = textwrap.dedent("""
@@ -96,7 +102,8 @@ def bench_score() -> None:
     import json
 
     sc = simulate.make_scenario(5_000, n_features=32, n_classes=10, n_experts=5, random_state=0)
-    router = PluginRouter(max_epochs=3, random_state=0).fit(sc.X, sc.y, sc.answers(1), fees=sc.fees)
+    router = PluginRouter(max_epochs=3, random_state=0).fit(sc.X, sc.y, sc.answers(1),
+                                                            fees=sc.fees)
     arrays, meta = router.get_arrays()
     with tempfile.TemporaryDirectory() as tmp:
         npz, js = os.path.join(tmp, "w.npz"), os.path.join(tmp, "m.json")
@@ -109,8 +116,8 @@ def bench_score() -> None:
     print("\n[2] scoring 1,000,000 x 32 (PluginRouter MLP 64x64, K=10, M=5), fresh process")
     print(f"  predict_costs + argmin: wall {r['wall']:.2f} s (goal < 5), cpu {r['cpu']:.2f} s; "
           f"predict_route alone: {r['wall_route']:.2f} s")
-    print(f"  peak RSS {r['peak_mb']:.0f} MB (goal < 1536); before scoring {r['rss_before_mb']:.0f} MB "
-          f"(interpreter, torch and the 128 MB input)")
+    print(f"  peak RSS {r['peak_mb']:.0f} MB (goal < 1536); before scoring "
+          f"{r['rss_before_mb']:.0f} MB (interpreter, torch and the 128 MB input)")
 
 
 def bench_bayes(n_train: int) -> None:
@@ -118,28 +125,31 @@ def bench_bayes(n_train: int) -> None:
     sc = simulate.make_scenario(n_train + 10_000, random_state=0)
     A = sc.answers(1)
     tr, te = np.arange(n_train), np.arange(n_train, n_train + 10_000)
-    ec = costs.expected_cost_vectors(sc.proba[te], sc.correct_proba[te],
-                                     cost_matrix=costs.error_cost_matrix(sc.n_classes), fees=sc.fees)
+    ec = costs.expected_cost_vectors(sc.proba[te], sc.correct_proba[te], fees=sc.fees,
+                                     cost_matrix=costs.error_cost_matrix(sc.n_classes))
     bayes = ec.min(axis=1).mean()
-    print(f"\n[3] synthetic scenario (8 features, K=5, M=3), {n_train:,} training cases, all answers; "
-          f"exact expected cost on 10,000 held-out cases; Bayes-optimal {bayes:.4f}")
+    print(f"\n[3] synthetic scenario (8 features, K=5, M=3), {n_train:,} training cases, all "
+          f"answers;\n    exact expected cost on 10,000 held-out cases; Bayes-optimal {bayes:.4f}")
     for name, make in [("plugin", lambda: PluginRouter(random_state=0)),
                        ("softmax", lambda: SurrogateRouter(random_state=0)),
                        ("ova", lambda: SurrogateRouter(loss="ova", random_state=0))]:
         router, wall, cpu = _timed(lambda: make().fit(sc.X[tr], sc.y[tr], A[tr], fees=sc.fees))
         cost = ec[np.arange(len(te)), router.predict_route(sc.X[te])].mean()
-        print(f"  {name:8s} cost {cost:.4f}  gap {cost - bayes:+.4f}  (fit wall {wall:.1f} s, cpu {cpu:.1f} s)")
+        print(f"  {name:8s} cost {cost:.4f}  gap {cost - bayes:+.4f}  "
+              f"(fit wall {wall:.1f} s, cpu {cpu:.1f} s)")
 
 
 def bench_digits() -> None:
     """Plug-in vs the two surrogates on digits with the simulated expert."""
     from sklearn.model_selection import train_test_split
 
-    print("\n[4] digits, expert right on classes < k and uniform otherwise (Mozannar & Sontag 2020);"
-          "\n    expected cost on a 30% held-out split (the expert's draws averaged out)")
+    print("\n[4] digits, expert right on classes < k and uniform otherwise (Mozannar & "
+          "Sontag 2020);\n    expected cost on a 30% held-out split (the expert's draws "
+          "averaged out)")
     for k in (2, 5, 8):
         d = simulate.digits_scenario(k, random_state=0)
-        tr, te = train_test_split(np.arange(len(d.y)), test_size=0.3, random_state=0, stratify=d.y)
+        tr, te = train_test_split(np.arange(len(d.y)), test_size=0.3, random_state=0,
+                                  stratify=d.y)
         exp_expert = np.where(d.y[te] < k, 0.0, 0.9)
         line = [f"  k={k}:"]
         for name, make in [("plugin", lambda: PluginRouter(random_state=0)),
@@ -157,7 +167,8 @@ def bench_digits() -> None:
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--quick", action="store_true", help="smaller fit benchmark (20,000 cases)")
+    parser.add_argument("--quick", action="store_true",
+                        help="smaller fit benchmark (20,000 cases)")
     args = parser.parse_args()
     bench_fit(20_000 if args.quick else 100_000)
     bench_score()

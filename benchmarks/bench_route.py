@@ -13,9 +13,9 @@ What it does:
    rounded to 5 decimals) as Parquet and as CSV;
 3. routes each file in a fresh child process (``python -c``) and reads the child's own
    wall time and peak resident memory (``resource.getrusage(RUSAGE_SELF).ru_maxrss``,
-   kilobytes on Linux), for the priced (default) mode; the exact LP mode (``--exact``) runs
-   on the first 100,000 cases only (HiGHS on a million-case LP takes minutes; it is meant
-   for batches).
+   kilobytes on Linux; CPU seconds from the same call), for the priced (default) mode; the
+   exact LP mode (``--exact``) runs on the first 100,000 cases only (HiGHS on a million-case
+   LP takes minutes; it is meant for batches).
 
 Run: ``.venv/bin/python benchmarks/bench_route.py [--cases 1000000] [--keep DIR]``.
 """
@@ -46,8 +46,10 @@ from routeplan.freezing import route_file
 t1 = time.perf_counter()
 result = route_file(sys.argv[1], sys.argv[2], sys.argv[3], exact=sys.argv[4] == "exact")
 t2 = time.perf_counter()
-peak_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+usage = resource.getrusage(resource.RUSAGE_SELF)
+peak_mb = usage.ru_maxrss / 1024
 print(json.dumps({"import_s": t1 - t0, "route_s": t2 - t1, "total_s": t2 - t0, "peak_mb": peak_mb,
+                  "cpu_s": usage.ru_utime + usage.ru_stime,
                   "workload": {w["route"]: w["share"] for w in result.workload},
                   "capacity": {w["route"]: w["capacity"] for w in result.workload},
                   "n_cases": result.n_cases}))
@@ -125,6 +127,7 @@ def main() -> None:
     args = parser.parse_args()
     folder = Path(tempfile.mkdtemp(prefix="bench_route_")) if args.keep is None else args.keep
     folder.mkdir(parents=True, exist_ok=True)
+    print("load average (1, 5, 15 min) at the start: " + ", ".join(f"{v:.2f}" for v in os.getloadavg()))
     try:
         t = time.perf_counter()
         policy = build_policy(folder)
@@ -136,12 +139,15 @@ def main() -> None:
         runs = [("Parquet -> Parquet, priced", parquet, folder / "out.parquet", "priced"),
                 ("CSV -> CSV, priced", csv, folder / "out.csv", "priced"),
                 (f"Parquet {min(args.cases, EXACT_CASES):,}, exact LP", small, folder / "out_exact.parquet", "exact")]
-        print(f"\n{'run':32} {'route s':>8} {'process s':>10} {'peak MB':>8} {'time/target':>12} {'mem/target':>11}")
+        print(f"\n{'run':32} {'route s':>8} {'process s':>10} {'cpu s':>6} {'peak MB':>8} {'time/target':>12} "
+              f"{'mem/target':>11}")
         for label, cases, out, mode in runs:
             info = run_child(policy, cases, out, mode)
-            print(f"{label:32} {info['route_s']:8.2f} {info['process_wall_s']:10.2f} {info['peak_mb']:8.0f} "
+            print(f"{label:32} {info['route_s']:8.2f} {info['process_wall_s']:10.2f} {info['cpu_s']:6.1f} "
+                  f"{info['peak_mb']:8.0f} "
                   f"{info['process_wall_s'] / TARGET_SECONDS:12.2f} {info['peak_mb'] / TARGET_MB:11.2f}")
-            shares = ", ".join(f"{k} {v:.3f}" + ("" if info["capacity"][k] is None else f" (cap {info['capacity'][k]:g})")
+            caps = info["capacity"]
+            shares = ", ".join(f"{k} {v:.3f}" + ("" if caps[k] is None else f" (cap {caps[k]:g})")
                                for k, v in info["workload"].items())
             print(f"{'':32} workload: {shares}")
         print(f"\ntargets: {TARGET_SECONDS:g} s, {TARGET_MB:g} MB; ratios below 1 meet them "

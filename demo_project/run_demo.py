@@ -2,15 +2,19 @@
 
 Usage::
 
-    python demo_project/run_demo.py [--rounds 4] [--budget 25] [--seed 7] [--n 4000]
+    python demo_project/run_demo.py [--rounds 4] [--budget 25] [--seed 7] [--n 4000] [--max-epochs 40]
 
-The script deletes and recreates ``demo_project/work/``, writes the invented data
-there, and then drives routeplan exactly as a user would, printing every command
-before it runs it (as ``$ routeplan ...``, run from inside ``demo_project/work/``).
-Steps whose command this routeplan does not have yet are skipped with a note.
-If a command fails the demo stops with its exit code and a message saying which
-step failed. At the end it prints a short summary: what happened, where the files
-are, and what to try next.
+The script deletes and recreates ``demo_project/work/``, writes the invented data there,
+and drives routeplan as a user would, printing every command before it runs it (as
+``$ routeplan ...``, run from inside ``demo_project/work/``).
+
+It fits a router on the historical answers alone ("round 0") and again after every
+labelling round. After each fit it freezes a routing policy, routes the new tiles with
+it, and grades the routed tiles against their hidden grades: the true cost per tile
+(wrong grades plus fees), which only invented data can give. It prints that beside the
+fit's own held-out estimate, round by round, and ends with a short summary. Routine steps
+print one line each; the full fit, competence, freeze and route output is shown in the
+last round only. If a command fails, the demo stops with that command's exit code.
 """
 
 from __future__ import annotations
@@ -18,7 +22,6 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import re
 import shlex
 import shutil
 import subprocess
@@ -47,31 +50,33 @@ class DemoStopped(Exception):
         self.code = code
 
 
-def _child_env() -> dict[str, str]:
-    """The environment for routeplan: ours, with room for wide tables when piped."""
-    env = dict(os.environ)
-    env.setdefault("COLUMNS", str(max(110, shutil.get_terminal_size(fallback=(110, 24)).columns)))
-    return env
+def _width() -> int:
+    """Columns for tables: the terminal's, but at least 110 so piped output stays unwrapped."""
+    return max(110, shutil.get_terminal_size(fallback=(110, 24)).columns)
 
 
-def _routeplan(args: list[str], *, capture: bool = False, show: bool = True) -> subprocess.CompletedProcess:
-    """Run ``routeplan --workspace workspace ARGS`` in WORK; stop the demo if it fails."""
+def _routeplan(args: list[str], *, quiet: bool = False) -> str:
+    """Run ``routeplan --workspace workspace ARGS`` in WORK; stop the demo if it fails.
+
+    With ``quiet`` the output is captured (and returned) instead of shown.
+    """
     full = ["--workspace", WORKSPACE, *args]
-    if show:
-        print(f"\n$ routeplan {shlex.join(full)}", flush=True)
+    print(f"\n$ routeplan {shlex.join(full)}", flush=True)
     proc = subprocess.run(
         [sys.executable, "-m", "routeplan", *full],
-        cwd=WORK,
-        text=True,
-        capture_output=capture,
-        env=_child_env(),
+        cwd=WORK, text=True, capture_output=quiet, env={**os.environ, "COLUMNS": str(_width())},
     )
     if proc.returncode != 0:
-        if capture:
-            sys.stdout.write(proc.stdout or "")
-            sys.stderr.write(proc.stderr or "")
-        raise DemoStopped(f"`routeplan {shlex.join(args)}` failed with exit code {proc.returncode}.", proc.returncode or 1)
-    return proc
+        if quiet:
+            sys.stdout.write(proc.stdout)
+            sys.stderr.write(proc.stderr)
+        raise DemoStopped(f"`routeplan {shlex.join(args)}` failed with exit code {proc.returncode}.", max(proc.returncode, 1))
+    return proc.stdout or ""
+
+
+def _routeplan_json(args: list[str]) -> Any:
+    """Run a routeplan command with ``--json`` and return what it printed, parsed."""
+    return json.loads(_routeplan([*args, "--json"], quiet=True))
 
 
 def _python(script: str, args: list[str]) -> None:
@@ -79,201 +84,108 @@ def _python(script: str, args: list[str]) -> None:
     print(f"\n$ python {shlex.join([f'../{script}', *args])}", flush=True)
     proc = subprocess.run([sys.executable, str(HERE / script), *args], cwd=WORK, text=True)
     if proc.returncode != 0:
-        raise DemoStopped(f"`{script}` failed with exit code {proc.returncode}.", proc.returncode or 1)
+        raise DemoStopped(f"`{script}` failed with exit code {proc.returncode}.", max(proc.returncode, 1))
 
 
-class Commands:
-    """Which routeplan commands (and options) exist, read from their ``--help`` text."""
-
-    def __init__(self) -> None:
-        self._names: dict[tuple[str, ...], set[str] | None] = {}
-        self._help: dict[tuple[str, ...], str] = {}
-        self.skipped: list[str] = []
-
-    def skip(self, what: str) -> None:
-        """Say (and remember) that a step is skipped because this routeplan lacks its command."""
-        print(f"\n(skipped: this routeplan has no `{what}` command yet)")
-        if what not in self.skipped:
-            self.skipped.append(what)
-
-    def help_text(self, path: tuple[str, ...]) -> str:
-        """The ``--help`` output of a command (empty if it has none)."""
-        if path not in self._help:
-            proc = subprocess.run(
-                [sys.executable, "-m", "routeplan", *path, "--help"],
-                cwd=WORK, text=True, capture_output=True,
-            )
-            self._help[path] = proc.stdout if proc.returncode == 0 else ""
-        return self._help[path]
-
-    def has(self, *path: str) -> bool:
-        """True if ``routeplan PATH...`` is a command or group."""
-        for depth in range(len(path)):
-            parent, name = path[:depth], path[depth]
-            if name not in self._subcommands(parent):
-                return False
-        return True
-
-    def has_option(self, path: tuple[str, ...], option: str) -> bool:
-        """True if the command's help mentions ``option``."""
-        return re.search(rf"(?<![\w-]){re.escape(option)}(?![\w-])", self.help_text(path)) is not None
-
-    def _subcommands(self, parent: tuple[str, ...]) -> set[str]:
-        """Names listed under ``Commands:`` in a group's help."""
-        if parent not in self._names:
-            names: set[str] = set()
-            in_block = False
-            for line in self.help_text(parent).splitlines():
-                if re.match(r"^\S.*:\s*$", line):
-                    in_block = line.strip().lower() == "commands:"
-                    continue
-                match = re.match(r"^\s{1,8}([a-z][\w-]*)(\s|$)", line)
-                if in_block and match:
-                    names.add(match.group(1))
-            self._names[parent] = names
-        return self._names[parent] or set()
+def _say(line: str) -> None:
+    """Print the one-line result of a quiet step."""
+    print(f"  -> {line}", flush=True)
 
 
-
-
-def _round_id(payload: Any) -> str | None:
-    """Find the round's identifier in the JSON that ``round plan --json`` prints."""
-    if isinstance(payload, dict):
-        for key in ("round", "round_id", "id", "number", "name"):
-            value = payload.get(key)
-            if isinstance(value, (int, str)) and not isinstance(value, bool):
-                return str(value)
-            if isinstance(value, dict):
-                found = _round_id(value)
-                if found is not None:
-                    return found
-    return None
-
-
-def _describe_plan(payload: Any) -> None:
-    """Print the plain numbers of a round plan's JSON, one per line."""
-    if not isinstance(payload, dict):
-        return
-    for key, value in payload.items():
-        if isinstance(value, (int, float, str)) and not isinstance(value, bool):
-            print(f"  {key}: {value}")
-        elif isinstance(value, dict) and all(isinstance(v, (int, float, str)) for v in value.values()) and len(value) <= 10:
-            print(f"  {key}: " + ", ".join(f"{k}={v}" for k, v in value.items()))
-        elif isinstance(value, list) and value and all(isinstance(v, str) for v in value):
-            for line in value:
-                print(f"  {key}: {line}")
-        elif isinstance(value, list) and all(isinstance(v, dict) and "expert" in v for v in value):
-            for row in value:
-                plain = {k: v for k, v in row.items() if k != "expert" and isinstance(v, (int, float, str))}
-                print(f"  {row['expert']}: " + ", ".join(f"{k}={v:.3g}" if isinstance(v, float) else f"{k}={v}" for k, v in plain.items()))
-
-
-def _setup(cmds: Commands, summary: dict[str, Any]) -> None:
+def _setup() -> None:
     """Initialise the workspace and bring in tiles, truth, experts and history."""
-    if not cmds.has("init"):
-        raise DemoStopped("this routeplan has no `init` command; is the package installed in this environment?", 1)
     _routeplan(["init", "--labels", ",".join(tileworks.LABELS), "--error-cost", "1"])
-    if cmds.has("cases", "import"):
-        extra = ["--id-column", "case_id"]
-        if cmds.has_option(("cases", "import"), "--group-column"):
-            extra += ["--group-column", "kiln"]
-        else:
-            print("\n(note: `cases import` has no --group-column yet, so the kiln is not used as a group)")
-        _routeplan(["cases", "import", f"{DATA}/tiles.csv", *extra])
-    else:
-        cmds.skip("cases import")
-    if cmds.has("truth", "import"):
-        _routeplan(["truth", "import", f"{DATA}/truth.csv"])
-    else:
-        cmds.skip("truth import")
-    _add_experts(cmds)
-    if cmds.has("answers", "import"):
-        _routeplan(["answers", "import", f"{DATA}/history.csv"])
-    else:
-        cmds.skip("answers import")
-    if cmds.has("status"):
-        _routeplan(["status"])
-    summary["setup"] = True
+    _routeplan(["cases", "import", f"{DATA}/tiles.csv", "--id-column", "case_id", "--group-column", "kiln"])
+    _routeplan(["truth", "import", f"{DATA}/truth.csv"])
+    _routeplan(["experts", "import", f"{DATA}/experts.csv"])
+    _routeplan(["answers", "import", f"{DATA}/history.csv"])
+    _routeplan(["status"])
 
 
-def _add_experts(cmds: Commands) -> None:
-    """Register the experts: all at once if `experts import` exists, else one by one."""
-    if cmds.has("experts", "import"):
-        _routeplan(["experts", "import", f"{DATA}/experts.csv"])
-    elif cmds.has("experts", "add"):
-        for row in pd.read_csv(WORK / DATA / "experts.csv").itertuples(index=False):
-            _routeplan(["experts", "add", str(row.name), "--fee", str(row.fee), "--capacity", str(row.capacity)])
-    else:
-        cmds.skip("experts import")
+def _buy_round(r: int, budget: float, seed: int) -> dict[str, Any]:
+    """Plan a round, export its sheets, let the simulated experts answer, import, close."""
+    plan = _routeplan_json(["round", "plan", "--budget", f"{budget:g}", "--seed", str(seed + r)])
+    per_expert = ", ".join(f"{e['expert']} {e['cases']}" for e in plan["experts"])
+    _say(f"round {plan['round']}: {plan['assignments']} assignments ({per_expert}), fees {plan['spend']:.2f}")
+    round_id = str(plan["round"])
+    sheets, answers = f"sheets/{round_id}", f"answers/{round_id}"
+    _routeplan(["round", "export", round_id, "--out", sheets])
+    _python("play_experts.py", [sheets, "--out", answers, "--data", DATA, "--seed", str(seed)])
+    files = sorted(str(p.relative_to(WORK)) for p in (WORK / answers).glob("*.csv"))
+    if files:
+        _routeplan(["answers", "import", *files])
+    _routeplan(["round", "close", round_id])
+    return {"assignments": int(plan["assignments"]), "spend": float(plan["spend"])}
 
 
-def _rounds(cmds: Commands, n_rounds: int, budget: float, seed: int, summary: dict[str, Any]) -> None:
-    """Plan, export, answer, import, fit and inspect, ``n_rounds`` times."""
-    if not (cmds.has("round", "plan") and cmds.has("round", "export")):
-        cmds.skip("round plan / round export")
-        _fit_and_look(cmds, seed)  # still learn from the truth and the history
-        return
-    fees = pd.read_csv(WORK / DATA / "experts.csv").set_index("name")["fee"]
-    bought: dict[str, int] = {}
-    for r in range(1, n_rounds + 1):
-        print(f"\n=== Round {r} of {n_rounds} ===")
-        proc = _routeplan(["round", "plan", "--budget", f"{budget:g}", "--seed", str(seed + r), "--json"], capture=True)
-        try:
-            payload = json.loads(proc.stdout)
-        except json.JSONDecodeError as exc:
-            raise DemoStopped(f"`round plan --json` printed no JSON ({exc}); its output began: {proc.stdout[:200]!r}") from exc
-        _describe_plan(payload)
-        round_id = _round_id(payload)
-        if round_id is None:
-            raise DemoStopped(f"could not find the round's id in the JSON of `round plan` (keys: {sorted(payload) if isinstance(payload, dict) else type(payload).__name__})")
-        sheets, answers = f"sheets/{round_id}", f"answers/{round_id}"
-        _routeplan(["round", "export", round_id, "--out", sheets])
-        if not any((WORK / sheets).glob("*.csv")):
-            print("(the plan chose no tiles; nothing to answer this round)")
-            continue
-        _python("play_experts.py", [sheets, "--out", answers, "--data", DATA, "--seed", str(seed)])
-        files = []
-        for path in sorted((WORK / answers).glob("*.csv")):
-            n_rows = len(pd.read_csv(path))
-            if n_rows:
-                files.append(str(path.relative_to(WORK)))
-                bought[path.stem] = bought.get(path.stem, 0) + n_rows
-        if files and cmds.has("answers", "import"):
-            _routeplan(["answers", "import", *files])
-        _fit_and_look(cmds, seed)
-        summary["rounds"] = r
-    summary["bought"] = bought
-    summary["fees_spent"] = float(sum(fees.get(name, 0.0) * count for name, count in bought.items()))
+def _fit(seed: int, max_epochs: int | None, full: bool) -> dict[str, Any]:
+    """Fit the routers; return the kept router's held-out system cost with its 95% interval."""
+    cap = ["--max-epochs", str(max_epochs)] if max_epochs else []
+    report = _routeplan_json(["fit", "--seed", str(seed), *cap])
+    table = pd.DataFrame(report["table"]).set_index("router")
+    kept = table.loc[report["chosen"]]
+    model_alone = table.loc[[name for name in table.index if name.startswith("model alone")]]
+    estimate = {"router": report["chosen"], "cost": kept["system_cost"], "low": kept["ci_low"], "high": kept["ci_high"]}
+    _say(f"kept {report['chosen']}: estimated cost {kept['system_cost']:.3f} [{kept['ci_low']:.3f}, {kept['ci_high']:.3f}]"
+         f" per tile on {report['n_selection']} held-out tiles"
+         + (f" (model alone {model_alone['system_cost'].iloc[0]:.3f})" if len(model_alone) else ""))
+    if full:
+        _show_fit_table(report)
+    return estimate
 
 
-def _fit_and_look(cmds: Commands, seed: int) -> None:
-    """Fit the router and show the experts' competence, where those commands exist."""
-    if cmds.has("fit"):
-        _routeplan(["fit", "--seed", str(seed)])
-    else:
-        cmds.skip("fit")
-    if cmds.has("competence"):
+def _show_fit_table(report: dict[str, Any]) -> None:
+    """Show the fit's full table, rendered by routeplan from the JSON the command printed."""
+    from rich.console import Console
+
+    from routeplan.fitting import FitReport
+    from routeplan.report import render_fit
+
+    print("  (the table `fit` prints without --json, rendered from that JSON:)")
+    fit_report = FitReport(
+        chosen=report["chosen"], model_ids=report["model_ids"], table=pd.DataFrame(report["table"]),
+        notes=report["notes"], answers_per_expert=report["answers_per_expert"], n_train=report["n_train"],
+        n_selection=report["n_selection"], calibration=report.get("calibration") or {},
+    )
+    Console(width=_width(), soft_wrap=False).print(render_fit(fit_report))
+
+
+def _competence(full: bool) -> None:
+    """Show each expert's accuracy against truth: the full report, or one line from its JSON."""
+    if full:
         _routeplan(["competence"])
+        return
+    rows = _routeplan_json(["competence"])["accuracy"]
+    _say("accuracy against truth: " + ", ".join(
+        f"{row['expert']} {row['accuracy']:.2f} [{row['accuracy_low']:.2f}, {row['accuracy_high']:.2f}]"
+        for row in rows if row["expert"] != "model"))
+
+
+def _freeze_and_route(r: int, seed: int, full: bool) -> dict[str, Any]:
+    """Freeze the kept router, route the new tiles with it, and grade them against the hidden truth."""
+    policy, routed = f"policies/round-{r}.json", f"routed/round-{r}.csv"
+    for folder in ("policies", "routed"):
+        (WORK / folder).mkdir(exist_ok=True)
+    if full:
+        _routeplan(["freeze", "--out", policy])
+        _routeplan(["route", "--policy", policy, f"{DATA}/new_tiles.csv", "--out", routed])
     else:
-        cmds.skip("competence")
-
-
-def _freeze_and_route(cmds: Commands, summary: dict[str, Any]) -> None:
-    """Freeze the policy and route the new tiles with it."""
-    if not cmds.has("freeze"):
-        cmds.skip("freeze")
-        return
-    _routeplan(["freeze", "--out", "policy.json"])
-    summary["policy"] = True
-    if not cmds.has("route"):
-        cmds.skip("route")
-        return
-    _routeplan(["route", "--policy", "policy.json", f"{DATA}/new_tiles.csv", "--out", "routed.csv"])
-    summary["routed"] = True
+        frozen = _routeplan_json(["freeze", "--out", policy])
+        _say(f"policy #{frozen['policy_id']} ({frozen['router']}, model #{frozen['model_id']}) -> {policy}")
+        result = _routeplan_json(["route", "--policy", policy, f"{DATA}/new_tiles.csv", "--out", routed])
+        shares = ", ".join(f"{w['route']} {w['cases']}" for w in result["workload"])
+        _say(f"routed {result['n_cases']} new tiles -> {routed}: {shares}")
+    check = check_routed(pd.read_csv(WORK / routed, dtype=str, keep_default_na=False), WORK / DATA, seed)
+    print(f"  (demo only) graded against the hidden grades: {check['n_wrong']} wrong + fees {check['fees']:.2f}"
+          f" = true cost {check['cost_per_tile']:.3f} per tile")
+    return check
 
 
 def check_routed(routed: pd.DataFrame, data_dir: Path, seed: int) -> dict[str, Any]:
     """Score a routing of the new tiles against the hidden grades (only a demo can do this).
+
+    Tiles routed to the model take the model's label; tiles routed to an expert take that
+    expert's simulated answer (played from its hidden profile with ``seed``) and its fee.
 
     Parameters
     ----------
@@ -287,108 +199,125 @@ def check_routed(routed: pd.DataFrame, data_dir: Path, seed: int) -> dict[str, A
     Returns
     -------
     dict
-        ``n``, ``routes`` (count per route), ``accuracy``, ``fees`` and ``cost_per_tile``
-        (wrong grades plus fees, per tile).
+        ``n``, ``routes`` (count per route), ``n_wrong``, ``accuracy``, ``fees``,
+        ``cost_per_tile`` (wrong grades plus fees, per tile) and ``cost_se`` (its standard error
+        over tiles).
     """
     world, profiles = tileworks.load_world(data_dir)
     fees = pd.read_csv(data_dir / "experts.csv").set_index("name")["fee"]
     row_of = pd.Series(range(len(world)), index=world["case_id"].to_numpy())
-    routed = routed.assign(case_id=routed["case_id"].astype(str), route=routed["route"].astype(str))
-    is_model = (routed["route"] == "model").to_numpy()
-    final = np.where(is_model, routed["label"].astype(str).to_numpy(dtype=object), None).astype(object)
-    fee_total = 0.0
-    for expert in sorted(set(routed["route"]) - {"model"}):
-        mask = (routed["route"] == expert).to_numpy()
+    case_id, route = routed["case_id"].astype(str), routed["route"].astype(str)
+    final = np.where(route == "model", routed["label"].astype(str), None).astype(object)
+    fee = np.zeros(len(routed))
+    for expert in sorted(set(route) - {"model"}):
+        mask = (route == expert).to_numpy()
         if expert in profiles["experts"]:
-            positions = row_of.loc[routed["case_id"][mask]].to_numpy(dtype=int)
-            final[mask] = tileworks.play_expert(expert, profiles, world, positions, seed)
-        fee_total += float(fees.get(expert, 0.0)) * int(mask.sum())
-    truth = world.set_index("case_id").loc[routed["case_id"], "truth"].to_numpy()
-    n_right = int((final == truth).sum())
+            final[mask] = tileworks.play_expert(expert, profiles, world, row_of.loc[case_id[mask]].to_numpy(dtype=int), seed)
+        fee[mask] = float(fees.get(expert, 0.0))
+    truth = world.set_index("case_id").loc[case_id, "truth"].to_numpy()
+    cost = (final != truth).astype(float) + fee
     n = len(routed)
     return {
         "n": n,
-        "routes": routed["route"].value_counts().to_dict(),
-        "accuracy": n_right / n if n else float("nan"),
-        "fees": fee_total,
-        "cost_per_tile": ((n - n_right) + fee_total) / n if n else float("nan"),
+        "routes": route.value_counts().to_dict(),
+        "n_wrong": int((final != truth).sum()),
+        "accuracy": float((final == truth).mean()) if n else float("nan"),
+        "fees": float(fee.sum()),
+        "cost_per_tile": float(cost.mean()) if n else float("nan"),
+        "cost_se": float(cost.std(ddof=1) / np.sqrt(n)) if n > 1 else float("nan"),
     }
 
 
-def _baselines(data_dir: Path, seed: int) -> dict[str, float]:
-    """Cost per new tile if every tile went to one expert (for comparison)."""
-    world, profiles = tileworks.load_world(data_dir)
-    new_ids = pd.read_csv(data_dir / "new_tiles.csv")["case_id"].astype(str)
-    out = {}
-    for expert in tileworks.default_experts()["name"]:
-        routed = pd.DataFrame({"case_id": new_ids, "route": expert, "label": ""})
-        out[expert] = check_routed(routed, data_dir, seed)["cost_per_tile"]
-    return out
+def _single_expert_costs(data_dir: Path, seed: int) -> dict[str, float]:
+    """True cost per new tile if every tile went to one expert (for comparison)."""
+    new_ids = pd.read_csv(data_dir / "new_tiles.csv", dtype=str)["case_id"]
+    return {
+        expert: check_routed(pd.DataFrame({"case_id": new_ids, "route": expert, "label": ""}), data_dir, seed)["cost_per_tile"]
+        for expert in tileworks.default_experts()["name"]
+    }
 
 
-def _print_summary(cmds: Commands, summary: dict[str, Any], seed: int) -> None:
-    """Tell a newcomer what happened, where the files are and what to try next."""
-    print("\n" + "=" * 72 + "\nSummary\n" + "=" * 72)
-    print("The invented Marrowdene Tileworks grades fired roof tiles first / second / reject.")
-    print(f"Data: {WORK / DATA} (tiles.csv, truth.csv, new_tiles.csv, experts.csv, history.csv).")
-    print(f"Workspace: {WORK / WORKSPACE}")
-    if summary.get("rounds"):
-        bought = ", ".join(f"{k} {v}" for k, v in sorted(summary["bought"].items()))
-        print(f"Ran {summary['rounds']} round(s); answers bought: {bought}; fees spent: {summary['fees_spent']:.2f}"
-              " (one wrong grade costs 1).")
-        print(f"Sheets per round: {WORK / 'sheets'}; simulated answers: {WORK / 'answers'}")
-    if summary.get("policy"):
-        print(f"Frozen routing policy: {WORK / 'policy.json'}")
-    if summary.get("routed"):
-        routed = pd.read_csv(WORK / "routed.csv", dtype=str, keep_default_na=False)
-        check = check_routed(routed, WORK / DATA, seed)
-        routes = ", ".join(f"{k} {v}" for k, v in sorted(check["routes"].items()))
-        print(f"Routed {check['n']} new tiles -> {WORK / 'routed.csv'}: {routes}.")
-        print("Checked against the hidden grades (possible only because the data are invented):")
-        print(f"  accuracy {check['accuracy']:.3f}, fees {check['fees']:.1f}, cost per tile {check['cost_per_tile']:.3f}")
-        for expert, cost in _baselines(WORK / DATA, seed).items():
-            print(f"  for comparison, every tile to {expert} (ignoring its capacity): cost per tile {cost:.3f}")
-    if cmds.skipped:
-        print("Not run, because this routeplan lacks the command: " + ", ".join(cmds.skipped) + ".")
-    script = Path(sys.executable).with_name("routeplan")
-    routeplan = str(script) if script.exists() else f"{sys.executable} -m routeplan"
+def _progress_table(rows: list[dict[str, Any]]) -> str:
+    """The per-round table: what was bought so far, the fit's estimate and the true cost."""
+    head = f"{'round':>5}  {'answers bought':>14}  {'fees spent':>10}  {'estimated cost [95% CI]':>23}  {'true cost':>9}"
+    lines = [head, "-" * len(head)]
+    for row in rows:
+        estimate = f"{row['cost']:.3f} [{row['low']:.3f}, {row['high']:.3f}]"
+        lines.append(f"{row['round']:>5}  {row['bought']:>14}  {row['spent']:>10.2f}  {estimate:>23}  {row['true']:>9.3f}")
+    return "\n".join(lines)
+
+
+def _print_summary(rows: list[dict[str, Any]], last: dict[str, Any], seed: int) -> None:
+    """Tell a newcomer what happened, how the cost moved, where the files are, what to try next."""
+    print("\n" + "=" * 78 + "\nSummary\n" + "=" * 78)
+    print("The invented Marrowdene Tileworks grades fired roof tiles first / second / reject;")
+    print("one wrong grade costs 1 and each expert charges a fee per tile in the same unit.")
+    print("Round 0 fits on the historical answers only; each later round first buys answers.\n")
+    print(_progress_table(rows))
+    print("\nestimated cost: `routeplan fit`'s own held-out estimate for the kept router (pool tiles with truth;")
+    print("  where an expert's answer is unknown, the expected cost from its correctness model stands in).")
+    print(f"true cost: the frozen policy routed {last['n']} new tiles; each tile was graded against its hidden")
+    print("  grade (by the model's label or the chosen expert's simulated answer), plus the fees.")
+    print(f"  Possible only because the data are invented; standard error about {last['cost_se']:.3f} per row.")
+    routes = ", ".join(f"{k} {v}" for k, v in sorted(last["routes"].items()))
+    print(f"Last policy's routes: {routes}; for comparison, every new tile to one expert (ignoring capacity):")
+    print("  " + ", ".join(f"{name} {cost:.3f}" for name, cost in _single_expert_costs(WORK / DATA, seed).items()))
+    print(f"\nFiles (under {WORK}): data/ (the invented data), workspace/, sheets/ and answers/ (per round),")
+    print("  policies/round-N.json (+ .md policy cards), routed/round-N.csv.")
+    routeplan = f"{Path(sys.executable).with_name('routeplan')} --workspace {WORKSPACE}"
     print("\nWhat to try next:")
     print(f"  cd {WORK}")
-    print(f"  {routeplan} --workspace {WORKSPACE} status")
-    if cmds.has("competence"):
-        print(f"  {routeplan} --workspace {WORKSPACE} competence")
-    if summary.get("rounds"):
-        print("  rerun the demo with --budget 10 or --rounds 8 and compare the cost per tile;")
-        dry = " --dry-run" if cmds.has_option(("round", "plan"), "--dry-run") else ""
-        print(f"  {routeplan} --workspace {WORKSPACE} round plan --budget 25 --strategy random{dry}"
-              "   (what does the default strategy gain?)")
+    print(f"  {routeplan} status")
+    print(f"  {routeplan} competence --by region")
+    print(f"  {routeplan} round plan --budget 25 --strategy random --dry-run   (what does the default strategy pick instead?)")
+    print(f"  {Path(sys.executable).with_name('routeplan')} rehearse --rounds 4 --budget 25   (a simulated rehearsal, no workspace)")
+    print("  rerun the demo with --budget 10 or --rounds 8 and compare the table;")
     print(f"  peek at {WORK / DATA / tileworks.PROFILES_FILE} to see how good each expert really is.")
+
+
+def _run(args: argparse.Namespace) -> tuple[list[dict[str, Any]], dict[str, Any]]:
+    """Set up, then fit / freeze / route after round 0 and after each bought round."""
+    _python("generate_cases.py", ["--out", DATA, "--n", str(args.n), "--seed", str(args.seed)])
+    _setup()
+    rows, bought, spent, check = [], 0, 0.0, {}
+    for r in range(args.rounds + 1):
+        last = r == args.rounds
+        title = "round 0: the historical answers only" if r == 0 else f"round {r} of {args.rounds}"
+        print(f"\n=== {title.capitalize()}{' (full output)' if last else ''} ===")
+        if r > 0:
+            got = _buy_round(r, args.budget, args.seed)
+            bought, spent = bought + got["assignments"], spent + got["spend"]
+        estimate = _fit(args.seed, args.max_epochs, full=last)
+        _competence(full=last)
+        check = _freeze_and_route(r, args.seed, full=last)
+        rows.append({"round": r, "bought": bought, "spent": spent, **estimate, "true": check["cost_per_tile"]})
+    if args.rounds > 0:
+        _routeplan(["status"])
+    return rows, check
 
 
 def main(argv: list[str] | None = None) -> int:
     """Command-line entry point; returns the exit code."""
     parser = argparse.ArgumentParser(description="Run the Marrowdene Tileworks demo through the routeplan CLI.")
-    parser.add_argument("--rounds", type=int, default=4, help="labelling rounds (default 4)")
+    parser.add_argument("--rounds", type=int, default=4, help="labelling rounds after round 0 (default 4)")
     parser.add_argument("--budget", type=float, default=25.0, help="fee budget per round (default 25)")
     parser.add_argument("--seed", type=int, default=7, help="seed for data, planning, fitting and experts (default 7)")
     parser.add_argument("--n", type=int, default=4000, help="pool tiles (default 4000)")
+    parser.add_argument("--max-epochs", type=int, default=None, help="cap on each fit's training epochs (default: routeplan's own)")
     args = parser.parse_args(argv)
+    if args.rounds < 0:
+        parser.error("--rounds must be at least 0")
     if WORK.exists():
         shutil.rmtree(WORK)
     WORK.mkdir(parents=True)
     print(f"Demo folder: {WORK} (commands below run from there)")
-    summary: dict[str, Any] = {}
-    cmds = Commands()
     try:
-        _python("generate_cases.py", ["--out", DATA, "--n", str(args.n), "--seed", str(args.seed)])
-        _setup(cmds, summary)
-        _rounds(cmds, args.rounds, args.budget, args.seed, summary)
-        _freeze_and_route(cmds, summary)
+        rows, last = _run(args)
     except DemoStopped as exc:
         print(f"\nDemo stopped: {exc}", file=sys.stderr)
         print(f"Everything written so far is in {WORK}.", file=sys.stderr)
         return exc.code
-    _print_summary(cmds, summary, args.seed)
+    _print_summary(rows, last, args.seed)
     return 0
 
 

@@ -250,7 +250,8 @@ def _decisions(policy: Policy, case_ids: Any, costs: np.ndarray, routes: np.ndar
     labels = np.asarray(list(policy.labels) + [""] * len(policy.experts), dtype=object)
     rows = np.arange(routes.shape[0])
     columns: dict[str, Any] = {
-        "case_id": np.asarray(case_ids, dtype=object),
+        "case_id": (case_ids if isinstance(case_ids, pd.api.extensions.ExtensionArray)
+                    else np.asarray(case_ids, dtype=object)),
         "route": names[routes],
         "label": labels[routes],
         "expected_cost": costs[rows, routes] if routes.size else np.zeros(0),
@@ -298,6 +299,9 @@ def route_frame(frame: pd.DataFrame, manifest: Mapping[str, Any], arrays: Mappin
     missing = [c for c in [id_column, *names] if c not in frame.columns]
     if missing:
         raise InputError(f"missing column(s) {', '.join(repr(m) for m in missing)}")
+    if frame[id_column].isna().any():
+        at = int(np.argmax(frame[id_column].isna().to_numpy()))
+        raise InputError(f"row {frame.index[at]!r}: column '{id_column}' is empty")
     X = _frame_features(frame, names)
     costs = _score(policy, X)
     from .routing import route_with_prices
@@ -463,7 +467,7 @@ def _check_out_path(out: Path, inputs: list[Path]) -> None:
         raise InputError(f"the folder {folder} does not exist", source=str(out))
 
 
-def _read_cases(path: str | os.PathLike, id_column: str, names: list[str]) -> tuple[np.ndarray, np.ndarray]:
+def _read_cases(path: str | os.PathLike, id_column: str, names: list[str]) -> tuple[Any, np.ndarray]:
     """Read and check a cases file; return the ids and the (n, d) float64 feature matrix.
 
     A fast path reads only the needed columns with pyarrow and checks them vectorised. At
@@ -475,7 +479,8 @@ def _read_cases(path: str | os.PathLike, id_column: str, names: list[str]) -> tu
     return fast if fast is not None else _read_cases_checked(path, id_column, names)
 
 
-def _read_cases_checked(path: str | os.PathLike, id_column: str, names: list[str]) -> tuple[np.ndarray, np.ndarray]:
+def _read_cases_checked(path: str | os.PathLike, id_column: str,
+                        names: list[str]) -> tuple[np.ndarray, np.ndarray]:
     """The careful reader: every problem raised with its file and line."""
     from .files import Table, check_rows, load_schema, read_table
 
@@ -508,7 +513,7 @@ _ID_MAX = 200
 _CONTROL = "[\\x00-\\x1f\\x7f]"
 
 
-def _read_cases_fast(path: Path, id_column: str, names: list[str]) -> tuple[np.ndarray, np.ndarray] | None:
+def _read_cases_fast(path: Path, id_column: str, names: list[str]) -> tuple[Any, np.ndarray] | None:
     """Only the needed columns, read and checked with pyarrow; None if anything looks off."""
     import pyarrow as pa
     import pyarrow.compute as pc
@@ -528,7 +533,7 @@ def _read_cases_fast(path: Path, id_column: str, names: list[str]) -> tuple[np.n
     ids = pc.utf8_trim_whitespace(ids)
     if ids.null_count or not _ids_ok(ids):
         return None
-    X = np.empty((table.num_rows, len(names)), dtype=np.float64)
+    X = np.empty((table.num_rows, len(names)), dtype=np.float64, order="F")  # column by column, contiguous
     for j, name in enumerate(names):
         column = table.column(name)
         if not (pa.types.is_integer(column.type) or pa.types.is_floating(column.type)) or column.null_count:
@@ -536,7 +541,7 @@ def _read_cases_fast(path: Path, id_column: str, names: list[str]) -> tuple[np.n
         X[:, j] = column.cast(pa.float64()).to_numpy()
     if not np.isfinite(X).all():
         return None
-    return ids.to_numpy(zero_copy_only=False).astype(object), X
+    return ids.to_pandas().array, X  # arrow-backed strings: no million Python objects
 
 
 def _ids_ok(ids: Any) -> bool:
@@ -838,6 +843,9 @@ def _freeze_parts(router: Any, params: dict, fit_metrics: dict, pool: Any, model
     if pos.size < 2:
         raise InputError(f"the model has {pos.size} held-out case(s); freezing needs at least 2 to estimate "
                          "its performance (run 'routeplan fit' with more cases with truth)")
+    if pos.size < 30:
+        notes.append(f"only {pos.size} held-out cases: the intervals are wide and the normal interval of "
+                     "the cost is rough; freeze again after fitting on more cases with truth")
     Xs = spec.transform(pool.X[pos])
     ec = np.asarray(router.predict_costs(Xs), dtype=np.float64)
     K = len(params["labels"])
@@ -1019,8 +1027,9 @@ def policy_card(manifest: Mapping[str, Any], *, sha256: str | None = None, path:
     lines += [f"- Frozen: {manifest['created']} ({manifest['format']})"]
     if sha256:
         lines += [f"- sha256: `{sha256}` (`routeplan route` refuses the file if this does not match)"]
-    lines += [f"- Router: {manifest['router']['kind']}; training fingerprint `{manifest['training']['fingerprint'][:16]}...`"
-              f" ({manifest['training'].get('n_cases', '?')} cases, {manifest['training'].get('n_answers', '?')} answers)",
+    training = manifest["training"]
+    lines += [f"- Router: {manifest['router']['kind']}; training fingerprint `{training['fingerprint'][:16]}...`"
+              f" ({training.get('n_cases', '?')} cases, {training.get('n_answers', '?')} answers)",
               ""]
     lines += _card_use(manifest) + _card_experts(manifest) + _card_metrics(manifest, notes)
     lines += _card_baselines(notes) + _card_cautions()
@@ -1032,12 +1041,13 @@ def _card_use(manifest: Mapping[str, Any]) -> list[str]:
     labels = ", ".join(manifest["labels"])
     feats = ", ".join(manifest["features"]["names"])
     cost = manifest.get("error_cost", 1.0)
-    return ["## Intended use", "",
-            f"Route new cases of the same kind as the training pool: for each case, either the model decides "
-            f"one of the labels ({labels}) or the case goes to one of the experts below. The policy reads the "
-            f"feature columns {feats}. It weighs one wrong decision (cost {cost:g}, in the unit of the fees) against each expert's "
-            "fee and holds each expert's capacity (largest share of routed cases). It supports people who "
-            "decide; it is not meant to replace their judgement where a decision needs a licensed person.", ""]
+    text = (f"Route new cases of the same kind as the training pool: for each case, either the model "
+            f"decides one of the labels ({labels}) or the case goes to one of the experts below. The "
+            f"policy reads the feature columns {feats}. It weighs one wrong decision (cost {cost:g}, in "
+            "the unit of the fees) against each expert's fee and holds each expert's capacity (largest "
+            "share of routed cases). It supports people who decide; it is not meant to replace their "
+            "judgement where a decision needs a licensed person.")
+    return ["## Intended use", "", text, ""]
 
 
 def _card_experts(manifest: Mapping[str, Any]) -> list[str]:
@@ -1094,15 +1104,17 @@ def _fmt(value: Any, pattern: str) -> str:
 
 def _card_cautions() -> list[str]:
     """What a team must keep doing."""
-    return ["## Cautions", "",
-            "- Human oversight: keep people in charge; the experts and a responsible person must be able to review, overrule "
-            "and stop the routing, and the model's own decisions should be sampled and checked regularly.",
-            "- Check subgroups: the estimates above are averages over the held-out cases; look at accuracy "
-            "and workload per group, site or region (`routeplan competence --by group`) before relying on it.",
-            "- Validate on local data: re-estimate on a fresh, uniformly drawn audit sample of your own cases; "
-            "`route` warns about cases outside the training range, where no estimate here holds.",
-            "- Regulated work (health, credit, legal and similar): local rules and licensed professional "
-            "practice come first; this policy is decision support, and the decisions it routes remain the "
-            "responsibility of the people and organisations licensed to make them.",
-            "- Fees, capacities and experts change: freeze again when they do, and refit when the cases drift.",
-            ""]
+    items = [
+        "Human oversight: keep people in charge; the experts and a responsible person must be able to "
+        "review, overrule and stop the routing, and the model's own decisions should be sampled and "
+        "checked regularly.",
+        "Check subgroups: the estimates above are averages over the held-out cases; look at accuracy and "
+        "workload per group, site or region (`routeplan competence --by group`) before relying on it.",
+        "Validate on local data: re-estimate on a fresh, uniformly drawn audit sample of your own cases; "
+        "`route` warns about cases outside the training range, where no estimate here holds.",
+        "Regulated work (health, credit, legal and similar): local rules and licensed professional practice "
+        "come first; this policy is decision support, and the decisions it routes remain the responsibility "
+        "of the people and organisations licensed to make them.",
+        "Fees, capacities and experts change: freeze again when they do, and refit when the cases drift.",
+    ]
+    return ["## Cautions", "", *[f"- {item}" for item in items], ""]

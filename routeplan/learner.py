@@ -19,12 +19,19 @@ correctness model is fitted first on the known answers (weighted by the inverse 
 their selection probability) and the unknown option costs are filled with their
 expected value given the truth (:func:`routeplan.costs.expected_cost_vectors`).
 
-Training (shared by all routers): mini-batch Adam in float32, early stopping on the
-validation split's *system cost* -- the mean realised cost of the option each case is
-routed to, with the imputed expected cost where the routed expert's answer is unknown.
-Randomness comes only from ``random_state`` (weights initialised inside
-``torch.random.fork_rng``; batches shuffled by a ``torch.Generator``); ``fit`` uses at
-most two CPU threads and restores the previous setting afterwards.
+Training (shared by all routers): mini-batch Adam in float32 on a training split, with
+early stopping and calibration on a validation split. The score that stops training is
+the validation *system cost* -- the mean realised cost of the option each case is
+routed to, with the imputed expected cost where the routed expert's answer is unknown --
+or the validation loss (``early_stopping``; the plug-in's classifier uses its log-loss
+by default, see :class:`PluginRouter`). Randomness comes only from ``random_state``
+(weights initialised inside ``torch.random.fork_rng``; batches shuffled by a
+``torch.Generator``); ``fit`` uses at most two CPU threads and restores the previous
+setting afterwards.
+
+:func:`fit_candidates` fits several routers and :func:`select_router` compares them on
+held-out cases by system cost with intervals, beside the model alone and each expert
+alone.
 
 Models are stored as plain arrays plus a JSON-able description (:meth:`get_arrays`,
 :func:`router_from_arrays`); nothing is pickled.
@@ -44,6 +51,7 @@ import pandas as pd
 import torch
 import torch.nn.functional as F
 from numpy.typing import ArrayLike
+from scipy.special import expit
 from sklearn.base import BaseEstimator
 from sklearn.model_selection import train_test_split
 from sklearn.utils.validation import check_array, check_is_fitted
@@ -54,6 +62,8 @@ from routeplan import costs as costs_mod
 from routeplan import surrogate as sur
 
 __all__ = [
+    "CANDIDATES",
+    "DEFAULT_CANDIDATES",
     "PluginRouter",
     "SelectionResult",
     "SurrogateRouter",
@@ -83,7 +93,9 @@ def _make_net(n_in: int, n_out: int, head: str, hidden: tuple[int, ...]) -> nn.S
         for h in hidden:
             layers += [nn.Linear(width, int(h)), nn.ReLU(inplace=True)]
             width = int(h)
-    layers.append(nn.Linear(width, n_out))
+    with warnings.catch_warnings():  # n_out = 0 (no experts) is legitimate
+        warnings.filterwarnings("ignore", message="Initializing zero-element tensors")
+        layers.append(nn.Linear(width, n_out))
     return nn.Sequential(*layers)
 
 
@@ -110,6 +122,25 @@ def _forward(net: nn.Module, X: np.ndarray, mean: np.ndarray, scale: np.ndarray)
         for s in range(0, X.shape[0], _CHUNK):
             xb = (X[s:s + _CHUNK] - mean) / scale
             out[s:s + _CHUNK] = net(torch.from_numpy(np.ascontiguousarray(xb, np.float32))).numpy()
+    return out
+
+
+def _by_chunks(fn: Callable[[np.ndarray, Any], np.ndarray], X: np.ndarray,
+               extra: Any = None) -> np.ndarray:
+    """fn(X_chunk, extra_chunk) over row chunks, into one array (bounds peak memory)."""
+    n = X.shape[0]
+    if extra is not None:
+        extra = np.asarray(extra)
+        if extra.shape[0] != n:
+            raise ValueError(f"class_proba has {extra.shape[0]} rows, X has {n}")
+    out = None
+    for s in range(0, max(n, 1), _CHUNK):
+        part = fn(X[s:s + _CHUNK], None if extra is None else extra[s:s + _CHUNK])
+        if n <= _CHUNK:
+            return part
+        if out is None:
+            out = np.empty((n, *part.shape[1:]), dtype=part.dtype)
+        out[s:s + part.shape[0]] = part
     return out
 
 
@@ -332,6 +363,21 @@ def _check_answers_weights(answers: ArrayLike, sample_weight: ArrayLike | None, 
     return A, np.where(known, W, 0.0)
 
 
+def _check_y(y: ArrayLike, n_classes: int | None, name: str) -> np.ndarray:
+    """Validate 1-d integer labels in 0..K-1 (any K >= 1 when n_classes is None)."""
+    arr = np.asarray(y)
+    if arr.ndim != 1 or arr.size == 0:
+        raise ValueError(f"{name} must be a non-empty 1-d array of class indices")
+    if not np.issubdtype(arr.dtype, np.integer):
+        if not np.all(np.isfinite(arr)) or not np.all(np.mod(arr, 1) == 0):
+            raise ValueError(f"{name} must hold integer class indices")
+    arr = arr.astype(np.int64)
+    top = np.iinfo(np.int64).max if n_classes is None else n_classes - 1
+    if arr.min() < 0 or arr.max() > top:
+        raise ValueError(f"{name} must lie in 0..{top}")
+    return arr
+
+
 def _check_class_proba(P: ArrayLike | None, n: int, n_classes: int) -> np.ndarray | None:
     """Validate an imported (n, K) class-probability matrix."""
     if P is None:
@@ -390,7 +436,8 @@ class _BaseRouter(BaseEstimator):
         if not self.learning_rate > 0 or not self.weight_decay >= 0:
             raise ValueError("learning_rate must be > 0 and weight_decay >= 0")
         if self.early_stopping not in ("cost", "loss"):
-            raise ValueError(f"early_stopping must be 'cost' or 'loss', got {self.early_stopping!r}")
+            raise ValueError(f"early_stopping must be 'cost' or 'loss', "
+                             f"got {self.early_stopping!r}")
         if not 0 < self.validation_fraction < 1:
             raise ValueError(f"validation_fraction must be in (0, 1), "
                              f"got {self.validation_fraction!r}")
@@ -418,7 +465,7 @@ class _BaseRouter(BaseEstimator):
                              f"got {fees_arr.shape}")
         K = self._resolve_n_classes(y, A, cost_matrix)
         C = costs_mod.error_cost_matrix(K, matrix=cost_matrix)
-        y = costs_mod._check_labels(y, K, "y")
+        y = _check_y(y, K, "y")
         self.n_features_in_ = X.shape[1]
         self.n_classes_ = K
         self.n_experts_ = A.shape[1]
@@ -472,7 +519,7 @@ class _BaseRouter(BaseEstimator):
         Xv = check_array(X_val, dtype=np.float32)
         if Xv.shape[1] != self.n_features_in_:
             raise ValueError(f"X_val has {Xv.shape[1]} features, X has {self.n_features_in_}")
-        yv = costs_mod._check_labels(np.asarray(y_val), self.n_classes_, "y_val")
+        yv = _check_y(y_val, self.n_classes_, "y_val")
         Av, Wv = _check_answers_weights(answers_val, sample_weight_val, Xv.shape[0])
         if yv.shape[0] != Xv.shape[0] or Av.shape[1] != self.n_experts_:
             raise ValueError("validation arrays disagree in shape with each other or with fit")
@@ -716,13 +763,14 @@ _COMMON_PARAMS_DOC = """
         Epochs without a better validation score before training stops; the weights of
         the best epoch are kept.
     early_stopping : {"cost", "loss"}
-        Default "loss" for :class:`PluginRouter` (its classifier must give calibrated
-        probabilities, and the log-loss is a far less noisy signal than the routed cost:
-        on the synthetic scenario it gave a gap to the Bayes cost of 0.012 against 0.014),
-        "cost" for :class:`SurrogateRouter`. Validation score that picks the epoch of the classifier / scorer: the system
+        Validation score that picks the epoch of the classifier / scorer: the system
         cost of the routing (ties broken by the loss), or the loss (log-loss of the
         classifier, surrogate loss of the scorer; ties broken by the cost). The
-        correctness model always stops on its validation log-loss.
+        correctness model always stops on its validation log-loss. Default "loss" for
+        :class:`PluginRouter` (its classifier must give calibrated probabilities, and
+        the log-loss is a far less noisy signal than the routed cost: on the synthetic
+        scenario it gave a gap to the Bayes cost of 0.012 against 0.014), "cost" for
+        :class:`SurrogateRouter`.
     validation_fraction : float, default=0.2
         Share of the cases held out (stratified by label, seeded) for early stopping and
         calibration when ``fit`` gets no explicit ``X_val``.
@@ -835,7 +883,8 @@ class PluginRouter(_BaseRouter):
                  hidden: tuple[int, ...] = (64, 64), correctness_head: str | None = None,
                  max_epochs: int = 100, batch_size: int = 512, learning_rate: float = 1e-3,
                  weight_decay: float = 1e-4, patience: int = 10,
-                 early_stopping: str = "loss", validation_fraction: float = 0.2, calibrate: bool = True,
+                 early_stopping: str = "loss", validation_fraction: float = 0.2,
+                 calibrate: bool = True,
                  standardize: bool = True, random_state: Any = None, verbose: bool = False,
                  console: Any = None) -> None:
         _init_common(self, locals())
@@ -852,7 +901,8 @@ class PluginRouter(_BaseRouter):
                          class_proba=class_proba, class_proba_val=class_proba_val)
 
     fit.__doc__ = """Fit the correctness model, then the classifier (unless two-stage).
-""" + _FIT_DOC.replace("        Returns", """        class_proba, class_proba_val : array-like of shape (n, K), optional
+""" + _FIT_DOC.replace("        Returns", """\
+        class_proba, class_proba_val : array-like of shape (n, K), optional
             Two-stage mode: probabilities of the team's own model; only routing is learned
             and prediction then needs ``class_proba`` too.
 
@@ -890,7 +940,8 @@ class PluginRouter(_BaseRouter):
             return
         z_x = _forward(self.correctness_net_, val.X, self.x_mean_, self.x_scale_)
         z_c = _logit(P_val @ self.class_accuracy_.T)
-        for j, rep in enumerate(self.calibration_.get("experts", [])):
+        reports = self.calibration_.get("experts", [{} for _ in range(M)])
+        for j, rep in enumerate(reports):
             k = val.known[:, j]
             t = (val.answers[k, j] == val.y[k]).astype(np.float64)
             feats = np.column_stack([z_x[k, j], z_c[k, j]])
@@ -945,7 +996,7 @@ class PluginRouter(_BaseRouter):
         z_x = _forward(self.correctness_net_, X, self.x_mean_, self.x_scale_).astype(np.float64)
         z_c = _logit(P @ self.class_accuracy_.T)
         S = self.expert_stack_
-        return 1.0 / (1.0 + np.exp(-(S[:, 0] * z_x + S[:, 1] * z_c + S[:, 2])))
+        return expit(S[:, 0] * z_x + S[:, 1] * z_c + S[:, 2])
 
     def _proba_and_correct(self, X: np.ndarray, class_proba: ArrayLike | None
                            ) -> tuple[np.ndarray, np.ndarray]:
@@ -1001,13 +1052,20 @@ class PluginRouter(_BaseRouter):
         class_proba : array-like of shape (n, K), optional
             Required in two-stage mode.
         """
-        P, q = self._proba_and_correct(self._check_X(X), class_proba)
+        return _by_chunks(self._costs_chunk, self._check_X(X), class_proba)
+
+    def _costs_chunk(self, X: np.ndarray, class_proba: np.ndarray | None) -> np.ndarray:
+        """Expected option costs of a chunk of validated rows."""
+        P, q = self._proba_and_correct(X, class_proba)
         return costs_mod.expected_cost_vectors(P, q, cost_matrix=self.cost_matrix_,
                                                fees=self.fees_)
 
     def predict_route(self, X: ArrayLike, *, class_proba: ArrayLike | None = None) -> np.ndarray:
         """Option of least expected cost per case (``K + j`` = expert j), shape (n,)."""
-        return super().predict_route(X, class_proba=class_proba)
+        def routes(xs: np.ndarray, ps: np.ndarray | None) -> np.ndarray:
+            return np.argmin(self._costs_chunk(xs, ps), axis=1).astype(np.int64)
+
+        return _by_chunks(routes, self._check_X(X), class_proba)
 
     def _extra_arrays(self) -> dict[str, np.ndarray]:
         """The class temperature, per-class accuracies and stacking weights."""
@@ -1085,7 +1143,8 @@ class SurrogateRouter(_BaseRouter):
                  hidden: tuple[int, ...] = (64, 64), correctness_head: str | None = None,
                  max_epochs: int = 100, batch_size: int = 512, learning_rate: float = 1e-3,
                  weight_decay: float = 1e-4, patience: int = 10,
-                 early_stopping: str = "cost", validation_fraction: float = 0.2, calibrate: bool = True,
+                 early_stopping: str = "cost", validation_fraction: float = 0.2,
+                 calibrate: bool = True,
                  standardize: bool = True, random_state: Any = None, verbose: bool = False,
                  console: Any = None) -> None:
         _init_common(self, locals())
@@ -1126,7 +1185,8 @@ class SurrogateRouter(_BaseRouter):
         self._fit_correctness(train, val, gen)
         c_val = self._filled_costs(val)
         net = _make_net(self.n_features_in_, K + M, self.head, tuple(self.hidden))
-        tensors = (self._std(train.X), torch.from_numpy(self._training_costs(train).astype(np.float32)))
+        c_train = self._training_costs(train).astype(np.float32)
+        tensors = (self._std(train.X), torch.from_numpy(c_train))
         Xv, cv = self._std(val.X), torch.from_numpy(c_val.astype(np.float32))
 
         def val_score(m: nn.Module) -> tuple[float, float]:
@@ -1245,10 +1305,15 @@ class SurrogateRouter(_BaseRouter):
 
     def predict_costs(self, X: ArrayLike) -> np.ndarray:
         """Estimated expected cost of each option, shape (n, K + M)."""
-        X = self._check_X(X)
+        return _by_chunks(lambda xs, _: self._costs_chunk(xs), self._check_X(X))
+
+    def _costs_chunk(self, X: np.ndarray) -> np.ndarray:
+        """Expected option costs of a chunk of validated rows."""
         if self.loss == "ova":
             return self._ova_costs(X)
-        return costs_mod.expected_cost_vectors(self.predict_proba(X), self._correct_proba(X),
+        G = _forward(self.scorer_net_, X, self.x_mean_, self.x_scale_)[:, :self.n_classes_]
+        P = cal.apply_temperature(G, self.class_temperature_)
+        return costs_mod.expected_cost_vectors(P, self._correct_proba(X),
                                                cost_matrix=self.cost_matrix_, fees=self.fees_)
 
     def predict_route(self, X: ArrayLike) -> np.ndarray:
@@ -1385,7 +1450,7 @@ def _val_cases(X, y, answers, imputer, fees, C, class_proba) -> _ValCases:
     """Validate the selection split and fill unknown costs from the imputer."""
     X = check_array(X, dtype=np.float32)
     K = C.shape[0]
-    y = costs_mod._check_labels(np.asarray(y), K, "y_val")
+    y = _check_y(y, K, "y_val")
     A, _ = _check_answers_weights(answers, None, X.shape[0])
     raw = costs_mod.cost_vectors(y, A, cost_matrix=C, fees=fees)
     missing = np.isnan(raw)
@@ -1630,7 +1695,9 @@ def fit_candidates(
     if not 0 < selection_fraction < 1:
         raise ValueError(f"selection_fraction must be in (0, 1), got {selection_fraction!r}")
     X = check_array(X, dtype=np.float32)
-    y = np.asarray(y).astype(np.int64)
+    y = _check_y(y, None, "y")
+    if y.shape[0] != X.shape[0]:
+        raise ValueError(f"y has {y.shape[0]} cases, X has {X.shape[0]}")
     A, W = _check_answers_weights(answers, sample_weight, X.shape[0])
     W = np.where(A != costs_mod.MISSING_ANSWER, W, np.nan)
     P = None if class_proba is None else np.asarray(class_proba, dtype=np.float64)

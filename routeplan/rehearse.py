@@ -1,18 +1,33 @@
 """Rehearsing a labelling budget on a synthetic scenario before any money is spent.
 
-A rehearsal plays several rounds for each strategy on a scenario of :mod:`routeplan.simulate`
+A rehearsal plays rounds for each strategy on a scenario of :mod:`routeplan.simulate`
 (known ``P(y | x)`` and known per-region competence), with the same planner as
 ``routeplan round plan`` (:func:`routeplan.acquisition.select_assignments`). After each round a
 plug-in router is fitted on the answers revealed so far, and its system cost is computed
 *exactly* on held-out cases from the known probabilities, so the curves carry no evaluation
 noise. Two references frame them: the Bayes-optimal cost, and the cost of the same router
 fitted with every expert's answer on every pool case ("full information").
+
+Choices that keep the measurement honest
+----------------------------------------
+* Every pool case has truth, so the classifier does not depend on the strategy. It is fitted
+  once per rehearsal, by cross-fitting (out-of-fold probabilities on the pool, the fold
+  models' mean on the held-out cases; Chernozhukov et al., "Double/debiased machine learning",
+  Econometrics Journal 21(1), 2018, for the device), and every router after a round is fitted
+  in two-stage mode on those probabilities (Mao, Mohri & Zhong, NeurIPS 2023). The curves
+  then differ between strategies only through the answers they bought.
+* The answers of every expert on every pool case are drawn once and revealed as bought, so
+  strategies face the same experts (common random numbers).
+* The full-information reference is the mean over ``n_reference_fits`` router seeds, fitted
+  with the same settings as the routers on the curves.
+* Budgets may be a schedule of cumulative spends (``budgets``), geometric by default in
+  :func:`budget_schedule`, so that a curve has resolution where costs fall fast.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any, Sequence
+from typing import Any, Callable, Sequence
 
 import numpy as np
 import pandas as pd
@@ -22,9 +37,20 @@ from .competence import regions_from_features
 from .costs import error_cost_matrix, expected_cost_vectors
 from .simulate import Scenario, make_scenario
 
-__all__ = ["Rehearsal", "rehearse", "budget_to_reach", "system_cost_exact"]
+__all__ = [
+    "ROUTER_SETTINGS",
+    "Rehearsal",
+    "budget_schedule",
+    "budget_to_reach",
+    "digits_experts_scenario",
+    "rehearse",
+    "system_cost_exact",
+]
 
 STRATEGIES = ("value", "uncertain", "random")
+
+ROUTER_SETTINGS: dict[str, Any] = {"hidden": (64, 64), "max_epochs": 100, "patience": 20}
+"""Settings of the :class:`routeplan.learner.PluginRouter` fitted after each round."""
 
 
 @dataclass
@@ -40,7 +66,7 @@ class Rehearsal:
     bayes_cost : float
         Bayes-optimal expected cost on the held-out cases.
     full_information_cost : float
-        Cost of the same router fitted with all answers of all pool cases.
+        Cost of the same router fitted with all answers of all pool cases (mean over seeds).
     full_information_spend : float
         What those answers would cost.
     settings : dict
@@ -75,14 +101,17 @@ def system_cost_exact(true_costs: np.ndarray, routes: np.ndarray) -> float:
     return float(true_costs[np.arange(len(routes)), routes].mean())
 
 
-def budget_to_reach(curves: pd.DataFrame, target: float) -> dict[str, float]:
+def budget_to_reach(curves: pd.DataFrame, target: float, *, sustained: bool = False) -> dict[str, float]:
     """Smallest cumulative spend at which each strategy's cost is at most ``target`` (inf if never).
 
     Parameters
     ----------
     curves : pandas.DataFrame
-        :attr:`Rehearsal.curves`.
+        :attr:`Rehearsal.curves` (or any frame with ``strategy``, ``spend``, ``system_cost``).
     target : float
+    sustained : bool, default=False
+        Count a spend only if the cost stays at most ``target`` at every larger spend of the
+        curve too (a curve that dips below once and comes back up does not count there).
 
     Returns
     -------
@@ -90,20 +119,133 @@ def budget_to_reach(curves: pd.DataFrame, target: float) -> dict[str, float]:
     """
     out = {}
     for strategy, rows in curves.groupby("strategy", sort=False):
-        hit = rows.loc[rows["system_cost"] <= target, "spend"]
+        rows = rows.sort_values("spend")
+        ok = rows["system_cost"].to_numpy() <= target
+        if sustained:
+            ok = np.logical_and.accumulate(ok[::-1])[::-1]
+        hit = rows["spend"].to_numpy()[ok]
         out[str(strategy)] = float(hit.min()) if len(hit) else float("inf")
     return out
 
 
-def _fit_and_score(X, y, answers, weights, fees, C, X_eval, true_costs, seed, max_epochs) -> float:
+def budget_schedule(first: float, last: float, n_rounds: int) -> list[float]:
+    """Cumulative budgets growing geometrically from ``first`` to ``last`` over ``n_rounds``.
+
+    Parameters
+    ----------
+    first, last : float
+        ``0 < first <= last``.
+    n_rounds : int
+        >= 1; with 1, only ``last``.
+
+    Returns
+    -------
+    list of float
+    """
+    if not (0 < first <= last) or int(n_rounds) != n_rounds or n_rounds < 1:
+        raise ValueError("need 0 < first <= last and a positive whole number of rounds")
+    if n_rounds == 1:
+        return [float(last)]
+    return [float(v) for v in np.geomspace(first, last, int(n_rounds))]
+
+
+def digits_experts_scenario(
+    subsets: Sequence[Sequence[int]] = ((0, 1, 2, 3), (3, 4, 5, 6), (6, 7, 8, 9)),
+    fees: Sequence[float] = (0.02, 0.05, 0.1),
+    *,
+    random_state: int | np.random.Generator | None = 0,
+) -> Scenario:
+    """scikit-learn's digits with several simulated experts, as a :class:`Scenario`.
+
+    The expert of Mozannar & Sontag ("Consistent Estimators for Learning to Defer to an
+    Expert", ICML 2020, section 7) is always right on a subset of the classes and answers
+    uniformly at random over all classes elsewhere (right 1 time in 10). Here there is one
+    such expert per entry of ``subsets``, each with its fee. Truth is known, so ``proba`` is
+    the one-hot truth and a region is a class: ``correct_proba[i, j]`` is 1 on the expert's
+    classes and 0.1 elsewhere, which the scenario's answer rule (right with that probability,
+    else a uniformly random other class) turns into exactly the uniform guess. Cases are the
+    1797 digits of :func:`sklearn.datasets.load_digits`, pixels divided by 16, in a seeded
+    random order (so the first cases are a random sample).
+
+    Parameters
+    ----------
+    subsets : sequence of sequences of int
+        Classes (0..9) each expert always gets right.
+    fees : sequence of float
+        One fee per expert, in units of one error.
+    random_state : int, Generator or None, default=0
+        Seeds the order of the cases.
+
+    Returns
+    -------
+    Scenario
+    """
+    from sklearn.datasets import load_digits
+
+    if len(subsets) != len(fees) or any(f < 0 for f in fees):
+        raise ValueError("give one non-negative fee per subset")
+    data = load_digits()
+    order = np.random.default_rng(random_state).permutation(len(data.target))
+    y = data.target[order].astype(np.int64)
+    accuracy = np.full((len(subsets), 10), 0.1)
+    for j, classes in enumerate(subsets):
+        if any(int(c) != c or not 0 <= c <= 9 for c in classes):
+            raise ValueError("subsets hold classes 0..9")
+        accuracy[j, list(classes)] = 1.0
+    return Scenario(X=(data.data[order] / 16.0).astype(np.float32), proba=np.eye(10)[y], y=y, regions=y,
+                    correct_proba=accuracy[:, y].T.copy(), region_accuracy=accuracy,
+                    fees=np.asarray(fees, dtype=np.float64),
+                    names=tuple(f"expert{j + 1}" for j in range(len(subsets))))
+
+
+def _crossfit_proba(X, y, X_eval, K, n_folds, seed, router_params) -> tuple[np.ndarray, np.ndarray]:
+    """Out-of-fold P(y | x) on the pool, and the fold models' mean on the held-out cases."""
+    from sklearn.model_selection import StratifiedKFold
+
     from .learner import PluginRouter
 
-    router = PluginRouter(random_state=seed, max_epochs=max_epochs, hidden=(32, 32))
-    router.fit(X, y, answers, fees=fees, cost_matrix=C, sample_weight=weights)
-    return system_cost_exact(true_costs, router.predict_route(X_eval))
+    C = error_cost_matrix(K)
+    P = np.zeros((len(y), K))
+    P_eval = np.zeros((len(X_eval), K))
+    folds = StratifiedKFold(n_splits=n_folds, shuffle=True, random_state=seed).split(X, y)
+    for k, (fit_rows, out_rows) in enumerate(folds):
+        clf = PluginRouter(random_state=seed + 1000 * (k + 1), **router_params)
+        clf.fit(X[fit_rows], y[fit_rows], np.zeros((fit_rows.size, 0), np.int64), fees=np.zeros(0), cost_matrix=C)
+        P[out_rows] = clf.predict_proba(X[out_rows])
+        P_eval += clf.predict_proba(X_eval) / n_folds
+    return P, P_eval
 
 
-def _planner_input(scn_X, y, region, revealed, answers_all, proba, fees, capacities, error_cost, M, n_regions):
+@dataclass
+class _Stage:
+    """What every fit of a rehearsal shares: pool, held-out cases, fixed class probabilities."""
+
+    X: np.ndarray
+    y: np.ndarray
+    X_eval: np.ndarray
+    P: np.ndarray
+    P_eval: np.ndarray
+    true_costs: np.ndarray
+    fees: np.ndarray
+    C: np.ndarray
+    router_params: dict
+
+    def score(self, answers: np.ndarray, weights: np.ndarray | None, seed: int) -> float:
+        """Fit a two-stage plug-in router on the answers; return its exact held-out cost."""
+        import warnings
+
+        from .learner import PluginRouter
+
+        router = PluginRouter(random_state=seed, **self.router_params)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", UserWarning)  # "no known answer" early on is expected
+            router.fit(self.X, self.y, answers, fees=self.fees, cost_matrix=self.C, sample_weight=weights,
+                       class_proba=self.P)
+        return system_cost_exact(self.true_costs, router.predict_route(self.X_eval, class_proba=self.P_eval))
+
+
+def _planner_input(y, region, revealed, answers_all, model_cost, fees, error_cost, M, n_regions):
+    """The planner's Pool: every unrevealed pair eligible, counts from the revealed answers."""
     right = (answers_all == y[:, None]) & revealed
     correct = np.zeros((M, n_regions))
     answered = np.zeros((M, n_regions))
@@ -111,11 +253,48 @@ def _planner_input(scn_X, y, region, revealed, answers_all, proba, fees, capacit
         correct[j] = np.bincount(region, weights=right[:, j], minlength=n_regions)
         answered[j] = np.bincount(region, weights=revealed[:, j], minlength=n_regions)
     return acquisition.Pool(
-        eligible=~revealed, region=region, stratum=y, fees=fees, capacities=capacities,
+        eligible=~revealed, region=region, stratum=y, fees=fees, capacities=np.ones(M),
         correct=correct, answered=answered, pending=np.zeros((M, n_regions)),
-        model_cost=acquisition.model_decision_cost(proba, error_cost), population_region=region,
-        error_cost=error_cost,
+        model_cost=model_cost, population_region=region, error_cost=error_cost,
     )
+
+
+def _schedule(budgets, n_rounds, budget_per_round) -> list[float]:
+    """Cumulative budget after each round, checked."""
+    if budgets is None:
+        if int(n_rounds) != n_rounds or n_rounds < 1 or not budget_per_round > 0:
+            raise ValueError("n_rounds must be a positive integer and budget_per_round > 0")
+        return [budget_per_round * (t + 1) for t in range(int(n_rounds))]
+    steps = [float(b) for b in budgets]
+    if not steps or steps[0] <= 0 or np.any(np.diff(steps) <= 0):
+        raise ValueError("budgets must be positive and increasing (cumulative spends)")
+    return steps
+
+
+def _play(stage: _Stage, plan: Callable, strategy: str, steps: list[float], answers_all: np.ndarray,
+          seeds: tuple[int, int], progress: Any) -> list[dict]:
+    """Play the rounds of one strategy; one curve row per round."""
+    n, M = answers_all.shape
+    revealed = np.zeros((n, M), dtype=bool)
+    prob = np.full((n, M), np.nan)
+    spend = 0.0
+    rng = np.random.default_rng([seeds[0], STRATEGIES.index(strategy) if strategy in STRATEGIES else 99])
+    rows = []
+    from .fitting import answer_weights
+
+    for round_no, cumulative in enumerate(steps, start=1):
+        if cumulative - spend >= float(stage.fees.min()):
+            sel = plan(revealed, strategy, cumulative - spend, rng)
+            revealed[sel.case, sel.expert] = True
+            prob[sel.case, sel.expert] = sel.selection_prob
+            spend += float(sel.spend.sum())
+        shown = np.where(revealed, answers_all, -1)
+        cost = stage.score(shown, answer_weights(prob, shown), seeds[1])
+        rows.append({"strategy": strategy, "round": round_no, "spend": spend,
+                     "answers": int(revealed.sum()), "system_cost": cost})
+        if progress is not None:
+            progress(f"{strategy} round {round_no}")
+    return rows
 
 
 def rehearse(
@@ -126,28 +305,44 @@ def rehearse(
     strategies: Sequence[str] = STRATEGIES,
     n_rounds: int = 6,
     budget_per_round: float = 10.0,
+    budgets: Sequence[float] | None = None,
     audit_share: float = 0.1,
     n_regions: int = 6,
-    max_epochs: int = 40,
+    planner_options: dict | None = None,
+    router_params: dict | None = None,
+    n_folds: int = 5,
+    n_reference_fits: int = 3,
     random_state: int = 0,
     progress: Any = None,
 ) -> Rehearsal:
-    """Play ``n_rounds`` rounds per strategy and measure the system cost after each.
+    """Play rounds per strategy and measure the exact system cost after each.
 
     Parameters
     ----------
     scenario : Scenario, optional
         Default: ``make_scenario(n_pool + n_eval, random_state=random_state)``. Its first
-        ``n_pool`` cases form the pool (with truth), the rest the held-out cases.
+        ``n_pool`` cases form the pool (with truth), the rest the held-out cases (a given
+        scenario keeps at least half its cases held out).
     n_pool, n_eval : int
     strategies : sequence of str, default=("value", "uncertain", "random")
     n_rounds : int, default=6
     budget_per_round : float, default=10.0
-        In fee units.
+        In fee units; ignored when ``budgets`` is given.
+    budgets : sequence of float, optional
+        Cumulative budget after each round (increasing), e.g. from :func:`budget_schedule`.
+        Each round may spend what its step adds plus what earlier rounds left.
     audit_share : float, default=0.1
     n_regions : int, default=6
-    max_epochs : int, default=40
-        Training epochs of each fitted router.
+        Regions of the planner (k-means on the pool's features).
+    planner_options : dict, optional
+        Further keywords of :func:`routeplan.acquisition.select_assignments`.
+    router_params : dict, optional
+        Settings of the plug-in router (default :data:`ROUTER_SETTINGS`); also used for the
+        cross-fitted classifier.
+    n_folds : int, default=5
+        Folds of the cross-fitted classifier.
+    n_reference_fits : int, default=3
+        Router seeds averaged for the full-information reference.
     random_state : int, default=0
     progress : callable, optional
         Called as ``progress(description)`` after each fit (for a progress bar).
@@ -156,44 +351,48 @@ def rehearse(
     -------
     Rehearsal
     """
+    unknown = [s for s in strategies if s not in acquisition.STRATEGIES]
+    if unknown:
+        raise ValueError(f"unknown strategy {unknown[0]!r}; choose from {', '.join(acquisition.STRATEGIES)}")
+    steps = _schedule(budgets, n_rounds, budget_per_round)
     scn = scenario if scenario is not None else make_scenario(n_pool + n_eval, random_state=random_state)
     n_pool = min(n_pool, scn.X.shape[0] // 2) if scenario is not None else n_pool
-    K, M = scn.n_classes, scn.n_experts
+    params = dict(ROUTER_SETTINGS if router_params is None else router_params)
+    stage, answers_all = _stage(scn, n_pool, params, n_folds, random_state)
+    full = float(np.mean([stage.score(answers_all, None, random_state + 7919 * k)
+                          for k in range(max(1, int(n_reference_fits)))]))
+    X, y = stage.X, stage.y
+    region = regions_from_features(X, n_regions=n_regions, random_state=random_state)
+    model_cost = acquisition.model_decision_cost(acquisition.class_probabilities(
+        X, y, scn.n_classes, random_state=random_state), 1.0)
+    options = dict(planner_options or {})
+
+    def plan(revealed, strategy, budget, rng):
+        pool = _planner_input(y, region, revealed, answers_all, model_cost, stage.fees, 1.0,
+                              scn.n_experts, n_regions)
+        return acquisition.select_assignments(pool, budget=budget, strategy=strategy, audit_share=audit_share,
+                                              random_state=rng, **options)
+
+    rows = []
+    for strategy in strategies:
+        rows += _play(stage, plan, strategy, steps, answers_all, (random_state, random_state), progress)
+    return Rehearsal(pd.DataFrame(rows), float(stage.true_costs.min(axis=1).mean()), full,
+                     float(stage.fees.sum() * n_pool),
+                     {"n_pool": n_pool, "n_eval": int(stage.true_costs.shape[0]), "budgets": steps,
+                      "audit_share": audit_share, "n_regions": n_regions, "seed": random_state,
+                      "experts": list(scn.names), "fees": stage.fees.tolist(),
+                      "router": {k: list(v) if isinstance(v, tuple) else v for k, v in params.items()},
+                      "planner": options})
+
+
+def _stage(scn: Scenario, n_pool: int, params: dict, n_folds: int, seed: int) -> tuple[_Stage, np.ndarray]:
+    """Split the scenario, fix the class probabilities, draw every answer once."""
+    K = scn.n_classes
     C = error_cost_matrix(K)
     fees = np.asarray(scn.fees, dtype=float)
     pool, held = np.arange(n_pool), np.arange(n_pool, scn.X.shape[0])
-    X, y = scn.X[pool], scn.y[pool]
-    X_eval = scn.X[held]
+    X, y, X_eval = scn.X[pool], scn.y[pool], scn.X[held]
     true_costs = expected_cost_vectors(scn.proba[held], scn.correct_proba[held], cost_matrix=C, fees=fees)
-    bayes = float(true_costs.min(axis=1).mean())
-    answers_all = scn.answers(random_state)[pool]
-    full = _fit_and_score(X, y, answers_all, None, fees, C, X_eval, true_costs, random_state, max_epochs)
-    region = regions_from_features(X, n_regions=n_regions, random_state=random_state)
-    proba = acquisition.class_probabilities(X, y, K, random_state=random_state)
-    rows = []
-    for strategy in strategies:
-        revealed = np.zeros((n_pool, M), dtype=bool)
-        prob = np.full((n_pool, M), np.nan)
-        spend = 0.0
-        rng = np.random.default_rng([random_state, STRATEGIES.index(strategy) if strategy in STRATEGIES else 99])
-        for round_no in range(1, n_rounds + 1):
-            planner = _planner_input(X, y, region, revealed, answers_all, proba, fees, np.ones(M), 1.0, M, n_regions)
-            sel = acquisition.select_assignments(planner, budget=budget_per_round, strategy=strategy,
-                                                 audit_share=audit_share, random_state=rng)
-            revealed[sel.case, sel.expert] = True
-            prob[sel.case, sel.expert] = sel.selection_prob
-            spend += float(sel.spend.sum())
-            shown = np.where(revealed, answers_all, -1)
-            from .fitting import answer_weights
-
-            cost = _fit_and_score(X, y, shown, answer_weights(prob, shown), fees, C, X_eval, true_costs,
-                                  random_state, max_epochs)
-            rows.append({"strategy": strategy, "round": round_no, "spend": spend,
-                         "answers": int(revealed.sum()), "system_cost": cost})
-            if progress is not None:
-                progress(f"{strategy} round {round_no}")
-    return Rehearsal(pd.DataFrame(rows), bayes, full, float(fees.sum() * n_pool),
-                     {"n_pool": n_pool, "n_eval": len(held), "n_rounds": n_rounds,
-                      "budget_per_round": budget_per_round, "audit_share": audit_share,
-                      "n_regions": n_regions, "seed": random_state, "experts": list(scn.names),
-                      "fees": fees.tolist()})
+    P, P_eval = _crossfit_proba(X, y, X_eval, K, n_folds, seed, params)
+    stage = _Stage(X, y, X_eval, P, P_eval, true_costs, fees, C, params)
+    return stage, scn.answers(seed)[pool]

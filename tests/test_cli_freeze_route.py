@@ -445,3 +445,13 @@ def test_route_frame_is_row_by_row_and_checks_columns(built):
         route_frame(frame.drop(columns="x1"), manifest, arrays)
     with pytest.raises(InputError, match="not a finite number"):
         route_frame(frame.assign(x0=np.inf), manifest, arrays)
+
+
+def test_freeze_to_a_missing_folder_leaves_the_workspace_as_it_was(built, tmp_path):
+    ws = shutil.copytree(built["ws"], tmp_path / "ws")
+    with sqlite3.connect(ws / DB_NAME) as conn:
+        before = "\n".join(conn.iterdump())  # sqlite3's own dump as the reference state
+    line = one_line_error(invoke(ws, "freeze", "--out", tmp_path / "missing" / "p.json"), "does not exist")
+    assert "missing" in line
+    with sqlite3.connect(ws / DB_NAME) as conn:
+        assert "\n".join(conn.iterdump()) == before

@@ -40,7 +40,7 @@ ROUTERS = [
 
 @pytest.fixture(scope="module")
 def small():
-    """500 digits with the k=5 simulated expert and a second, half-missing expert copy."""
+    """500 digits, the k=5 simulated expert and a half-missing copy of it as a second."""
     d = simulate.digits_scenario(5, random_state=0)
     X, y = d.X[:500], d.y[:500]
     rng = np.random.default_rng(0)
@@ -48,8 +48,9 @@ def small():
     return X, y, np.column_stack([d.answers[:500, 0], second]), np.array([0.05, 0.1])
 
 
-# --- scikit-learn estimator contract (sklearn developer guide, "Rolling your own estimator";
-# --- sklearn.utils.estimator_checks: check_no_attributes_set_in_init, check_dont_overwrite_parameters)
+# --- scikit-learn estimator contract: developer guide, "Rolling your own estimator", and
+# --- sklearn.utils.estimator_checks (check_no_attributes_set_in_init,
+# --- check_dont_overwrite_parameters)
 
 
 @pytest.mark.parametrize("name,make", ROUTERS)
@@ -129,6 +130,18 @@ def test_two_stage_keeps_imported_model(small):
     again = router_from_arrays(arrays, json.loads(json.dumps(meta)))
     np.testing.assert_array_equal(again.predict_costs(X, class_proba=P),
                                   router.predict_costs(X, class_proba=P))
+
+
+def test_doubly_robust_reduces_to_observed_costs(small):
+    # doubly robust costs m + (1[known] / p)(c - m) (Dudik, Langford & Li, ICML 2011) equal
+    # the realised costs when every answer is known with probability 1: same fit as "impute"
+    X, y, A, fees = small
+    full = A[:, [0, 0]]
+    kw = dict(random_state=0, **FAST)
+    a = SurrogateRouter(missing="impute", **kw).fit(X, y, full, fees=fees)
+    b = SurrogateRouter(missing="doubly_robust", **kw).fit(X, y, full, fees=fees,
+                                                           sample_weight=np.ones(full.shape))
+    np.testing.assert_array_equal(a.predict_route(X), b.predict_route(X))
 
 
 def test_bad_input_is_refused(small):
@@ -223,7 +236,8 @@ def test_select_router_table_and_intervals(small):
     for col in ("router", "system_cost", "ci_low", "ci_high", "accuracy", "coverage",
                 "share_ann", "share_bob"):
         assert col in t.columns
-    assert res.best_name == t.loc[t["kind"] == "router"].sort_values("system_cost")["router"].iloc[0]
+    routers = t.loc[t["kind"] == "router"].sort_values("system_cost")
+    assert res.best_name == routers["router"].iloc[0]
     assert list(t["router"])[2:] == ["model alone (plugin)", "ann alone", "bob alone"]
     np.testing.assert_allclose(t["coverage"] + t["share_ann"] + t["share_bob"], 1.0)
     # bob's answers are half unknown: the table says so, and the notes name the imputation
