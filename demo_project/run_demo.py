@@ -277,7 +277,7 @@ def _print_summary(rows: list[dict[str, Any]], last: dict[str, Any], seed: int) 
 
 def _run(args: argparse.Namespace) -> tuple[list[dict[str, Any]], dict[str, Any]]:
     """Set up, then fit / freeze / route after round 0 and after each bought round."""
-    _python("generate_cases.py", ["--out", DATA, "--n", str(args.n), "--seed", str(args.seed)])
+    _python("generate_cases.py", ["--out", DATA, "--n", str(args.n), "--n-history", str(args.n_history), "--seed", str(args.seed)])
     _setup()
     rows, bought, spent, check = [], 0, 0.0, {}
     for r in range(args.rounds + 1):
@@ -303,6 +303,7 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--budget", type=float, default=25.0, help="fee budget per round (default 25)")
     parser.add_argument("--seed", type=int, default=7, help="seed for data, planning, fitting and experts (default 7)")
     parser.add_argument("--n", type=int, default=4000, help="pool tiles (default 4000)")
+    parser.add_argument("--n-history", type=int, default=60, help="pool tiles with historical answers (default 60)")
     parser.add_argument("--max-epochs", type=int, default=None, help="cap on each fit's training epochs (default: routeplan's own)")
     args = parser.parse_args(argv)
     if args.rounds < 0:

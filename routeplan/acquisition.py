@@ -200,6 +200,10 @@ class Selection:
         Spend as counted against the budget (fees below the floor count as the floor).
     notes : tuple of str
         Why budget was left, if it was.
+    design : ndarray of shape (n_experts, n_regions, n_strata)
+        Probability that a case eligible for expert ``j`` in region ``r`` and stratum ``s``
+        was chosen for that expert in this round, by the audit or the strategy (see
+        "Design of a round" in the module docstring).
     """
 
     case: NDArray[np.int64]
@@ -212,6 +216,7 @@ class Selection:
     audit_spend: float
     budget_used: float
     notes: tuple[str, ...] = field(default_factory=tuple)
+    design: NDArray[np.float64] = field(default_factory=lambda: np.zeros((0, 0, 0)))
 
 
 # --------------------------------------------------------------------------- building blocks
@@ -574,6 +579,7 @@ def select_assignments(
     notes: list[str] = []
 
     audit_budget = audit_share * budget
+    before = eligible.copy()
     counts = _audit_counts(ledger, eligible.sum(axis=0), audit_budget, rng)
     if audit_budget > 0 and counts.sum() == 0:
         notes.append("the audit share buys no assignment (fees, caps or eligible cases)")
@@ -588,7 +594,44 @@ def select_assignments(
                          (explore_min, explore_share, tight_sd, tight_n), max_steps, rng)
         picks.append(_draw_cells(pool, eligible, k, rng))
     case, expert, prob, audit = (np.concatenate(parts) for parts in zip(*picks))
-    return _finish(pool, costs, case, expert, prob, audit, alpha, beta, ledger, budget, notes)
+    sel = _finish(pool, costs, case, expert, prob, audit, alpha, beta, ledger, budget, notes)
+    design = _design(pool, before, eligible, counts, strategy, sel)
+    return Selection(**{**sel.__dict__, "design": design})
+
+
+def _design(pool: Pool, before: NDArray[np.bool_], after: NDArray[np.bool_], audit_counts: NDArray[np.int64],
+            strategy: str, sel: Selection) -> NDArray[np.float64]:
+    """Per (expert, region, stratum): chance that an eligible case was chosen this round."""
+    m, r = pool.n_experts, pool.n_regions
+    n_strata = int(pool.stratum.max()) + 1 if pool.stratum.size else 1
+    key = pool.region * n_strata + pool.stratum
+    own = ~sel.audit
+    design = np.zeros((m, r * n_strata))
+    for j in range(m):
+        e0 = int(before[:, j].sum())
+        p_audit = audit_counts[j] / e0 if e0 else 0.0
+        sizes = np.bincount(key[after[:, j]], minlength=r * n_strata)
+        mine = own & (sel.expert == j)
+        if strategy == "random":
+            p_own = np.full(r * n_strata, mine.sum() / max(int(sizes.sum()), 1))
+        else:
+            cells = np.bincount(pool.region[sel.case[mine]], minlength=r)
+            p_own = np.concatenate([_spread_rate(int(cells[g]), sizes[g * n_strata:(g + 1) * n_strata])
+                                    for g in range(r)])
+        design[j] = np.where(np.bincount(key[before[:, j]], minlength=r * n_strata) > 0,
+                             p_audit + (1.0 - p_audit) * p_own, 0.0)
+    return design.reshape(m, r, n_strata)
+
+
+def _spread_rate(k: int, sizes: NDArray[np.int64]) -> NDArray[np.float64]:
+    """Chance per case of each stratum under :func:`_spread` of ``k`` picks (0 where empty)."""
+    present = sizes > 0
+    if k == 0 or not present.any():
+        return np.zeros(sizes.size)
+    if k < present.sum():
+        return np.where(present, (k / present.sum()) / np.maximum(sizes, 1), 0.0)
+    per, _ = _spread(k, sizes, np.random.default_rng(0))  # no draw when k covers every stratum
+    return np.where(present, per / np.maximum(sizes, 1), 0.0)
 
 
 def _finish(pool, costs, case, expert, prob, audit, alpha, beta, ledger, budget, notes) -> Selection:

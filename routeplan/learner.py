@@ -1580,8 +1580,9 @@ def select_router(
     if cases.was_missing.any():
         notes.append("some expert answers are unknown on the validation cases: where a case "
                      "is routed to such an expert, its expected cost given the truth (from "
-                     "the correctness model) stands in for the realised cost; see "
-                     "imputed_share")
+                     "the correctness model of " + _imputer_name(candidates, imputer) +
+                     ") stands in for the realised cost; see imputed_share. These costs "
+                     "lean optimistic, most for the router whose model did the imputing")
     notes.append(f"{len(cases.y)} validation cases; intervals are {confidence:.0%} normal "
                  "approximations; the winner's cost is slightly optimistic")
     if rule == "significant":
@@ -1591,6 +1592,14 @@ def select_router(
     table = pd.DataFrame(rows)
     table.attrs["notes"] = notes
     return SelectionResult(best_name, candidates[best_name], table, notes)
+
+
+def _imputer_name(candidates: Mapping[str, Any], imputer: Any) -> str:
+    """Name of the imputing router among the candidates, else 'the given imputer'."""
+    for name, router in candidates.items():
+        if router is imputer:
+            return repr(name)
+    return "the given imputer"
 
 
 def _choose(per_case: Mapping[str, np.ndarray], rule: str, z: float) -> str:

@@ -244,6 +244,44 @@ class _Stage:
         return system_cost_exact(self.true_costs, router.predict_route(self.X_eval, class_proba=self.P_eval))
 
 
+def stabilized_weights(designs: Sequence[np.ndarray], region: np.ndarray, stratum: np.ndarray,
+                       answered: np.ndarray) -> np.ndarray:
+    """Weights of answers gathered over several rounds: stabilized inverse inclusion probabilities.
+
+    A case's chance to be asked of expert ``j`` over the rounds is taken as the sum of the
+    rounds' design probabilities of its (region, stratum) group (the balance heuristic of
+    multiple importance sampling: Veach & Guibas, "Optimally combining sampling techniques
+    for Monte Carlo rendering", SIGGRAPH 1995). Only the part of the selection that depends
+    on more than the region needs undoing for a model of ``P(right | x)``, so the weight is
+    the region's mean chance over the case's own chance: a stabilized weight whose numerator
+    conditions on the covariates of the model (Robins, Hernan & Brumback, "Marginal
+    structural models and causal inference in epidemiology", Epidemiology 11(5), 2000).
+    Each expert's weights are then scaled to mean 1.
+
+    Parameters
+    ----------
+    designs : sequence of ndarray of shape (n_experts, n_regions, n_strata)
+        :attr:`routeplan.acquisition.Selection.design` of each round.
+    region, stratum : ndarray of int of shape (n_cases,)
+    answered : ndarray of bool of shape (n_cases, n_experts)
+
+    Returns
+    -------
+    ndarray of shape (n_cases, n_experts)
+        NaN where there is no answer.
+    """
+    total = np.sum(np.stack(designs), axis=0)
+    m, r, n_strata = total.shape
+    sizes = np.bincount(region * n_strata + stratum, minlength=r * n_strata).reshape(r, n_strata)
+    mean_rate = (total * sizes).sum(axis=2) / np.maximum(sizes.sum(axis=1), 1)
+    own = total[:, region, stratum].T  # (n, m)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        w = np.where(answered & (own > 0), mean_rate[:, region].T / own, np.nan)
+    scale = np.nanmean(np.where(answered, w, np.nan), axis=0) if answered.any() else np.ones(m)
+    w = w / np.where(np.isfinite(scale) & (scale > 0), scale, 1.0)
+    return np.where(answered, np.where(np.isfinite(w), w, 1.0), np.nan)
+
+
 def _planner_input(y, region, revealed, answers_all, model_cost, fees, error_cost, M, n_regions):
     """The planner's Pool: every unrevealed pair eligible, counts from the revealed answers."""
     right = (answers_all == y[:, None]) & revealed
