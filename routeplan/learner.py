@@ -51,7 +51,7 @@ import pandas as pd
 import torch
 import torch.nn.functional as F
 from numpy.typing import ArrayLike
-from scipy.special import expit
+from scipy.special import expit, logsumexp
 from sklearn.base import BaseEstimator
 from sklearn.model_selection import train_test_split
 from sklearn.utils.validation import check_array, check_is_fitted
@@ -155,6 +155,13 @@ def _logit(p: np.ndarray) -> np.ndarray:
     """Log-odds, clipped away from 0 and 1."""
     p = np.clip(p, 1e-6, 1 - 1e-6)
     return np.log(p) - np.log1p(-p)
+
+
+def _lse_without_max(Z: np.ndarray) -> np.ndarray:
+    """log(sum_k exp(z_k) - max_k exp(z_k)) per row, by dropping the arg-max column."""
+    masked = Z.copy()
+    masked[np.arange(Z.shape[0]), Z.argmax(axis=1)] = -np.inf
+    return logsumexp(masked, axis=1)
 
 
 def _as_generator(random_state: Any) -> np.random.Generator:
@@ -273,6 +280,10 @@ def _train_loop(
     after ``patience`` epochs without improvement. Returns the per-epoch scores.
     """
     opt = _adam(net, settings)
+    import os
+    decay = float(os.environ.get("RP_DECAY", "0"))
+    sched = (torch.optim.lr_scheduler.ReduceLROnPlateau(opt, factor=decay, patience=int(os.environ.get("RP_DPAT", "3")))
+             if decay > 0 else None)
     n = tensors[0].shape[0]
     batch_size = _effective_batch(n, settings.batch_size)
     history: list[tuple[float, float]] = []
@@ -295,6 +306,8 @@ def _train_loop(
             with torch.no_grad():
                 score = val_score(net)
             history.append(score)
+            if sched is not None:
+                sched.step(score[0])
             if score < best:
                 best, stale = score, 0
                 best_state = {k: v.detach().clone() for k, v in net.state_dict().items()}
@@ -1152,8 +1165,8 @@ class SurrogateRouter(_BaseRouter):
     def _check_params(self) -> None:
         """Also check loss, alpha and missing."""
         super()._check_params()
-        if self.loss not in ("softmax", "ova"):
-            raise ValueError(f"loss must be 'softmax' or 'ova', got {self.loss!r}")
+        if self.loss not in ("softmax", "ova", "asymmetric"):
+            raise ValueError(f"loss must be 'softmax', 'ova' or 'asymmetric', got {self.loss!r}")
         if not self.alpha > 0:
             raise ValueError(f"alpha must be > 0, got {self.alpha!r}")
         if self.missing not in ("impute", "doubly_robust"):
@@ -1161,7 +1174,7 @@ class SurrogateRouter(_BaseRouter):
         if self.missing == "doubly_robust" and self.loss != "softmax":
             raise ValueError("missing='doubly_robust' needs loss='softmax' (OvA targets must "
                              "stay in [0, 1])")
-        if self.loss == "ova" and self.alpha != 1.0:
+        if self.loss != "softmax" and self.alpha != 1.0:
             raise ValueError("alpha applies to the softmax surrogate only")
 
     def fit(self, X: ArrayLike, y: ArrayLike, answers: ArrayLike, *, fees: ArrayLike,
@@ -1185,24 +1198,52 @@ class SurrogateRouter(_BaseRouter):
         self._fit_correctness(train, val, gen)
         c_val = self._filled_costs(val)
         net = _make_net(self.n_features_in_, K + M, self.head, tuple(self.hidden))
-        c_train = self._training_costs(train).astype(np.float32)
-        tensors = (self._std(train.X), torch.from_numpy(c_train))
-        Xv, cv = self._std(val.X), torch.from_numpy(c_val.astype(np.float32))
+        tensors = (self._std(train.X), *self._targets(train))
+        Xv, v_targets = self._std(val.X), self._targets(val)
 
         def val_score(m: nn.Module) -> tuple[float, float]:
             G = m(Xv)
-            cost = realised_costs(c_val, G.argmax(dim=1).numpy()).mean()
-            loss = float(self._loss(G, cv))
+            cost = realised_costs(c_val, self._raw_routes(G.numpy())).mean()
+            loss = float(self._loss(G, *v_targets))
             return (loss, float(cost)) if self.early_stopping == "loss" else (float(cost), loss)
 
-        self.history_["scorer"] = _train_loop(net, lambda m, xb, cb: self._loss(m(xb), cb),
+        self.history_["scorer"] = _train_loop(net, lambda m, xb, *tb: self._loss(m(xb), *tb),
                                               tensors, val_score, self._settings(), gen,
                                               f"{self.loss} surrogate")
         self.scorer_net_ = net
         self._calibrate_scorer(val, c_val)
 
-    def _loss(self, logits: torch.Tensor, c: torch.Tensor) -> torch.Tensor:
+    def _targets(self, part: _Part) -> tuple[torch.Tensor, ...]:
+        """Training targets of a split: option costs, or (truth, P(expert right))."""
+        if self.loss != "asymmetric":
+            return (torch.from_numpy(self._training_costs(part).astype(np.float32)),)
+        right = (part.answers == part.y[:, None]).astype(np.float64)
+        if not part.known.all():
+            right = np.where(part.known, right, self._correct_proba(part.X))
+        return torch.from_numpy(part.y), torch.from_numpy(right.astype(np.float32))
+
+    def _raw_routes(self, G: np.ndarray) -> np.ndarray:
+        """Routes from uncalibrated scores (used while training)."""
+        if self.loss == "softmax":
+            return G.argmax(axis=1)
+        if self.loss == "ova":
+            return G.argmax(axis=1)
+        P, q = self._asym_proba(G.astype(np.float64), 1.0, np.tile([1.0, 0.0], (G.shape[1] - self.n_classes_, 1)))
+        return costs_mod.expected_cost_vectors(P, q, cost_matrix=self.cost_matrix_,
+                                               fees=self.fees_).argmin(axis=1)
+
+    def _asym_proba(self, G: np.ndarray, T: float, platt: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Class probabilities and P(expert right) from asymmetric-softmax scores."""
+        K = self.n_classes_
+        P = cal.apply_temperature(G[:, :K], T)
+        z = G[:, K:] - _lse_without_max(G[:, :K])[:, None]
+        return P, cal.apply_platt(z, platt[:, 0], platt[:, 1])
+
+    def _loss(self, logits: torch.Tensor, *targets: torch.Tensor) -> torch.Tensor:
         """The chosen surrogate, mean over the batch."""
+        if self.loss == "asymmetric":
+            return sur.asymmetric_softmax_surrogate(logits, *targets)
+        c = targets[0]
         if self.loss == "softmax":
             return sur.softmax_cost_surrogate(logits, c, alpha=float(self.alpha),
                                               n_classes=self.n_classes_)
@@ -1237,6 +1278,9 @@ class SurrogateRouter(_BaseRouter):
             agree = self.predict_route(val.X) == np.argmin(self.predict_costs(val.X), axis=1)
             self.calibration_["route_agreement"] = float(agree.mean())
             return
+        if self.loss == "asymmetric":
+            self._calibrate_asymmetric(val, G)
+            return
         self.class_temperature_ = 1.0
         B = self.cost_scale_
         before = cal.expected_calibration_error(self.predict_proba(val.X), val.y)
@@ -1252,7 +1296,30 @@ class SurrogateRouter(_BaseRouter):
             "ece_after": cal.expected_calibration_error(self.predict_proba(val.X), val.y)}
         self.calibration_["options_platt"] = self.option_platt_.tolist()
 
+    def _calibrate_asymmetric(self, val: _Part, G: np.ndarray) -> None:
+        """Temperature for the class scores, Platt per expert on the deferral logits."""
+        K = self.n_classes_
+        T = cal.fit_temperature(G[:, :K], val.y) if self.calibrate else 1.0
+        self.class_temperature_ = T
+        P0, P1 = (cal.apply_temperature(G[:, :K], t) for t in (1.0, T))
+        self.calibration_["classes"] = {
+            "temperature": T, "ece_before": cal.expected_calibration_error(P0, val.y),
+            "ece_after": cal.expected_calibration_error(P1, val.y)}
+        if not self.calibrate:
+            return
+        z = G[:, K:] - _lse_without_max(G[:, :K])[:, None]
+        for j in range(self.n_experts_):
+            k = val.known[:, j]
+            t = (val.answers[k, j] == val.y[k]).astype(np.float64)
+            self.option_platt_[1 + j] = cal.fit_platt(z[k, j], t, val.weights[k, j])
+        self.calibration_["options_platt"] = self.option_platt_.tolist()
+
     # ---- prediction ------------------------------------------------------------------
+
+    def _asym_chunk(self, X: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Calibrated class probabilities and P(expert right) of the asymmetric scorer."""
+        G = _forward(self.scorer_net_, X, self.x_mean_, self.x_scale_).astype(np.float64)
+        return self._asym_proba(G, self.class_temperature_, self.option_platt_[1:])
 
     def _ova_costs(self, X: np.ndarray) -> np.ndarray:
         """Calibrated OvA cost estimates ``B (1 - sigmoid(a g + b))``."""
@@ -1286,6 +1353,8 @@ class SurrogateRouter(_BaseRouter):
         the calibrated class-option cost estimates.
         """
         X = self._check_X(X)
+        if self.loss == "asymmetric":
+            return self._asym_chunk(X)[0]
         if self.loss == "ova":
             return self._ova_proba(self._ova_costs(X))
         G = _forward(self.scorer_net_, X, self.x_mean_, self.x_scale_)[:, :self.n_classes_]
@@ -1298,6 +1367,8 @@ class SurrogateRouter(_BaseRouter):
         outputs (Verma & Nalisnick, 2022).
         """
         X = self._check_X(X)
+        if self.loss == "asymmetric":
+            return self._asym_chunk(X)[1]
         if self.loss == "ova":
             ec = self._ova_costs(X)
             return self._ova_correct(ec, self._ova_proba(ec))
@@ -1311,6 +1382,10 @@ class SurrogateRouter(_BaseRouter):
         """Expected option costs of a chunk of validated rows."""
         if self.loss == "ova":
             return self._ova_costs(X)
+        if self.loss == "asymmetric":
+            P, q = self._asym_chunk(X)
+            return costs_mod.expected_cost_vectors(P, q, cost_matrix=self.cost_matrix_,
+                                                   fees=self.fees_)
         G = _forward(self.scorer_net_, X, self.x_mean_, self.x_scale_)[:, :self.n_classes_]
         P = cal.apply_temperature(G, self.class_temperature_)
         return costs_mod.expected_cost_vectors(P, self._correct_proba(X),
@@ -1322,6 +1397,8 @@ class SurrogateRouter(_BaseRouter):
         Softmax: ``argmax`` of the scores. OvA: least calibrated cost estimate.
         """
         X = self._check_X(X)
+        if self.loss == "asymmetric":
+            return np.argmin(self.predict_costs(X), axis=1).astype(np.int64)
         if self.loss == "ova":
             return np.argmin(self._ova_costs(X), axis=1).astype(np.int64)
         G = _forward(self.scorer_net_, X, self.x_mean_, self.x_scale_)

@@ -365,7 +365,7 @@ def test_bad_parquet_is_refused(empty_ws, tmp_path):
     pq.write_table(table, tmp_path / "cases.parquet")
     before = db_dump(empty_ws)
     result = run_cli(empty_ws, "cases", "import", tmp_path / "cases.parquet")
-    assert_one_line_error(result, "cases.parquet line 2", "finite")  # Parquet: row 2 of the records
+    assert_one_line_error(result, "cases.parquet row 2", "finite")  # Parquet: row 2 of the records
     assert db_dump(empty_ws) == before
     (tmp_path / "broken.parquet").write_bytes(b"PAR1 not really")
     assert_one_line_error(run_cli(empty_ws, "cases", "import", tmp_path / "broken.parquet"), "Parquet")
