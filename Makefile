@@ -12,7 +12,7 @@ $(BIN)/python:
 
 $(VENV)/.installed: $(BIN)/python pyproject.toml
 	$(BIN)/pip install $(TORCH_PIN)
-	$(BIN)/pip install -e '.[test]'
+	$(BIN)/pip install -e '.[test,dask]'
 	touch $@
 
 setup: $(VENV)/.installed
