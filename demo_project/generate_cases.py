@@ -3,7 +3,7 @@
 Usage::
 
     python generate_cases.py --out DIR [--n 4000] [--n-new 1000] [--truth-share 0.75]
-                             [--n-history 300] [--seed 7]
+                             [--n-history 60] [--seed 7]
 
 Files written to DIR (the same seed always gives the same bytes):
 
@@ -18,7 +18,7 @@ Files written to DIR (the same seed always gives the same bytes):
     ``name, fee, capacity``: fee per tile (in units of one wrong grade) and the
     share of tiles each expert can take.
 ``history.csv``
-    ``case_id, expert, answer``: the team's past grades of a few hundred pool tiles.
+    ``case_id, expert, answer``: the team's past grades of a few dozen pool tiles.
 ``.profiles.json`` and ``.hidden_tiles.csv``
     Hidden: each expert's competence profile and every tile's grade and latent facts.
     Only ``play_experts.py`` (and the demo's closing check) read them.
@@ -61,7 +61,7 @@ def _history(pool: pd.DataFrame, hidden: pd.DataFrame, profiles: dict, n: int, r
     return pd.concat(parts, ignore_index=True).sort_values(["case_id", "expert"], kind="stable", ignore_index=True)
 
 
-def generate(out: str | Path, *, n: int = 4000, n_new: int = 1000, truth_share: float = 0.75, n_history: int = 300, seed: int = 7) -> dict[str, Path]:
+def generate(out: str | Path, *, n: int = 4000, n_new: int = 1000, truth_share: float = 0.75, n_history: int = 60, seed: int = 7) -> dict[str, Path]:
     """Write the demo data set into ``out``.
 
     Parameters
@@ -74,7 +74,7 @@ def generate(out: str | Path, *, n: int = 4000, n_new: int = 1000, truth_share: 
         Number of fresh tiles to route later.
     truth_share : float, default=0.75
         Share of pool tiles whose verified grade goes into ``truth.csv``.
-    n_history : int, default=300
+    n_history : int, default=60
         Number of pool tiles with historical answers.
     seed : int, default=7
         Seed; the same seed writes the same files.
@@ -119,7 +119,7 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--n", type=int, default=4000, help="pool tiles (default 4000)")
     parser.add_argument("--n-new", type=int, default=1000, help="fresh tiles to route later (default 1000)")
     parser.add_argument("--truth-share", type=float, default=0.75, help="share of pool tiles with a verified grade (default 0.75)")
-    parser.add_argument("--n-history", type=int, default=300, help="pool tiles with historical answers (default 300)")
+    parser.add_argument("--n-history", type=int, default=60, help="pool tiles with historical answers (default 60)")
     parser.add_argument("--seed", type=int, default=7, help="random seed (default 7)")
     args = parser.parse_args(argv)
     try:

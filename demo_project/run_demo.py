@@ -150,17 +150,6 @@ def _show_fit_table(report: dict[str, Any]) -> None:
     Console(width=_width(), soft_wrap=False).print(render_fit(fit_report))
 
 
-def _competence(full: bool) -> None:
-    """Show each expert's accuracy against truth: the full report, or one line from its JSON."""
-    if full:
-        _routeplan(["competence"])
-        return
-    rows = _routeplan_json(["competence"])["accuracy"]
-    _say("accuracy against truth: " + ", ".join(
-        f"{row['expert']} {row['accuracy']:.2f} [{row['accuracy_low']:.2f}, {row['accuracy_high']:.2f}]"
-        for row in rows if row["expert"] != "model"))
-
-
 def _freeze_and_route(r: int, seed: int, full: bool) -> dict[str, Any]:
     """Freeze the kept router, route the new tiles with it, and grade them against the hidden truth."""
     policy, routed = f"policies/round-{r}.json", f"routed/round-{r}.csv"
@@ -200,8 +189,8 @@ def check_routed(routed: pd.DataFrame, data_dir: Path, seed: int) -> dict[str, A
     -------
     dict
         ``n``, ``routes`` (count per route), ``n_wrong``, ``accuracy``, ``fees``,
-        ``cost_per_tile`` (wrong grades plus fees, per tile) and ``cost_se`` (its standard error
-        over tiles).
+        ``cost_per_tile`` (wrong grades plus fees, per tile), ``cost_se`` (its standard error
+        over tiles) and ``tile_cost`` (the cost of each tile, in the order of ``routed``).
     """
     world, profiles = tileworks.load_world(data_dir)
     fees = pd.read_csv(data_dir / "experts.csv").set_index("name")["fee"]
@@ -225,6 +214,7 @@ def check_routed(routed: pd.DataFrame, data_dir: Path, seed: int) -> dict[str, A
         "fees": float(fee.sum()),
         "cost_per_tile": float(cost.mean()) if n else float("nan"),
         "cost_se": float(cost.std(ddof=1) / np.sqrt(n)) if n > 1 else float("nan"),
+        "tile_cost": cost,
     }
 
 
@@ -247,8 +237,21 @@ def _progress_table(rows: list[dict[str, Any]]) -> str:
     return "\n".join(lines)
 
 
-def _print_summary(rows: list[dict[str, Any]], last: dict[str, Any], seed: int) -> None:
+def _change_line(rows: list[dict[str, Any]], checks: list[dict[str, Any]]) -> str:
+    """Say how the true cost moved from round 0 to the last round, with a paired standard error."""
+    diff = checks[-1]["tile_cost"] - checks[0]["tile_cost"]  # same tiles, so the difference is paired
+    change, se = float(diff.mean()), float(diff.std(ddof=1) / np.sqrt(len(diff)))
+    line = (f"From round 0 to round {rows[-1]['round']} the true cost per tile changed by {change:+.3f}"
+            f" (standard error {se:.3f}, paired over the same {len(diff)} tiles)")
+    if change < -2 * se:
+        tiles = float(f"{rows[-1]['spent'] / -change:.2g}")  # two significant figures: the saving is uncertain
+        return line + f";\nat that saving the {rows[-1]['spent']:.0f} fee units spent on answers pay back after about {tiles:,.0f} tiles."
+    return line + ": no clear fall in this run."
+
+
+def _print_summary(rows: list[dict[str, Any]], checks: list[dict[str, Any]], seed: int) -> None:
     """Tell a newcomer what happened, how the cost moved, where the files are, what to try next."""
+    last = checks[-1]
     print("\n" + "=" * 78 + "\nSummary\n" + "=" * 78)
     print("The invented Marrowdene Tileworks grades fired roof tiles first / second / reject;")
     print("one wrong grade costs 1 and each expert charges a fee per tile in the same unit.")
@@ -256,30 +259,32 @@ def _print_summary(rows: list[dict[str, Any]], last: dict[str, Any], seed: int) 
     print(_progress_table(rows))
     print("\nestimated cost: `routeplan fit`'s own held-out estimate for the kept router (pool tiles with truth;")
     print("  where an expert's answer is unknown, the expected cost from its correctness model stands in).")
-    print(f"true cost: the frozen policy routed {last['n']} new tiles; each tile was graded against its hidden")
-    print("  grade (by the model's label or the chosen expert's simulated answer), plus the fees.")
-    print(f"  Possible only because the data are invented; standard error about {last['cost_se']:.3f} per row.")
+    print(f"true cost: the policy frozen after that fit routed the same {last['n']} new tiles; each tile was")
+    print("  graded against its hidden grade (the model's label or the chosen expert's simulated answer),")
+    print(f"  plus the fees. Possible only because the data are invented; standard error about {last['cost_se']:.3f}.")
+    if len(checks) > 1:
+        print(_change_line(rows, checks))
     routes = ", ".join(f"{k} {v}" for k, v in sorted(last["routes"].items()))
-    print(f"Last policy's routes: {routes}; for comparison, every new tile to one expert (ignoring capacity):")
-    print("  " + ", ".join(f"{name} {cost:.3f}" for name, cost in _single_expert_costs(WORK / DATA, seed).items()))
+    print(f"Last policy's routes: {routes}. For comparison, every new tile to one expert")
+    print("  (ignoring capacity): " + ", ".join(f"{name} {cost:.3f}" for name, cost in _single_expert_costs(WORK / DATA, seed).items()))
     print(f"\nFiles (under {WORK}): data/ (the invented data), workspace/, sheets/ and answers/ (per round),")
     print("  policies/round-N.json (+ .md policy cards), routed/round-N.csv.")
-    routeplan = f"{Path(sys.executable).with_name('routeplan')} --workspace {WORKSPACE}"
+    routeplan = Path(sys.executable).with_name("routeplan")
     print("\nWhat to try next:")
     print(f"  cd {WORK}")
-    print(f"  {routeplan} status")
-    print(f"  {routeplan} competence --by region")
-    print(f"  {routeplan} round plan --budget 25 --strategy random --dry-run   (what does the default strategy pick instead?)")
-    print(f"  {Path(sys.executable).with_name('routeplan')} rehearse --rounds 4 --budget 25   (a simulated rehearsal, no workspace)")
-    print("  rerun the demo with --budget 10 or --rounds 8 and compare the table;")
+    print(f"  {routeplan} --workspace {WORKSPACE} competence --by region")
+    print(f"  {routeplan} --workspace {WORKSPACE} round plan --budget 100 --strategy random --dry-run"
+          "   (what would a random plan buy?)")
+    print(f"  {routeplan} rehearse --rounds 4 --budget 25   (a simulated rehearsal; needs no workspace)")
+    print("  rerun the demo with --budget 25 or --seed 8 and compare the table;")
     print(f"  peek at {WORK / DATA / tileworks.PROFILES_FILE} to see how good each expert really is.")
 
 
-def _run(args: argparse.Namespace) -> tuple[list[dict[str, Any]], dict[str, Any]]:
+def _run(args: argparse.Namespace) -> tuple[list[dict[str, Any]], list[dict[str, Any]]]:
     """Set up, then fit / freeze / route after round 0 and after each bought round."""
     _python("generate_cases.py", ["--out", DATA, "--n", str(args.n), "--n-history", str(args.n_history), "--seed", str(args.seed)])
     _setup()
-    rows, bought, spent, check = [], 0, 0.0, {}
+    rows, checks, bought, spent = [], [], 0, 0.0
     for r in range(args.rounds + 1):
         last = r == args.rounds
         title = "round 0: the historical answers only" if r == 0 else f"round {r} of {args.rounds}"
@@ -288,19 +293,20 @@ def _run(args: argparse.Namespace) -> tuple[list[dict[str, Any]], dict[str, Any]
             got = _buy_round(r, args.budget, args.seed)
             bought, spent = bought + got["assignments"], spent + got["spend"]
         estimate = _fit(args.seed, args.max_epochs, full=last)
-        _competence(full=last)
-        check = _freeze_and_route(r, args.seed, full=last)
-        rows.append({"round": r, "bought": bought, "spent": spent, **estimate, "true": check["cost_per_tile"]})
+        if last:
+            _routeplan(["competence"])  # only once: it takes a while and its tables are long
+        checks.append(_freeze_and_route(r, args.seed, full=last))
+        rows.append({"round": r, "bought": bought, "spent": spent, **estimate, "true": checks[-1]["cost_per_tile"]})
     if args.rounds > 0:
         _routeplan(["status"])
-    return rows, check
+    return rows, checks
 
 
 def main(argv: list[str] | None = None) -> int:
     """Command-line entry point; returns the exit code."""
     parser = argparse.ArgumentParser(description="Run the Marrowdene Tileworks demo through the routeplan CLI.")
     parser.add_argument("--rounds", type=int, default=4, help="labelling rounds after round 0 (default 4)")
-    parser.add_argument("--budget", type=float, default=25.0, help="fee budget per round (default 25)")
+    parser.add_argument("--budget", type=float, default=100.0, help="fee budget per round (default 100)")
     parser.add_argument("--seed", type=int, default=7, help="seed for data, planning, fitting and experts (default 7)")
     parser.add_argument("--n", type=int, default=4000, help="pool tiles (default 4000)")
     parser.add_argument("--n-history", type=int, default=60, help="pool tiles with historical answers (default 60)")
@@ -313,12 +319,12 @@ def main(argv: list[str] | None = None) -> int:
     WORK.mkdir(parents=True)
     print(f"Demo folder: {WORK} (commands below run from there)")
     try:
-        rows, last = _run(args)
+        rows, checks = _run(args)
     except DemoStopped as exc:
         print(f"\nDemo stopped: {exc}", file=sys.stderr)
         print(f"Everything written so far is in {WORK}.", file=sys.stderr)
         return exc.code
-    _print_summary(rows, last, args.seed)
+    _print_summary(rows, checks, args.seed)
     return 0
 
 

@@ -132,3 +132,27 @@ def test_simulated_accuracy_matches_the_hidden_profile(data_dir: Path, expert: s
     assert region.sum() >= 30
     q = profile["rules"][0]["accuracy"]
     assert abs(right[region].mean() - q) <= 4.0 * np.sqrt(q * (1.0 - q) / region.sum())
+
+
+def test_closing_check_counts_wrong_grades_and_fees(data_dir: Path) -> None:
+    import run_demo  # the demo's closing check; importing it runs nothing
+
+    world, profiles = tileworks.load_world(data_dir)
+    new = world.iloc[3000:3010]  # ten new tiles
+    truth = new["truth"].to_numpy()
+    wrong = np.where(truth == "first", "second", "first")
+    # Hand-worked: the first four go to the model (two right, two wrong), the rest to the
+    # kiln master, whose answers are the player's and whose fee is 0.08 a tile.
+    routed = pd.DataFrame({
+        "case_id": new["case_id"].to_numpy(),
+        "route": ["model"] * 4 + ["kiln_master"] * 6,
+        "label": [truth[0], truth[1], wrong[2], wrong[3]] + [""] * 6,
+    })
+    played = tileworks.play_expert("kiln_master", profiles, world, np.arange(3004, 3010), seed=5)
+    n_wrong = 2 + int((played != truth[4:]).sum())
+    check = run_demo.check_routed(routed, data_dir, seed=5)
+    assert check["n"] == 10 and check["routes"] == {"model": 4, "kiln_master": 6}
+    assert check["n_wrong"] == n_wrong
+    assert check["fees"] == pytest.approx(6 * 0.08)
+    assert check["cost_per_tile"] == pytest.approx((n_wrong + 6 * 0.08) / 10)
+    assert check["tile_cost"][:4].tolist() == [0.0, 0.0, 1.0, 1.0]
