@@ -90,6 +90,18 @@ def _accuracy_table(frame, title: str, level: str | None, basis: str) -> Table:
     return table
 
 
+def _confusion_table(name: str, matrix, labels: list[str]) -> Table:
+    """One confusion matrix: rows are the truth, columns the answer."""
+    table = Table(title=f"Confusion of {name} (rows: truth, columns: answer)", title_justify="left",
+                  box=box.SIMPLE_HEAD, pad_edge=False)
+    table.add_column("truth", overflow="fold")
+    for label in labels:
+        table.add_column(str(label), justify="right", overflow="fold")
+    for label, row in zip(labels, matrix):
+        table.add_row(str(label), *[str(int(v)) if float(v).is_integer() else f"{v:.1f}" for v in row])
+    return table
+
+
 def render_competence(report, *, by: str | None = None, basis: str = "truth") -> Group:
     """Render a :class:`routeplan.competence.CompetenceReport` as rich tables.
 
@@ -128,6 +140,8 @@ def render_competence(report, *, by: str | None = None, basis: str = "truth") ->
                           _interval(row["recall"], row["recall_low"], row["recall_high"]),
                           _interval(row["precision"], row["precision_low"], row["precision_high"]))
         parts.append(table)
+    for name, matrix in (report.confusion or {}).items():
+        parts.append(_confusion_table(name, matrix, report.labels))
     if report.agreement is not None and len(report.agreement):
         table = Table(title="Agreement between experts (Cohen's kappa, shared cases)", title_justify="left",
                       box=box.SIMPLE_HEAD, pad_edge=False)

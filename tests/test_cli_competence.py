@@ -8,7 +8,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-from sklearn.metrics import cohen_kappa_score
+from sklearn.metrics import cohen_kappa_score, confusion_matrix
 from statsmodels.stats.proportion import proportion_confint
 
 from sklearn_workspace import invoke
@@ -66,6 +66,9 @@ def test_accuracy_interval_and_kappa_match_reference_libraries(iris_workspace):
         assert rows[expert]["accuracy_high"] == pytest.approx(high, abs=1e-9)
         kappa = cohen_kappa_score(mine["case_id"].map(truth), mine["answer"])  # scikit-learn reference
         assert rows[expert]["kappa"] == pytest.approx(kappa, abs=1e-9)
+        labels = ["setosa", "versicolor", "virginica"]
+        expected = confusion_matrix(mine["case_id"].map(truth), mine["answer"], labels=labels)  # scikit-learn
+        np.testing.assert_array_equal(np.array(report["confusion"][expert]), expected)
 
 
 def test_group_breakdown_table_csv_and_plot(iris_workspace, tmp_path):
@@ -79,6 +82,7 @@ def test_group_breakdown_table_csv_and_plot(iris_workspace, tmp_path):
     assert table.groupby("expert")["n_answered"].sum().to_dict() == answers["expert"].value_counts().to_dict()
     assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert "Competence by group" in result.stdout
+    assert "Confusion of ann" in result.stdout
 
 
 def test_narrow_terminal_without_colour(iris_workspace):
