@@ -112,6 +112,7 @@ def apply_temperature(logits: ArrayLike, temperature: float) -> np.ndarray:
     if not temperature > 0:
         raise ValueError(f"temperature must be > 0, got {temperature!r}")
     Z = np.asarray(logits, dtype=np.float64) / float(temperature)  # a new array
+    np.clip(Z, -1e300, 1e300, out=Z)  # +-inf would give inf - inf = NaN below
     Z -= Z.max(axis=1, keepdims=True)
     np.exp(Z, out=Z)
     Z /= Z.sum(axis=1, keepdims=True)

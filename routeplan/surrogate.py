@@ -171,7 +171,9 @@ def asymmetric_softmax_surrogate(
         -log psi_y - 1[m = y] log psi_defer - 1[m != y] log(1 - psi_defer)
 
     Its minimiser gives ``psi_k = P(y = k | x)`` and ``psi_defer = P(m = y | x)``:
-    valid probabilities, unlike the softmax surrogate's deferral score.
+    valid probabilities, unlike the softmax surrogate's deferral score. (The formulas
+    are written from memory of the paper; only its abstract could be checked here. The
+    minimiser property is checked numerically in ``tests/test_surrogate.py``.)
 
     Several experts (our extension; the paper treats one): each expert ``j`` gets its
     own deferral probability, normalised against the classes only,
