@@ -33,6 +33,19 @@ Strategies
     (pseudo-counts grow by the expected outcome, so its mean stays and its variance
     shrinks), so a batch does not pile onto one cell. Ties go to the larger posterior
     variance per fee.
+
+    A cell is bought by value only while its knowledge gradient per answer is at least
+    ``min_value_per_fee`` times its fee (default 1: an answer must be expected to save at
+    least what it costs, summed over the population's cases, which stand in for the cases
+    the policy will route). The budget left after that is spread uniformly over the pairs
+    of the experts that could matter, as ``random`` does: picks per expert in proportion to
+    its eligible cases, then per region in proportion to size, leaving out (expert,
+    region) cells where the expert, even if always right, would not beat the model's cost
+    on any case. The reason is measured, not assumed: the router learns ``P(right | x)``
+    from the answers and extrapolates where it has none, so it needs answers spread over
+    the feature space, which the region model cannot value; and ranking that rest by
+    variance per fee piled it onto the cheapest expert and starved the others (see
+    ``benchmarks/bench_rounds.py``). ``min_value_per_fee=0`` keeps the greedy to the end.
 ``uncertain``
     Largest posterior variance of the cell's accuracy per unit of fee, with the same fantasy
     update (uncertainty sampling at the level of the cell; Lewis & Gale, SIGIR 1994).
@@ -72,6 +85,16 @@ from cell-level figures (conditional on those counts):
   by simple random sampling inside each (cell, class). A pick's probability is
   ``k_cy / e_cy``; when a cell has fewer picks than classes, the classes that get one are
   drawn at random and the probability is ``(k_c / S_c) / e_cy`` (``S_c`` classes present).
+
+Design of a round
+-----------------
+``Selection.design[j, r, s]`` is the probability that a case eligible for expert ``j`` in
+region ``r`` and stratum ``s`` was asked of that expert in the round, by the audit or by the
+strategy: ``p_audit + (1 - p_audit) * p_strategy`` (the strategy draws from what the audit
+left). Unlike ``selection_prob`` (the probability of the part that made the pick, which the
+audit's unbiased estimates need), it covers the whole round and every group, picked or not,
+so that answers of several rounds and parts can be weighted together
+(:func:`routeplan.rehearse.stabilized_weights`).
 
 Budget, caps and capacities
 ---------------------------
@@ -379,6 +402,10 @@ class RegionCosts:
         """Number of population cases in region ``r``."""
         return int(self._sorted[r].size)
 
+    def max(self, r: int) -> float:
+        """Largest model cost in region ``r`` (0 if empty)."""
+        return float(self._sorted[r][-1]) if self._sorted[r].size else 0.0
+
     def total(self, r: int, t: ArrayLike) -> NDArray[np.float64]:
         """``sum_i min(model_cost_i, t)`` over region ``r``, for each threshold in ``t``."""
         t = np.asarray(t, dtype=np.float64)
@@ -523,6 +550,7 @@ def select_assignments(
     tight_n: int = 10,
     prior: tuple[float, float] = (1.0, 1.0),
     fee_floor: float = 1e-3,
+    min_value_per_fee: float = 1.0,
     max_steps: int = 2000,
     random_state: int | np.random.Generator | None = None,
 ) -> Selection:
@@ -553,6 +581,10 @@ def select_assignments(
         Beta prior of every accuracy.
     fee_floor : float, default=1e-3
         Fees below ``fee_floor * error_cost`` count as that when spending and scoring.
+    min_value_per_fee : float, default=1.0
+        ``value`` buys a cell only while its knowledge gradient per answer is at least this
+        times the fee; the rest of the budget is spread uniformly (module docstring). 0
+        keeps the greedy to the end.
     max_steps : int, default=2000
         Rough number of greedy steps; larger rounds take picks in chunks.
     random_state : int, Generator or None
@@ -571,6 +603,8 @@ def select_assignments(
         raise ValueError(f"audit_share must lie in [0, 1], got {audit_share!r}")
     if max_per_expert is not None and max_per_expert < 0:
         raise ValueError("max_per_expert must be >= 0")
+    if not (np.isfinite(min_value_per_fee) and min_value_per_fee >= 0):
+        raise ValueError(f"min_value_per_fee must be a number >= 0, got {min_value_per_fee!r}")
     rng = np.random.default_rng(random_state)
     eligible = pool.eligible.copy()
     eligible[:, pool.capacities <= 0] = False
@@ -591,7 +625,8 @@ def select_assignments(
         picks.append(_random_picks(eligible, ledger, rng, max_steps))
     else:
         k = _cell_counts(pool, costs, eligible, ledger, alpha, beta, fee_eff, strategy,
-                         (explore_min, explore_share, tight_sd, tight_n), max_steps, rng)
+                         (explore_min, explore_share, tight_sd, tight_n, min_value_per_fee),
+                         max_steps, rng)
         picks.append(_draw_cells(pool, eligible, k, rng))
     case, expert, prob, audit = (np.concatenate(parts) for parts in zip(*picks))
     sel = _finish(pool, costs, case, expert, prob, audit, alpha, beta, ledger, budget, notes)
@@ -728,8 +763,9 @@ def _step_size(ledger: _Ledger, n_eligible: int, max_steps: int) -> int:
 
 def _greedy(score: Callable[[], NDArray[np.float64]], cell_expert: NDArray[np.int64],
             room: NDArray[np.int64], ledger: _Ledger, step: int, rng: np.random.Generator,
-            update: Callable[[int, int], None]) -> None:
-    """Give picks to the best-scoring feasible cell, ``step`` at a time, until nothing fits."""
+            update: Callable[[int, int], None], worth: Callable[[int], bool] | None = None) -> None:
+    """Give picks to the best-scoring feasible cell, ``step`` at a time, until nothing fits
+    (or, given ``worth``, until the best cell is no longer worth a pick)."""
     order = rng.permutation(cell_expert.size)
     while True:
         expert_room = np.array([ledger.room(j) for j in range(ledger.fee.size)], dtype=np.int64)
@@ -739,6 +775,8 @@ def _greedy(score: Callable[[], NDArray[np.float64]], cell_expert: NDArray[np.in
             return
         values = score()[order]
         best = order[int(np.argmax(np.where(feasible, values, -np.inf)))]
+        if worth is not None and not worth(int(best)):
+            return
         q = int(min(step, can[best]))
         ledger.take(int(cell_expert[best]), q)
         room[best] -= q
@@ -780,7 +818,7 @@ def _picks_to_tight(alpha, beta, have, tight_sd: float, tight_n: int) -> NDArray
 def _cell_counts(pool, costs, eligible, ledger, alpha0, beta0, fee_eff, strategy, floor,
                  max_steps, rng) -> NDArray[np.int64]:
     """Strategy picks per (expert, region) cell: exploration floor, then the greedy."""
-    explore_min, explore_share, tight_sd, tight_n = floor
+    explore_min, explore_share, tight_sd, tight_n, min_value = floor
     m, r = pool.n_experts, pool.n_regions
     room = np.zeros((m, r), dtype=np.int64)
     for j in range(m):
@@ -815,8 +853,45 @@ def _cell_counts(pool, costs, eligible, ledger, alpha0, beta0, fee_eff, strategy
             return variance()
         return scorer[0].score(cell_fee, variance())
 
-    _greedy(score, cell_expert, room, ledger, _step_size(ledger, int(room.sum()), max_steps), rng, update)
+    step = _step_size(ledger, int(room.sum()), max_steps)
+    if not scorer or min_value <= 0:
+        _greedy(score, cell_expert, room, ledger, step, rng, update)
+        return k.reshape(m, r)
+
+    def worth(c: int) -> bool:
+        return bool(scorer[0].kg[c] >= min_value * cell_fee[c])
+
+    _greedy(score, cell_expert, room, ledger, step, rng, update, worth)
+    useful = _could_matter(pool, costs, fee_eff).ravel()
+    room_rest = np.where(useful, room, 0)
+    _spread_rest(room_rest, cell_expert, ledger, step, rng, update)
     return k.reshape(m, r)
+
+
+def _could_matter(pool: Pool, costs: RegionCosts, fee_eff: NDArray[np.float64]) -> NDArray[np.bool_]:
+    """Per (expert, region): could the expert, even if always right, beat the model on some case there?"""
+    top = np.array([costs.max(g) for g in range(pool.n_regions)])
+    return (fee_eff[:, None] < top[None, :]) & (pool.capacities > 0)[:, None]
+
+
+def _spread_rest(room: NDArray[np.int64], cell_expert: NDArray[np.int64], ledger: _Ledger, step: int,
+                 rng: np.random.Generator, update: Callable[[int, int], None]) -> None:
+    """Budget the value scores leave: uniform over the remaining pairs (as ``random``), cell by cell."""
+    m = ledger.fee.size
+    r = room.size // max(m, 1)
+    e = room.reshape(m, r).sum(axis=1)
+    n = np.zeros(m, dtype=np.int64)
+    _greedy(lambda: -n / np.maximum(e, 1), np.arange(m), e.copy(), ledger, step, rng,
+            lambda j, q: n.__setitem__(j, n[j] + q))
+    for j in np.flatnonzero(n):
+        cells = room[j * r:(j + 1) * r].astype(np.float64)
+        quota = n[j] * cells / cells.sum()
+        base = np.minimum(np.floor(quota).astype(np.int64), cells.astype(np.int64))
+        for g in np.argsort(-(quota - base), kind="stable")[: int(n[j]) - int(base.sum())]:
+            base[g] += 1
+        for g in np.flatnonzero(base):
+            room[j * r + g] -= int(base[g])
+            update(j * r + int(g), int(base[g]))
 
 
 def _explore(need, room, cell_expert, ledger, money, rng, update) -> None:

@@ -352,6 +352,53 @@ def test_random_is_uniform_over_eligible_pairs():
     assert np.allclose(sel.selection_prob, ratio[sel.expert])
 
 
+def test_value_spreads_budget_beyond_its_worth_uniformly():
+    # Documented rule: value buys cells only while KG per answer >= min_value_per_fee x fee; the rest
+    # is spread as random spreads it, so with an unreachable bar every expert ends with the same share
+    # of its eligible pairs up to one pick per region (definition of uniform over pairs).
+    pool = make_pool(n=1200, fees=(0.1, 0.1, 0.1), capacities=(1.0, 1.0, 1.0))
+    sel = select_assignments(pool, budget=30, audit_share=0.0, explore_share=0.0, min_value_per_fee=1e12,
+                             random_state=0)
+    k = np.bincount(sel.expert, minlength=3)
+    assert k.sum() == 300 and np.all(np.abs(k - 100) <= pool.n_regions)
+    greedy = select_assignments(pool, budget=30, audit_share=0.0, explore_share=0.0, min_value_per_fee=0.0,
+                                random_state=0)
+    assert not np.array_equal(np.sort(greedy.cell_picks.ravel()), np.sort(sel.cell_picks.ravel()))
+
+
+def test_spread_leaves_out_experts_that_cannot_beat_the_model():
+    # An expert whose fee exceeds every model cost of the pool cannot be the cheapest option even if
+    # always right (Chow's rule, cost 1 - max P <= 0.6 here), so the spread gives it nothing.
+    answered = np.full((2, 4), 50.0)
+    pool = make_pool(fees=(0.1, 0.7), capacities=(1.0, 1.0), answered=answered, correct=answered * 0.9)
+    sel = select_assignments(pool, budget=20, audit_share=0.0, min_value_per_fee=1e12, random_state=0)
+    assert sel.expert.size > 0 and np.all(sel.expert == 0)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("strategy", ["value", "random"])
+def test_design_is_the_chance_of_being_asked(strategy):
+    # Inclusion probability (Horvitz & Thompson, JASA 1952, definition): over many seeds, the share of
+    # plans that ask expert j about a case matches design[j, region, stratum] of that case's group,
+    # within 4 binomial standard errors (seeded simulation, numpy only).
+    pool = make_pool(n=120, fees=(0.1, 0.2), capacities=(1.0, 1.0), n_regions=2, n_classes=2)
+    n_seeds = 400
+    hits = np.zeros((120, 2))
+    design = np.zeros((2, 2, 2))
+    for seed in range(n_seeds):
+        sel = select_assignments(pool, budget=3, audit_share=0.3, strategy=strategy, random_state=seed)
+        hits[sel.case, sel.expert] += 1
+        design += sel.design / n_seeds
+    for j in range(2):
+        for r in range(2):
+            for y in range(2):
+                group = (pool.region == r) & (pool.stratum == y)
+                p = design[j, r, y]
+                observed = hits[group, j].mean() / n_seeds
+                se = np.sqrt(p * (1 - p) / (n_seeds * group.sum()))
+                assert abs(observed - p) <= 4 * se + 1e-3, (j, r, y, observed, p)
+
+
 # --------------------------------------------------------------------------- unbiasedness
 
 

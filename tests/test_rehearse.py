@@ -1,4 +1,4 @@
-"""Rehearsal on the synthetic scenario of routeplan.simulate."""
+"""Rehearsal on the synthetic scenario of routeplan.simulate, and its measuring devices."""
 
 from __future__ import annotations
 
@@ -7,19 +7,28 @@ import json
 import numpy as np
 import pandas as pd
 import pytest
+from scipy import signal, stats
 
-pytestmark = pytest.mark.slow
-
-from routeplan.rehearse import budget_to_reach, rehearse, system_cost_exact
+from routeplan.rehearse import (
+    budget_schedule,
+    budget_to_reach,
+    digits_experts_scenario,
+    rehearse,
+    stabilized_weights,
+    system_cost_exact,
+)
 from sklearn_workspace import invoke
+
+TINY_ROUTER = {"hidden": (16,), "max_epochs": 8, "patience": 3}
 
 
 @pytest.fixture(scope="module")
 def small():
-    return rehearse(n_pool=600, n_eval=1500, n_rounds=2, budget_per_round=4.0, max_epochs=10,
-                    strategies=("value", "random"), random_state=3)
+    return rehearse(n_pool=600, n_eval=1500, budgets=[2.0, 5.0], router_params=TINY_ROUTER, n_folds=2,
+                    n_reference_fits=1, strategies=("value", "random"), random_state=3)
 
 
+@pytest.mark.slow
 def test_no_router_beats_the_bayes_optimal_cost(small):
     # Bayes decision theory: the option of least expected cost per case is a lower bound for any
     # routing evaluated with the same known probabilities (common textbook fact).
@@ -27,9 +36,11 @@ def test_no_router_beats_the_bayes_optimal_cost(small):
     assert small.full_information_cost >= small.bayes_cost - 1e-12
 
 
-def test_spend_never_exceeds_the_budgets(small):
+@pytest.mark.slow
+def test_spend_never_exceeds_the_cumulative_budgets(small):
+    # The schedule is cumulative: after round t the fees paid add up to at most budgets[t] (definition).
     for _, rows in small.curves.groupby("strategy"):
-        assert (rows["spend"].to_numpy() <= 4.0 * rows["round"].to_numpy() + 1e-9).all()
+        assert (rows["spend"].to_numpy() <= np.array([2.0, 5.0]) + 1e-9).all()
         assert np.all(np.diff(rows["answers"].to_numpy()) > 0)
 
 
@@ -38,23 +49,105 @@ def test_system_cost_exact_picks_the_routed_entries():
     assert system_cost_exact(costs, np.array([1, 1])) == pytest.approx(0.35)  # (0.5 + 0.2) / 2, arithmetic
 
 
-def test_budget_to_reach():
-    curves = pd.DataFrame({"strategy": ["a", "a", "b"], "spend": [5.0, 10.0, 5.0], "system_cost": [0.3, 0.2, 0.4]})
+def test_budget_to_reach_first_and_sustained():
+    # Hand-made curve: "a" dips under 0.25 at 10, comes back above at 20, stays under from 40.
+    curves = pd.DataFrame({"strategy": ["a"] * 4 + ["b"], "spend": [5.0, 10.0, 20.0, 40.0, 5.0],
+                           "system_cost": [0.3, 0.2, 0.3, 0.2, 0.4]})
     assert budget_to_reach(curves, 0.25) == {"a": 10.0, "b": float("inf")}
+    assert budget_to_reach(curves, 0.25, sustained=True) == {"a": 40.0, "b": float("inf")}
 
 
+def test_budget_schedule_is_geometric():
+    # Geometric progression (definition): constant ratio, given end points.
+    steps = np.array(budget_schedule(2.0, 128.0, 7))
+    assert steps[0] == pytest.approx(2.0) and steps[-1] == pytest.approx(128.0)
+    assert np.allclose(steps[1:] / steps[:-1], 2.0)
+    assert budget_schedule(3.0, 5.0, 1) == [5.0]
+    with pytest.raises(ValueError):
+        budget_schedule(5.0, 3.0, 4)
+
+
+def test_digits_scenario_pools_scikit_learn_digits():
+    # scikit-learn's bundled digits (1797 images of 8x8): a 4x4 feature is the mean of a 2x2 block,
+    # computed here by another route (scipy.signal.convolve2d with a 2x2 box, every second value).
+    from sklearn.datasets import load_digits
+
+    data = load_digits()
+    scn = digits_experts_scenario(random_state=5)
+    order = np.random.default_rng(5).permutation(1797)
+    assert scn.X.shape == (1797, 16) and np.array_equal(scn.y, data.target[order])
+    image = data.images[order[0]] / 16.0
+    box = signal.convolve2d(image, np.full((2, 2), 0.25), mode="valid")[::2, ::2]
+    assert np.allclose(scn.X[0], box.ravel(), atol=1e-6)
+
+
+@pytest.mark.slow
+def test_digits_experts_follow_the_published_protocol():
+    # Mozannar & Sontag (ICML 2020, section 7): the expert is always right on its classes and
+    # answers uniformly at random over all 10 classes elsewhere. Pearson's chi-square test
+    # (scipy.stats.chisquare) against the uniform law on the other classes' answers.
+    scn = digits_experts_scenario(subsets=((0, 1, 2),), fees=(0.1,), random_state=0)
+    answers = np.concatenate([scn.answers(seed)[:, 0] for seed in range(20)])
+    y = np.tile(scn.y, 20)
+    mine = y <= 2
+    assert np.all(answers[mine] == y[mine])
+    counts = np.bincount(answers[~mine], minlength=10)
+    assert stats.chisquare(counts).pvalue > 1e-3
+    assert abs(np.mean(answers[~mine] == y[~mine]) - 0.1) < 0.01  # right 1 time in 10 by chance
+
+
+def test_stabilized_weights_hand_example():
+    # One region, two strata of 100 cases sampled at 0.2 and 0.05: the region's mean chance is
+    # 0.125, so the weights are 0.125 / 0.2 = 0.625 and 0.125 / 0.05 = 2.5 (already mean 1 over
+    # the 20 + 5 answers), and the weighted strata shares equal the population's, 1/2 each
+    # (stabilized weights, Robins, Hernan & Brumback, Epidemiology 2000; hand computation).
+    region = np.zeros(200, dtype=int)
+    stratum = np.repeat([0, 1], 100)
+    design = np.array([[[0.2, 0.05]]])
+    answered = np.zeros((200, 1), dtype=bool)
+    answered[:20, 0] = True
+    answered[100:105, 0] = True
+    w = stabilized_weights([design], region, stratum, answered)[:, 0]
+    assert np.allclose(w[:20], 0.625) and np.allclose(w[100:105], 2.5)
+    assert np.isnan(w[~answered[:, 0]]).all()
+    assert w[:20].sum() == pytest.approx(w[100:105].sum())
+
+
+def test_stabilized_weights_sum_rounds_and_ignore_the_region():
+    # Two rounds, balance heuristic (Veach & Guibas, SIGGRAPH 1995): chances add up over rounds;
+    # a design that differs only between regions needs no correction, so every weight is 1.
+    region = np.repeat([0, 1], 50)
+    stratum = np.tile([0, 1], 50)
+    first = np.array([[[0.1, 0.1], [0.4, 0.4]]])
+    second = np.array([[[0.3, 0.3], [0.0, 0.0]]])
+    answered = np.ones((100, 1), dtype=bool)
+    assert np.allclose(stabilized_weights([first, second], region, stratum, answered), 1.0)
+    uneven = np.array([[[0.3, 0.1], [0.2, 0.2]]])
+    w = stabilized_weights([first, uneven], region, stratum, answered)[:, 0]
+    # region 0: chances 0.4 and 0.2, mean 0.3 -> 0.75 and 1.5 before scaling to mean 1 (mean 1.0625)
+    assert w[0] / w[1] == pytest.approx(0.75 / 1.5)
+
+
+@pytest.mark.slow
 def test_cli_rehearse_json_and_plot(tmp_path):
     png = tmp_path / "curves.png"
     result = invoke(tmp_path, "rehearse", "--rounds", "1", "--budget", "3", "--cases", "300",
                     "--strategies", "random", "--plot", str(png), "--json")
     data = json.loads(result.stdout)
     assert [row["strategy"] for row in data["curves"]] == ["random"]
+    assert data["bayes_cost"] <= data["full_information_cost"] + 1e-12
     assert png.read_bytes()[:4] == b"\x89PNG"
 
 
 def test_cli_rehearse_refuses_unknown_strategy(tmp_path):
     from click.testing import CliRunner
+
     from routeplan.cli import cli
 
     result = CliRunner().invoke(cli, ["rehearse", "--strategies", "psychic"])
     assert result.exit_code == 2 and "psychic" in result.stderr
+
+
+def test_rehearse_refuses_unknown_weighting():
+    with pytest.raises(ValueError, match="weighting"):
+        rehearse(n_pool=100, n_eval=100, weighting="magic")

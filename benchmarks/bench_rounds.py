@@ -1,0 +1,161 @@
+"""Label efficiency of the planner's strategies, measured side by side in one run.
+
+Goal (issue "labelling rounds"): the budget, in fee units, that the default strategy
+(``value``) needs to bring the exact held-out system cost within 0.01 of the full-information
+cost is at most a third of what ``random`` needs (aim: a fifth), as medians over at least 5
+seeds, and ``value`` is never worse than ``random`` at any budget of the median curve.
+
+Two scenarios, each played by :func:`routeplan.rehearse.rehearse` (same planner as
+``routeplan round plan``, a two-stage plug-in router fitted after each round on cross-fitted
+class probabilities, exact costs on held-out cases from known probabilities):
+
+* synthetic: :func:`routeplan.simulate.make_scenario` with three experts of fees 0.05, 0.125
+  and 0.2 and different regional strengths; 3,000 pool cases, 5,000 held out; seed ``s``
+  seeds the scenario, the answers, the planner and the routers.
+* digits: scikit-learn's bundled digits with three simulated experts in the protocol of
+  Mozannar & Sontag (ICML 2020, section 7): each always right on its classes (0-3, 3-6,
+  6-9), uniformly random elsewhere, fees 0.02, 0.05 and 0.1
+  (:func:`routeplan.rehearse.digits_experts_scenario`, images pooled to 4x4); 898 pool
+  cases, 899 held out; seed ``s`` orders the cases and seeds the rest.
+
+For each seed the target is that seed's full-information cost + 0.01. "Reach" is the first
+budget of the schedule at which the cost is at or below the target; "sustained" also needs
+every larger budget to stay there. Budgets are cumulative, on a geometric schedule, so a
+ratio is resolved to one step of the schedule (a factor ``2 ** (1/2)``).
+
+Run: ``.venv/bin/python benchmarks/bench_rounds.py [--seeds 5] [--jobs 2] [--fits 1]``
+(about 10-15 minutes on a 2-core machine).
+"""
+
+from __future__ import annotations
+
+import argparse
+import math
+import time
+from concurrent.futures import ProcessPoolExecutor
+
+import numpy as np
+import pandas as pd
+
+STRATEGIES = ("value", "uncertain", "random")
+TOLERANCE = 0.01
+GOAL_RATIO, AIM_RATIO = 1 / 3, 1 / 5
+SCENARIOS = {
+    "synthetic": {"first": 10.0, "last": 640.0, "n_rounds": 13, "n_regions": 6},
+    "digits": {"first": 1.0, "last": 64.0, "n_rounds": 13, "n_regions": 10},
+}
+
+
+def play(kind: str, seed: int, n_fits: int, weighting: str) -> dict:
+    """One rehearsal of every strategy on one scenario and seed (runs in a worker process)."""
+    import torch
+
+    from routeplan.rehearse import budget_schedule, digits_experts_scenario, rehearse
+
+    torch.set_num_threads(1)
+    spec = SCENARIOS[kind]
+    budgets = budget_schedule(spec["first"], spec["last"], spec["n_rounds"])
+    start = time.perf_counter()
+    if kind == "synthetic":
+        result = rehearse(n_pool=3000, n_eval=5000, budgets=budgets, n_regions=spec["n_regions"],
+                          strategies=STRATEGIES, n_router_fits=n_fits, weighting=weighting, random_state=seed)
+    else:
+        result = rehearse(digits_experts_scenario(random_state=seed), n_pool=900, budgets=budgets,
+                          n_regions=spec["n_regions"], strategies=STRATEGIES, n_router_fits=n_fits,
+                          weighting=weighting, random_state=seed)
+    curves = result.curves.assign(budget=np.tile(budgets, len(STRATEGIES)), seed=seed)
+    return {"kind": kind, "seed": seed, "curves": curves, "full": result.full_information_cost,
+            "bayes": result.bayes_cost, "seconds": time.perf_counter() - start}
+
+
+def reach(curve: pd.DataFrame, target: float, sustained: bool) -> float:
+    """First scheduled budget at which the cost is within target (and stays, if sustained)."""
+    rows = curve.sort_values("budget")
+    ok = rows["system_cost"].to_numpy() <= target
+    if sustained:
+        ok = np.logical_and.accumulate(ok[::-1])[::-1]
+    hit = rows["budget"].to_numpy()[ok]
+    return float(hit.min()) if hit.size else math.inf
+
+
+def _fmt(value: float) -> str:
+    return "never" if math.isinf(value) else f"{value:.3g}"
+
+
+def _ratio(a: float, b: float) -> str:
+    if math.isinf(a) and math.isinf(b):
+        return "n/a (neither reached)"
+    if math.isinf(b):
+        return "0 (random never reached)"
+    return "inf (value never reached)" if math.isinf(a) else f"{a / b:.2f}"
+
+
+def report(kind: str, runs: list[dict]) -> dict:
+    """Print per-seed and median figures for one scenario; return the medians."""
+    runs = sorted(runs, key=lambda r: r["seed"])
+    print(f"\n== {kind}: {len(runs)} seeds ==")
+    print(f"{'seed':>4} {'full':>7} {'bayes':>7} " + " ".join(f"{s:>10}" for s in STRATEGIES)
+          + f" {'value/random':>13}   (first budget within full + {TOLERANCE}; sustained in brackets)")
+    table = {s: [] for s in STRATEGIES}
+    table_sus = {s: [] for s in STRATEGIES}
+    for run in runs:
+        target = run["full"] + TOLERANCE
+        cells = []
+        for s in STRATEGIES:
+            curve = run["curves"][run["curves"]["strategy"] == s]
+            first, kept = reach(curve, target, False), reach(curve, target, True)
+            table[s].append(first)
+            table_sus[s].append(kept)
+            cells.append(f"{_fmt(first):>5} ({_fmt(kept):>5})".rjust(10))
+        print(f"{run['seed']:>4} {run['full']:7.4f} {run['bayes']:7.4f} " + " ".join(cells)
+              + f" {_ratio(table['value'][-1], table['random'][-1]):>13}")
+    med = {s: float(np.median(table[s])) for s in STRATEGIES}
+    med_sus = {s: float(np.median(table_sus[s])) for s in STRATEGIES}
+    print("median budget to reach: " + ", ".join(f"{s} {_fmt(med[s])}" for s in STRATEGIES)
+          + f"; value/random = {_ratio(med['value'], med['random'])} (goal <= {GOAL_RATIO:.2f}, aim {AIM_RATIO:.2f})")
+    print("median budget, sustained: " + ", ".join(f"{s} {_fmt(med_sus[s])}" for s in STRATEGIES)
+          + f"; value/random = {_ratio(med_sus['value'], med_sus['random'])}")
+    curves = pd.concat([r["curves"].assign(gap=r["curves"]["system_cost"] - r["full"]) for r in runs])
+    median_curve = curves.pivot_table(index="budget", columns="strategy", values="gap", aggfunc="median")
+    spend = curves.pivot_table(index="budget", columns="strategy", values="spend", aggfunc="median")
+    print("median gap to the full-information cost (system cost - full), by cumulative budget:")
+    print(f"{'budget':>8} " + " ".join(f"{s:>10}" for s in STRATEGIES) + f" {'spent (value)':>14}")
+    for budget, row in median_curve.iterrows():
+        print(f"{budget:8.3g} " + " ".join(f"{row[s]:+10.4f}" for s in STRATEGIES) + f" {spend.loc[budget, 'value']:14.3g}")
+    worse = median_curve.index[median_curve["value"] > median_curve["random"]].tolist()
+    print("value <= random at every point of the median curve: "
+          + ("yes" if not worse else f"NO (worse at budgets {', '.join(f'{b:.3g}' for b in worse)})"))
+    mean_gap = median_curve.mean()
+    print("mean over the schedule of the median gap: " + ", ".join(f"{s} {mean_gap[s]:+.4f}" for s in STRATEGIES))
+    return {"median": med, "sustained": med_sus, "worse_at": worse}
+
+
+def main() -> None:
+    """Command-line entry point."""
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--seeds", type=int, default=5, help="Seeds per scenario (0..N-1).")
+    parser.add_argument("--jobs", type=int, default=2, help="Worker processes.")
+    parser.add_argument("--fits", type=int, default=1, help="Router seeds averaged per point.")
+    parser.add_argument("--weighting", default="stabilized", help="stabilized, recorded or none.")
+    parser.add_argument("--only", choices=sorted(SCENARIOS), default=None)
+    args = parser.parse_args()
+    kinds = [args.only] if args.only else list(SCENARIOS)
+    tasks = [(k, s) for k in kinds for s in range(args.seeds)]
+    start = time.perf_counter()
+    with ProcessPoolExecutor(max_workers=max(1, args.jobs)) as pool:
+        futures = [pool.submit(play, k, s, args.fits, args.weighting) for k, s in tasks]
+        runs = [f.result() for f in futures]
+    print(f"strategies {', '.join(STRATEGIES)}; weighting {args.weighting}; {args.fits} router fit(s) per point; "
+          f"{len(tasks)} rehearsals in {time.perf_counter() - start:.0f} s wall with {args.jobs} worker(s)")
+    summary = {k: report(k, [r for r in runs if r["kind"] == k]) for k in kinds}
+    print("\nsummary (median budget to reach full-information cost + 0.01):")
+    for k, fig in summary.items():
+        m = fig["median"]
+        ok = (not math.isinf(m["value"])) and (math.isinf(m["random"]) or m["value"] <= GOAL_RATIO * m["random"])
+        print(f"  {k}: value {_fmt(m['value'])}, random {_fmt(m['random'])}, ratio {_ratio(m['value'], m['random'])}"
+              f" -> goal {'met' if ok and not fig['worse_at'] else 'NOT met'}"
+              + ("" if not fig["worse_at"] else " (value worse than random somewhere on the median curve)"))
+
+
+if __name__ == "__main__":
+    main()
