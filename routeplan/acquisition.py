@@ -119,7 +119,7 @@ from scipy.special import betaln, gammaln
 
 __all__ = [
     "STRATEGIES",
-    "Pool",
+    "PlannerInput",
     "Selection",
     "RegionCosts",
     "beta_posterior",
@@ -142,7 +142,7 @@ _EPS = 1e-9
 
 
 @dataclass(frozen=True)
-class Pool:
+class PlannerInput:
     """What the planner knows about one round's candidates, as arrays.
 
     Attributes
@@ -514,8 +514,8 @@ class _Ledger:
 # --------------------------------------------------------------------------- the planner
 
 
-def _check_pool(pool: Pool) -> None:
-    """Check shapes and ranges of a Pool."""
+def _check_pool(pool: PlannerInput) -> None:
+    """Check shapes and ranges of a PlannerInput."""
     n, m = pool.eligible.shape
     r = pool.n_regions
     if pool.region.shape != (n,) or pool.stratum.shape != (n,):
@@ -538,7 +538,7 @@ def _check_pool(pool: Pool) -> None:
 
 
 def select_assignments(
-    pool: Pool,
+    pool: PlannerInput,
     *,
     budget: float,
     strategy: str = "value",
@@ -561,7 +561,7 @@ def select_assignments(
 
     Parameters
     ----------
-    pool : Pool
+    pool : PlannerInput
     budget : float
         Largest sum of fees, > 0.
     strategy : {"value", "uncertain", "random"}, default="value"
@@ -634,7 +634,7 @@ def select_assignments(
     return Selection(**{**sel.__dict__, "design": design})
 
 
-def _design(pool: Pool, before: NDArray[np.bool_], after: NDArray[np.bool_], audit_counts: NDArray[np.int64],
+def _design(pool: PlannerInput, before: NDArray[np.bool_], after: NDArray[np.bool_], audit_counts: NDArray[np.int64],
             strategy: str, sel: Selection) -> NDArray[np.float64]:
     """Per (expert, region, stratum): chance that an eligible case was chosen this round."""
     m, r = pool.n_experts, pool.n_regions
@@ -693,7 +693,7 @@ def _cheapest_fee(ledger: _Ledger) -> float:
     return float(min(able)) if able else math.inf
 
 
-def _cell_posterior(pool: Pool, prior: tuple[float, float]) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+def _cell_posterior(pool: PlannerInput, prior: tuple[float, float]) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
     """Beta posterior per cell, with open assignments as fantasy answers at the posterior mean."""
     alpha, beta = beta_posterior(pool.correct, pool.answered, prior)
     mean = alpha / (alpha + beta)
@@ -868,7 +868,7 @@ def _cell_counts(pool, costs, eligible, ledger, alpha0, beta0, fee_eff, strategy
     return k.reshape(m, r)
 
 
-def _could_matter(pool: Pool, costs: RegionCosts, fee_eff: NDArray[np.float64]) -> NDArray[np.bool_]:
+def _could_matter(pool: PlannerInput, costs: RegionCosts, fee_eff: NDArray[np.float64]) -> NDArray[np.bool_]:
     """Per (expert, region): could the expert, even if always right, beat the model on some case there?"""
     top = np.array([costs.max(g) for g in range(pool.n_regions)])
     return (fee_eff[:, None] < top[None, :]) & (pool.capacities > 0)[:, None]
@@ -915,7 +915,7 @@ def _explore(need, room, cell_expert, ledger, money, rng, update) -> None:
 class _ValueScore:
     """KG(*) score per cell: the best KG_q / (q * fee) over q in 1, 2, 4, ..., 64."""
 
-    def __init__(self, pool: Pool, costs: RegionCosts, alpha: NDArray[np.float64],
+    def __init__(self, pool: PlannerInput, costs: RegionCosts, alpha: NDArray[np.float64],
                  beta: NDArray[np.float64]) -> None:
         m, r = pool.n_experts, pool.n_regions
         self.costs = costs
@@ -992,7 +992,7 @@ def _spread(k: int, sizes: NDArray[np.int64],
     return picks, factor
 
 
-def _draw_cells(pool: Pool, eligible: NDArray[np.bool_], k: NDArray[np.int64], rng: np.random.Generator):
+def _draw_cells(pool: PlannerInput, eligible: NDArray[np.bool_], k: NDArray[np.int64], rng: np.random.Generator):
     """Simple random samples inside each (expert, region, class) for the cell counts ``k``."""
     n_strata = int(pool.stratum.max()) + 1 if pool.stratum.size else 1
     r = pool.n_regions
@@ -1016,7 +1016,7 @@ def _draw_cells(pool: Pool, eligible: NDArray[np.bool_], k: NDArray[np.int64], r
     return _stack(cases, experts, probs, audit=False)
 
 
-def _gains(pool: Pool, costs: RegionCosts, cell: NDArray[np.int64], alpha, beta) -> NDArray[np.float64]:
+def _gains(pool: PlannerInput, costs: RegionCosts, cell: NDArray[np.int64], alpha, beta) -> NDArray[np.float64]:
     """Per expert: sum over regions of the knowledge gradient of the cell's picks."""
     m, r = cell.shape
     fees = pool.fees.astype(np.float64)

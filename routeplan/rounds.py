@@ -33,7 +33,7 @@ from typing import Sequence
 import numpy as np
 import pandas as pd
 
-from .acquisition import STRATEGIES, Pool, Selection, class_probabilities, model_decision_cost, select_assignments
+from .acquisition import STRATEGIES, PlannerInput, Selection, class_probabilities, model_decision_cost, select_assignments
 from .errors import InputError
 from .files import write_csv
 from .workspace import Workspace
@@ -299,7 +299,7 @@ def _plan_result(sel: Selection, experts: list[dict], strategy, seed, budget, au
     )
 
 
-def _check_something_fits(pool: Pool, experts: list[dict], budget: float) -> None:
+def _check_something_fits(pool: PlannerInput, experts: list[dict], budget: float) -> None:
     """Refuse a plan that cannot hold a single assignment, saying why."""
     open_experts = pool.capacities > 0
     if not open_experts.any():
@@ -314,8 +314,8 @@ def _check_something_fits(pool: Pool, experts: list[dict], budget: float) -> Non
         raise InputError(f"--budget {budget:g} buys no assignment: the cheapest fee is {cheapest:g}")
 
 
-def _pool(ws: Workspace, include_unverified: bool, n_regions: int, seed: int) -> tuple[Pool, list[str], list[dict]]:
-    """Read the workspace into a Pool; also return candidate case ids and the experts."""
+def _pool(ws: Workspace, include_unverified: bool, n_regions: int, seed: int) -> tuple[PlannerInput, list[str], list[dict]]:
+    """Read the workspace into a PlannerInput; also return candidate case ids and the experts."""
     from .competence import regions_from_features
 
     frame, X = ws.case_frame()
@@ -343,7 +343,7 @@ def _pool(ws: Workspace, include_unverified: bool, n_regions: int, seed: int) ->
     correct, answered = _answer_counts(a_case, a_expert, answer, truth, region, len(names), r)
     taken, pending = _assigned(ws, position, region, names, r)
     eligible = _eligibility(len(frame), candidates, len(names), [(a_case, a_expert), taken])
-    pool = Pool(
+    pool = PlannerInput(
         eligible=eligible, region=region[candidates], stratum=stratum[candidates],
         fees=np.array([e["fee"] for e in experts], dtype=np.float64),
         capacities=np.array([e["capacity"] for e in experts], dtype=np.float64),

@@ -15,7 +15,7 @@ import pytest
 from scipy import stats
 
 from routeplan.acquisition import (
-    Pool,
+    PlannerInput,
     RegionCosts,
     beta_posterior,
     betabinomial_pmf,
@@ -35,13 +35,13 @@ def make_pool(
     seed: int = 0,
     answered: np.ndarray | None = None,
     correct: np.ndarray | None = None,
-) -> Pool:
+) -> PlannerInput:
     """A seeded pool: every pair eligible unless a test says otherwise."""
     rng = np.random.default_rng(seed)
     m = len(fees)
     region = rng.integers(0, n_regions, n)
     zeros = np.zeros((m, n_regions))
-    return Pool(
+    return PlannerInput(
         eligible=np.ones((n, m), dtype=bool),
         region=region,
         stratum=rng.integers(0, n_classes, n),
@@ -56,8 +56,8 @@ def make_pool(
     )
 
 
-def with_(pool: Pool, **changes) -> Pool:
-    return Pool(**{**pool.__dict__, **changes})
+def with_(pool: PlannerInput, **changes) -> PlannerInput:
+    return PlannerInput(**{**pool.__dict__, **changes})
 
 
 # --------------------------------------------------------------------------- building blocks
@@ -153,7 +153,7 @@ def test_knowledge_gradient_zero_when_expert_never_cheapest():
 # --------------------------------------------------------------------------- constraints
 
 
-def _check_constraints(pool: Pool, sel, budget: float, max_per_expert):
+def _check_constraints(pool: PlannerInput, sel, budget: float, max_per_expert):
     m = pool.n_experts
     # budget: sum of real fees (common practice: a budget caps total spend); 1e-9 relative slack for float sums
     spend = pool.fees[sel.expert].sum()
@@ -320,7 +320,7 @@ def test_value_targets_region_where_model_is_unsure():
     region = np.repeat([0, 1], n // 2)
     model_cost = np.where(region == 0, 0.0, 0.45)
     answered = np.full((1, 2), 12.0)
-    pool = Pool(eligible=np.ones((n, 1), bool), region=region, stratum=np.zeros(n, dtype=int),
+    pool = PlannerInput(eligible=np.ones((n, 1), bool), region=region, stratum=np.zeros(n, dtype=int),
                 fees=np.array([0.05]), capacities=np.array([1.0]), correct=answered * 0.75, answered=answered,
                 pending=np.zeros((1, 2)), model_cost=model_cost, population_region=region)
     sel = select_assignments(pool, budget=5, audit_share=0.0, random_state=0)
@@ -415,7 +415,7 @@ def test_audit_estimate_of_accuracy_is_unbiased():
     right = rng.random(n) < accuracy  # fixed finite population of the expert's correctness
     model_cost = np.array([0.02, 0.3, 0.5])[region] * rng.uniform(0.5, 1.5, n)
     answered = np.array([[30.0, 2.0, 2.0], [30.0, 30.0, 30.0]])
-    pool = Pool(eligible=np.ones((n, 2), bool), region=region, stratum=rng.integers(0, 2, n),
+    pool = PlannerInput(eligible=np.ones((n, 2), bool), region=region, stratum=rng.integers(0, 2, n),
                 fees=np.array([0.1, 0.15]), capacities=np.array([1.0, 1.0]),
                 correct=answered * np.array([[0.95], [0.8]]), answered=answered, pending=np.zeros((2, n_regions)),
                 model_cost=model_cost, population_region=region)
