@@ -245,7 +245,7 @@ def plan_round(
     fees = pool.fees
     with ws.transaction():
         round_id = ws.add_round(strategy=strategy, budget=float(budget), seed=int(seed), due_at=due_at,
-                                detail=_detail(plan, max_per_expert, include_unverified, n_regions))
+                                detail=_detail(plan, max_per_expert, include_unverified, n_regions, sel))
         rows = [
             (round_id, case_ids[sel.case[i]], names[sel.expert[i]], "audit" if sel.audit[i] else strategy,
              float(sel.selection_prob[i]), int(sel.audit[i]), float(fees[sel.expert[i]]))
@@ -264,9 +264,15 @@ def _due_at(due_days: float | None) -> str | None:
     return (datetime.now(timezone.utc) + timedelta(days=float(due_days))).isoformat(timespec="seconds")
 
 
-def _detail(plan: RoundPlan, max_per_expert, include_unverified, n_regions) -> dict:
-    """What the round row keeps besides its columns."""
+def _detail(plan: RoundPlan, max_per_expert, include_unverified, n_regions, sel: Selection) -> dict:
+    """What the round row keeps besides its columns.
+
+    ``design`` is :attr:`routeplan.acquisition.Selection.design` (experts x regions x classes):
+    each group's chance of being asked in this round, kept so that later fits can weight
+    answers by the combined design over rounds.
+    """
     return {
+        "design": np.round(np.asarray(sel.design, dtype=float), 12).tolist(),
         "audit_share": plan.audit_share,
         "max_per_expert": max_per_expert,
         "include_unverified": bool(include_unverified),

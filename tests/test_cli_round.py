@@ -124,6 +124,10 @@ def test_plan_respects_budget_caps_capacities_and_truth(ws):
     assert len({(r[0], r[1]) for r in got}) == len(got)
     no_truth = {r[0] for r in rows(ws, "SELECT case_id FROM cases WHERE truth IS NULL")}
     assert not any(r[0] in no_truth for r in got)
+    # the round keeps its design (experts x regions x classes): chances of being asked, in [0, 1]
+    design = np.array(json.loads(rows(ws, "SELECT detail FROM rounds WHERE round_id = ?", (info["round"],))[0][0])["design"])
+    assert design.ndim == 3 and design.shape[0] == len(EXPERTS)
+    assert ((design >= 0) & (design <= 1)).all() and design.sum() > 0
     # the JSON figures are the stored ones
     for e in info["experts"]:
         assert e["cases"] == counts[e["expert"]]
