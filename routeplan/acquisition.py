@@ -120,6 +120,7 @@ from scipy.special import betaln, gammaln
 __all__ = [
     "STRATEGIES",
     "PlannerInput",
+    "cell_counts",
     "Selection",
     "RegionCosts",
     "beta_posterior",
@@ -357,6 +358,35 @@ def class_probabilities(
     proba = np.zeros((X.shape[0], n_classes))
     proba[:, model.classes_] = model.predict_proba(X)
     return proba
+
+
+def cell_counts(case: ArrayLike, expert: ArrayLike, answer: ArrayLike, truth: ArrayLike,
+                region: ArrayLike, n_experts: int, n_regions: int) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Answers on cases with truth, right and in all, per (expert, region).
+
+    Parameters
+    ----------
+    case, expert, answer : array-like of int of shape (n_answers,)
+        Case row, expert index and label code of each answer; rows with a negative case or
+        expert index are ignored.
+    truth : array-like of int of shape (n_cases,)
+        Label code per case, -1 where unknown (such answers are not counted).
+    region : array-like of int of shape (n_cases,)
+    n_experts, n_regions : int
+
+    Returns
+    -------
+    correct, answered : ndarray of shape (n_experts, n_regions)
+    """
+    case, expert, answer = (np.asarray(a, dtype=np.int64) for a in (case, expert, answer))
+    truth, region = np.asarray(truth, dtype=np.int64), np.asarray(region, dtype=np.int64)
+    correct, answered = np.zeros((n_experts, n_regions)), np.zeros((n_experts, n_regions))
+    keep = (case >= 0) & (expert >= 0)
+    keep[keep] &= truth[case[keep]] >= 0
+    case, expert, answer = case[keep], expert[keep], answer[keep]
+    np.add.at(answered, (expert, region[case]), 1.0)
+    np.add.at(correct, (expert, region[case]), (answer == truth[case]).astype(float))
+    return correct, answered
 
 
 def model_decision_cost(proba: ArrayLike, error_cost: float = 1.0) -> NDArray[np.float64]:

@@ -320,12 +320,8 @@ def stabilized_weights(designs: Sequence[np.ndarray], region: np.ndarray, stratu
 
 def _planner_input(y, region, revealed, answers_all, model_cost, fees, error_cost, M, n_regions):
     """The planner's PlannerInput: every unrevealed pair eligible, counts from the revealed answers."""
-    right = (answers_all == y[:, None]) & revealed
-    correct = np.zeros((M, n_regions))
-    answered = np.zeros((M, n_regions))
-    for j in range(M):
-        correct[j] = np.bincount(region, weights=right[:, j], minlength=n_regions)
-        answered[j] = np.bincount(region, weights=revealed[:, j], minlength=n_regions)
+    rows, cols = np.nonzero(revealed)
+    correct, answered = acquisition.cell_counts(rows, cols, answers_all[rows, cols], y, region, M, n_regions)
     return acquisition.PlannerInput(
         eligible=~revealed, region=region, stratum=y, fees=fees, capacities=np.ones(M),
         correct=correct, answered=answered, pending=np.zeros((M, n_regions)),

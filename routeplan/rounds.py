@@ -33,7 +33,15 @@ from typing import Sequence
 import numpy as np
 import pandas as pd
 
-from .acquisition import STRATEGIES, PlannerInput, Selection, class_probabilities, model_decision_cost, select_assignments
+from .acquisition import (
+    STRATEGIES,
+    PlannerInput,
+    Selection,
+    cell_counts,
+    class_probabilities,
+    model_decision_cost,
+    select_assignments,
+)
 from .errors import InputError
 from .files import write_csv
 from .workspace import Workspace
@@ -346,7 +354,7 @@ def _pool(ws: Workspace, include_unverified: bool, n_regions: int, seed: int) ->
     a_case = position.get_indexer(answers["case_id"])
     a_expert = pd.Index(names).get_indexer(answers["expert"])
     answer = pd.Categorical(answers["answer"], categories=labels).codes
-    correct, answered = _answer_counts(a_case, a_expert, answer, truth, region, len(names), r)
+    correct, answered = cell_counts(a_case, a_expert, answer, truth, region, len(names), r)
     taken, pending = _assigned(ws, position, region, names, r)
     eligible = _eligibility(len(frame), candidates, len(names), [(a_case, a_expert), taken])
     pool = PlannerInput(
@@ -358,17 +366,6 @@ def _pool(ws: Workspace, include_unverified: bool, n_regions: int, seed: int) ->
         error_cost=ws.error_cost,
     )
     return pool, frame["case_id"].to_numpy()[candidates].tolist(), experts
-
-
-def _answer_counts(case, expert, answer, truth, region, m, r):
-    """Answers on cases with truth, right and in all, per (expert, region)."""
-    correct, answered = np.zeros((m, r)), np.zeros((m, r))
-    keep = (case >= 0) & (expert >= 0)
-    keep[keep] &= truth[case[keep]] >= 0
-    case, expert, answer = case[keep], expert[keep], answer[keep]
-    np.add.at(answered, (expert, region[case]), 1.0)
-    np.add.at(correct, (expert, region[case]), (answer == truth[case]).astype(float))
-    return correct, answered
 
 
 def _assigned(ws, position, region, names, r):
