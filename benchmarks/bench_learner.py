@@ -68,6 +68,7 @@ def bench_fit(n: int) -> None:
     for name, make in candidates:
         _, wall, cpu = _timed(lambda: make().fit(X, y, A, fees=sc.fees), repeats=2)
         rows.append((name, wall, cpu))
+    _, bare_wall, bare_cpu = _timed(lambda: _bare_torch_fit(X, y, A, (64, 64, 64)), repeats=2)
     threads = min(2, os.cpu_count() or 1)
     lr = LogisticRegression(solver="lbfgs", max_iter=1000)
     _, lr_wall, lr_cpu = _timed(lambda: lr.fit(X, y), repeats=3)
@@ -80,11 +81,40 @@ def bench_fit(n: int) -> None:
           f"({lr.n_iter_[0]} iterations, up to {threads} BLAS threads)")
     print(f"  {'MLPClassifier(64, 64, 64), 10 epochs, batch 256':48s} wall {mlp_wall:6.2f} s  "
           f"cpu {mlp_cpu:6.2f} s")
+    print(f"  {'bare torch loop, same two networks, no checks':48s} wall {bare_wall:6.2f} s  "
+          f"cpu {bare_cpu:6.2f} s  (ratio to LogReg: wall {bare_wall / lr_wall:4.2f}; the floor "
+          "of any fit of these networks)")
     for name, wall, cpu in rows:
         print(f"  {name:48s} wall {wall:6.2f} s  cpu {cpu:6.2f} s\n"
               f"  {'':48s} ratio to LogReg: wall {wall / lr_wall:4.2f}, cpu {cpu / lr_cpu:4.2f} "
               f"(goal <= 3); to MLPClassifier: wall {wall / mlp_wall:4.2f}, "
               f"cpu {cpu / mlp_cpu:4.2f} (goal < 1)")
+
+
+def _bare_torch_fit(X: np.ndarray, y: np.ndarray, A: np.ndarray, hidden: tuple[int, ...],
+                    epochs: int = 10, batch_size: int = 512) -> None:
+    """The plug-in's two networks trained by plain Adam with nothing else (no validation,
+    early stopping, calibration or progress): what the networks alone cost."""
+    import torch
+    import torch.nn.functional as F
+
+    from routeplan._nets import _make_net
+
+    torch.manual_seed(0)
+    Xt = torch.from_numpy(((X - X.mean(0)) / X.std(0)).astype(np.float32))
+    yt = torch.from_numpy(y.astype(np.int64))
+    right = torch.from_numpy((A == y[:, None]).astype(np.float32))
+    nets = [_make_net(X.shape[1], int(y.max()) + 1, "mlp", hidden), _make_net(X.shape[1], A.shape[1], "mlp", hidden)]
+    losses = [lambda m, i: F.cross_entropy(m(Xt[i]), yt[i]),
+              lambda m, i: F.binary_cross_entropy_with_logits(m(Xt[i]), right[i])]
+    for net, loss_fn in zip(nets, losses):
+        opt = torch.optim.Adam(net.parameters(), lr=1e-3)
+        for _ in range(epochs):
+            perm = torch.randperm(Xt.shape[0])
+            for s in range(0, Xt.shape[0], batch_size):
+                opt.zero_grad(set_to_none=True)
+                loss_fn(net, perm[s:s + batch_size]).backward()
+                opt.step()
 
 
 _SCORER = textwrap.dedent("""

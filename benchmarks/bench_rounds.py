@@ -23,8 +23,12 @@ budget of the schedule at which the cost is at or below the target; "sustained" 
 every larger budget to stay there. Budgets are cumulative, on a geometric schedule, so a
 ratio is resolved to one step of the schedule (a factor ``2 ** (1/2)``).
 
-Run: ``.venv/bin/python benchmarks/bench_rounds.py [--seeds 5] [--jobs 2] [--fits 1]``
-(about 10-15 minutes on a 2-core machine).
+Each point of a curve is the mean exact cost of two router fits (``--fits``), and the
+medians are over 8 seeds (``--seeds``): with one fit and 5 seeds the budget a seed needs
+jumped by a factor of 2 or 4 between runs that differed in nothing that mattered.
+
+Run: ``.venv/bin/python benchmarks/bench_rounds.py [--seeds 8] [--jobs 2] [--fits 2]
+[--planner spread=pairs]`` (about 8 minutes on a 2-core machine).
 """
 
 from __future__ import annotations
@@ -46,7 +50,7 @@ SCENARIOS = {
 }
 
 
-def play(kind: str, seed: int, n_fits: int, weighting: str) -> dict:
+def play(kind: str, seed: int, n_fits: int, weighting: str, planner: dict | None = None) -> dict:
     """One rehearsal of every strategy on one scenario and seed (runs in a worker process)."""
     import torch
 
@@ -58,11 +62,12 @@ def play(kind: str, seed: int, n_fits: int, weighting: str) -> dict:
     start = time.perf_counter()
     if kind == "synthetic":
         result = rehearse(n_pool=3000, n_eval=5000, budgets=budgets, n_regions=spec["n_regions"],
-                          strategies=STRATEGIES, n_router_fits=n_fits, weighting=weighting, random_state=seed)
+                          strategies=STRATEGIES, n_router_fits=n_fits, weighting=weighting,
+                          planner_options=planner, random_state=seed)
     else:
         result = rehearse(digits_experts_scenario(random_state=seed), n_pool=900, budgets=budgets,
                           n_regions=spec["n_regions"], strategies=STRATEGIES, n_router_fits=n_fits,
-                          weighting=weighting, random_state=seed)
+                          weighting=weighting, planner_options=planner, random_state=seed)
     curves = result.curves.assign(budget=np.tile(budgets, len(STRATEGIES)), seed=seed)
     return {"kind": kind, "seed": seed, "curves": curves, "full": result.full_information_cost,
             "bayes": result.bayes_cost, "seconds": time.perf_counter() - start}
@@ -133,19 +138,30 @@ def report(kind: str, runs: list[dict]) -> dict:
 def main() -> None:
     """Command-line entry point."""
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--seeds", type=int, default=5, help="Seeds per scenario (0..N-1).")
+    parser.add_argument("--seeds", type=int, default=8, help="Seeds per scenario (0..N-1).")
     parser.add_argument("--jobs", type=int, default=2, help="Worker processes.")
-    parser.add_argument("--fits", type=int, default=1, help="Router seeds averaged per point.")
+    parser.add_argument("--fits", type=int, default=2, help="Router seeds averaged per point.")
     parser.add_argument("--weighting", default="stabilized", help="stabilized, recorded or none.")
     parser.add_argument("--only", choices=sorted(SCENARIOS), default=None)
+    parser.add_argument("--planner", action="append", default=[], metavar="KEY=VALUE",
+                        help="A keyword of routeplan.acquisition.select_assignments (repeatable), "
+                             "e.g. spread=pairs or min_value_per_fee=2.")
     args = parser.parse_args()
     kinds = [args.only] if args.only else list(SCENARIOS)
     tasks = [(k, s) for k in kinds for s in range(args.seeds)]
+    planner = {}
+    for item in args.planner:
+        key, _, value = item.partition("=")
+        try:
+            planner[key] = value if key == "spread" else float(value)
+        except ValueError:
+            parser.error(f"--planner {item}: not KEY=NUMBER")
     start = time.perf_counter()
     with ProcessPoolExecutor(max_workers=max(1, args.jobs)) as pool:
-        futures = [pool.submit(play, k, s, args.fits, args.weighting) for k, s in tasks]
+        futures = [pool.submit(play, k, s, args.fits, args.weighting, planner) for k, s in tasks]
         runs = [f.result() for f in futures]
-    print(f"strategies {', '.join(STRATEGIES)}; weighting {args.weighting}; {args.fits} router fit(s) per point; "
+    print(f"strategies {', '.join(STRATEGIES)}; weighting {args.weighting}; planner {planner or 'defaults'}; "
+          f"{args.fits} router fit(s) per point; "
           f"{len(tasks)} rehearsals in {time.perf_counter() - start:.0f} s wall with {args.jobs} worker(s)")
     summary = {k: report(k, [r for r in runs if r["kind"] == k]) for k in kinds}
     print("\nsummary (median budget to reach full-information cost + 0.01):")

@@ -125,8 +125,14 @@ def fit_platt(
     sample_weight: ArrayLike | None = None,
     *,
     min_count: int = 20,
+    prior_strength: float = 0.0,
 ) -> tuple[float, float]:
     """Platt scaling ``P(outcome = 1) = sigmoid(a z + b)`` by weighted log-loss.
+
+    With ``prior_strength`` > 0 the fit is the maximum a posteriori one under a Gaussian
+    prior centred on the identity map ``(a, b) = (1, 0)``, of precision ``prior_strength``
+    in units of one case's log-loss: with few cases the map stays near the identity, with
+    many the data decide (shrinkage toward a reference, common practice).
 
     Parameters
     ----------
@@ -139,6 +145,8 @@ def fit_platt(
     min_count : int, default=20
         With fewer cases, or when every outcome is the same, return the identity
         ``(1.0, 0.0)``: a two-parameter fit would be noise.
+    prior_strength : float, default=0.0
+        Precision of the prior toward the identity (0: plain maximum likelihood).
 
     Returns
     -------
@@ -156,13 +164,18 @@ def fit_platt(
         return 1.0, 0.0
     w = w / w.mean()
 
+    lam = _check_prior(prior_strength) / z.size
+    centre = np.array([1.0, 0.0])
+
     def loss(theta: np.ndarray) -> tuple[float, np.ndarray]:
         a, b = theta
         s = a * z + b
         # log(1 + exp(-s)) and log(1 + exp(s)), stable
         ll = t * np.logaddexp(0.0, -s) + (1.0 - t) * np.logaddexp(0.0, s)
         r = w * (expit(s) - t)
-        return float((w * ll).mean()), np.array([(r * z).mean(), r.mean()])
+        d = theta - centre
+        return (float((w * ll).mean() + 0.5 * lam * (d @ d)),
+                np.array([(r * z).mean(), r.mean()]) + lam * d)
 
     res = minimize(loss, x0=np.array([1.0, 0.0]), jac=True, method="L-BFGS-B",
                    bounds=[(0.01, 100.0), (-50.0, 50.0)])
@@ -182,6 +195,7 @@ def fit_stack(
     *,
     min_count: int = 20,
     l2: float = 1e-3,
+    prior_strength: float = 0.0,
 ) -> np.ndarray:
     """Combine several logits of one probability by a logistic regression on validation.
 
@@ -201,6 +215,9 @@ def fit_stack(
         With fewer cases or a single outcome value, return ``(1, 0, .., 0)``: the first
         column alone, unchanged.
     l2 : float, default=1e-3
+    prior_strength : float, default=0.0
+        As in :func:`fit_platt`: a Gaussian prior centred on ``(1, 0, .., 0)`` (the first
+        column alone) of this precision, in units of one case's log-loss.
 
     Returns
     -------
@@ -224,16 +241,28 @@ def fit_stack(
     w = w / w.mean()
     X1 = np.hstack([Z, np.ones((Z.shape[0], 1))])
 
+    lam = _check_prior(prior_strength) / t.size
+
     def loss(theta: np.ndarray) -> tuple[float, np.ndarray]:
         s = X1 @ theta
         ll = t * np.logaddexp(0.0, -s) + (1.0 - t) * np.logaddexp(0.0, s)
         grad = X1.T @ (w * (expit(s) - t)) / t.size
         pen = np.r_[theta[:p], 0.0]
-        return float((w * ll).mean() + l2 * (pen @ pen)), grad + 2 * l2 * pen
+        d = theta - identity
+        return (float((w * ll).mean() + l2 * (pen @ pen) + 0.5 * lam * (d @ d)),
+                grad + 2 * l2 * pen + lam * d)
 
     res = minimize(loss, x0=identity, jac=True, method="L-BFGS-B",
                    bounds=[(0.0, 100.0)] * p + [(-50.0, 50.0)])
     return res.x
+
+
+def _check_prior(prior_strength: float) -> float:
+    """A prior precision: a finite number >= 0."""
+    value = float(prior_strength)
+    if not (np.isfinite(value) and value >= 0):
+        raise ValueError(f"prior_strength must be a finite number >= 0, got {prior_strength!r}")
+    return value
 
 
 def apply_stack(logits: ArrayLike, coef: ArrayLike) -> np.ndarray:

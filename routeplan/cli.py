@@ -442,12 +442,16 @@ def route(app, policy_path, cases_path, out_path, exact, id_column, chunk_size, 
               help="Comma-separated strategies to compare.")
 @click.option("--audit-share", type=click.FloatRange(0, 1), default=0.1, show_default=True,
               help="Share of each round's budget spent uniformly at random.")
+@click.option("--weighting", type=click.Choice(["stabilized", "recorded", "none"]), default="stabilized",
+              show_default=True,
+              help="How answers are weighted when a router is fitted: stabilized over the rounds' designs "
+                   "(as 'fit' does), by each pick's own recorded probability, or not at all.")
 @click.option("--seed", type=int, default=0, show_default=True, help="Seeds the scenario, the rounds and the routers.")
 @click.option("--plot", "plot_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
               help="Write the curves to this PNG.")
 @json_option
 @pass_app
-def rehearse(app, n_rounds, budget_per_round, n_pool, strategies, audit_share, seed, plot_path, as_json):
+def rehearse(app, n_rounds, budget_per_round, n_pool, strategies, audit_share, weighting, seed, plot_path, as_json):
     """Rehearse a budget on a simulated scenario before spending money.
 
     Plays the rounds for each strategy on a synthetic pool with known competence (three
@@ -472,7 +476,7 @@ def rehearse(app, n_rounds, budget_per_round, n_pool, strategies, audit_share, s
     with Progress(console=app.console, disable=app.quiet or as_json, transient=True) as bar:
         task = bar.add_task("rehearsing", total=len(chosen) * n_rounds)
         result = run(n_pool=n_pool, strategies=chosen, n_rounds=n_rounds, budget_per_round=budget_per_round,
-                     audit_share=audit_share, random_state=seed,
+                     audit_share=audit_share, weighting=weighting, random_state=seed,
                      progress=lambda text: bar.update(task, advance=1, description=text))
     target = result.full_information_cost + 0.01
     reach = budget_to_reach(result.curves, target)

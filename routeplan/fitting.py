@@ -20,7 +20,7 @@ from .features import FeatureSpec, fit_features
 from .pool import Pool, load_pool
 from .workspace import Workspace
 
-__all__ = ["FitReport", "answer_weights", "fit_workspace", "held_out_predictions", "load_router", "MIN_TRUTH_CASES"]
+__all__ = ["FitReport", "answer_weights", "round_weights", "fit_workspace", "held_out_predictions", "load_router", "MIN_TRUTH_CASES"]
 
 MIN_TRUTH_CASES = 40
 """Fewer cases with truth than this cannot be split into fitting and selection parts usefully."""
@@ -118,7 +118,7 @@ def fit_workspace(
     spec = fit_features(pool.X[mask], pool.feature_names)
     X = spec.transform(pool.X[mask])
     y, A = pool.y[mask], pool.answers[mask]
-    weights = answer_weights(pool.selection_prob[mask], A)
+    weights = round_weights(pool, ws.round_details(), mask)
     best, fitted, table = fit_candidates(
         X, y, A, fees=pool.fees, cost_matrix=pool.cost_matrix(), sample_weight=weights,
         random_state=random_state, names=routers, expert_names=list(pool.experts),
@@ -146,6 +146,63 @@ def fit_workspace(
                        "cases": int(mask.sum()), "answers": counts})
     return FitReport(best, model_ids, table, list(table.attrs.get("notes", [])), counts,
                      len(training), len(selection), metrics.get("calibration", {}))
+
+
+def round_weights(pool: Pool, rounds: list[dict], mask: np.ndarray) -> np.ndarray:
+    """Weights of the answers on the cases of ``mask``: stabilized over the rounds' designs.
+
+    Answers bought in rounds get :func:`routeplan.rehearse.stabilized_weights` over the designs
+    the rounds stored (``detail["design"]``, experts x regions x classes; experts matched by
+    name); historical answers weigh 1. Regions are recomputed as ``round plan`` computed them
+    (:func:`routeplan.competence.regions_from_features` on every case, ``random_state=0``), with
+    the region count most rounds used; rounds planned with another count are left out of the
+    sum (for a round planned before more cases were imported, the regions recomputed now may
+    differ a little from the plan's). Without any usable design, the recorded selection
+    probabilities are used (:func:`answer_weights`). Why: in rehearsals on the synthetic
+    scenario, weighting each answer by the inverse of its own round's probability let small
+    early rounds and the audit dominate (see :mod:`routeplan.rehearse`).
+
+    Parameters
+    ----------
+    pool : Pool
+    rounds : list of dict
+        :meth:`routeplan.workspace.Workspace.round_details`.
+    mask : ndarray of bool of shape (n_cases,)
+        The cases fitted on (they have truth, which is the design's class stratum).
+
+    Returns
+    -------
+    ndarray of shape (mask.sum(), n_experts)
+        NaN where there is no answer.
+    """
+    from collections import Counter
+
+    from .competence import regions_from_features
+    from .rehearse import stabilized_weights
+
+    A, prob = pool.answers[mask], pool.selection_prob[mask]
+    asked = np.isfinite(prob) & (A >= 0)
+    usable = [r["detail"] for r in rounds if r["detail"].get("design") and r["detail"].get("regions")]
+    if not asked.any() or not usable:
+        return answer_weights(prob, A)
+    n_regions = Counter(int(d["regions"]) for d in usable).most_common(1)[0][0]
+    region = regions_from_features(pool.X, n_regions=min(n_regions, len(pool.X)), random_state=0)
+    r, K, index = int(region.max()) + 1, pool.n_classes, {n: j for j, n in enumerate(pool.experts)}
+    designs = []
+    for detail in usable:
+        design = np.asarray(detail["design"], dtype=np.float64)
+        names = [e.get("expert") for e in detail.get("experts", [])]
+        if int(detail["regions"]) != n_regions or design.ndim != 3 or design.shape[1] != r or len(names) != design.shape[0]:
+            continue
+        full = np.zeros((len(pool.experts), r, K))
+        for row, name in enumerate(names):
+            if name in index:
+                full[index[name], :, : min(K, design.shape[2])] = design[row, :, :K]
+        designs.append(full)
+    if not designs:
+        return answer_weights(prob, A)
+    stable = stabilized_weights(designs, region[mask], pool.y[mask], asked)
+    return np.where(asked, stable, np.where(A >= 0, 1.0, np.nan))
 
 
 def answer_weights(selection_prob: np.ndarray, answers: np.ndarray, *, clip: float = 10.0) -> np.ndarray:

@@ -22,9 +22,10 @@ Choices that keep the measurement honest
   with the same settings as the routers on the curves.
 * Budgets may be a schedule of cumulative spends (``budgets``), e.g. the geometric one of
   :func:`budget_schedule`, so that a curve has resolution where costs fall fast.
-* Answers are weighted by :func:`stabilized_weights` over the rounds' designs by default.
+* Answers are weighted by :func:`stabilized_weights` over the rounds' designs by default, as
+  ``routeplan fit`` does (:func:`routeplan.fitting.round_weights`).
   Weighting each answer by the inverse of the probability recorded for its own pick
-  (:func:`routeplan.fitting.answer_weights`, what ``routeplan fit`` does) lets a small early
+  (:func:`routeplan.fitting.answer_weights`, the ``recorded`` option) lets a small early
   round, or the audit (whose picks have a small probability within a round), outweigh
   everything else: on the synthetic scenario (seed 0) it cost 0.02 to 0.06 of system cost
   at budgets from 20 to 320 fee units, for ``random`` too, against fitting with no weights
@@ -429,7 +430,7 @@ def rehearse(
     weighting : {"stabilized", "recorded", "none"}, default="stabilized"
         Weights of the answers when a router is fitted: :func:`stabilized_weights` over the
         rounds' designs; the recorded selection probabilities through
-        :func:`routeplan.fitting.answer_weights` (what ``routeplan fit`` does); or none.
+        :func:`routeplan.fitting.answer_weights`; or none.
     n_router_fits : int, default=1
         Router seeds averaged at each point of a curve.
     n_folds : int, default=5

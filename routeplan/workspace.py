@@ -631,6 +631,11 @@ class Workspace:
         record["detail"] = json.loads(record["detail"]) if record["detail"] else {}
         return record
 
+    def round_details(self) -> list[dict]:
+        """Every round's id and parsed detail, oldest first."""
+        return [{"round_id": int(r["round_id"]), "detail": json.loads(r["detail"]) if r["detail"] else {}}
+                for r in self._rows("SELECT round_id, detail FROM rounds ORDER BY round_id")]
+
     def round_sheet(self, round_id: int) -> list[dict]:
         """A round's assignments with any stored answer: assignment_id, case_id, expert, state, answer."""
         return [

@@ -366,6 +366,22 @@ def test_value_spreads_budget_beyond_its_worth_uniformly():
     assert not np.array_equal(np.sort(greedy.cell_picks.ravel()), np.sort(sel.cell_picks.ravel()))
 
 
+@pytest.mark.parametrize("spread", ["spend", "pairs"])
+def test_value_spread_by_spend_or_by_pairs(spread):
+    # Documented rule: with fees 0.05 / 0.1 / 0.2 and every pair eligible, spreading by spend gives each
+    # expert the same spend (14 each: picks 280, 140, 70, hand computation), spreading by pairs the
+    # same picks (42 / 0.35 = 120 each); both up to one pick per region per expert.
+    pool = make_pool(n=1200, fees=(0.05, 0.1, 0.2), capacities=(1.0, 1.0, 1.0))
+    sel = select_assignments(pool, budget=42, audit_share=0.0, explore_share=0.0, min_value_per_fee=1e12,
+                             spread=spread, random_state=0)
+    k = np.bincount(sel.expert, minlength=3)
+    expected = np.array([280, 140, 70]) if spread == "spend" else np.array([120, 120, 120])
+    assert np.all(np.abs(k - expected) <= pool.n_regions + 1), k
+    assert sel.budget_used <= 42 + 1e-9
+    with pytest.raises(ValueError, match="spread"):
+        select_assignments(pool, budget=42, spread="evenly")
+
+
 def test_spread_leaves_out_experts_that_cannot_beat_the_model():
     # An expert whose fee exceeds every model cost of the pool cannot be the cheapest option even if
     # always right (Chow's rule, cost 1 - max P <= 0.6 here), so the spread gives it nothing.

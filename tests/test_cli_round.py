@@ -351,3 +351,62 @@ def test_close_counts_answered_and_expired(ws, tmp_path):
     again = json.loads(ok(invoke(ws, "round", "close", info["round"], "--json")).stdout)
     assert again["already_closed"] is True
     one_line_error(invoke(ws, "round", "close", 99), "no round 99")
+
+
+# --------------------------------------------------------------------------- weights for fit
+
+
+def test_fit_weights_round_answers_by_the_stored_designs(ws, tmp_path):
+    # Stabilized inverse-probability weights (Robins, Hernan & Brumback, Epidemiology 2000) over
+    # the designs the rounds stored: inside one (expert, region, class) group every round answer
+    # weighs the same, each expert's round answers average 1, historical answers weigh 1, and a
+    # group asked more often than its region's mean weighs less than 1.
+    from routeplan.competence import regions_from_features
+    from routeplan.fitting import round_weights
+    from routeplan.pool import load_pool
+    from routeplan.workspace import Workspace
+
+    truth = dict(rows(ws, "SELECT case_id, truth FROM cases"))
+    history = tmp_path / "history.csv"
+    with open(history, "w", newline="", encoding="utf-8") as handle:
+        writer = csv.writer(handle)
+        writer.writerow(["case_id", "expert", "answer"])
+        writer.writerow(["c1", "ann", truth["c1"]])
+    ok(invoke(ws, "answers", "import", history))
+    for seed in (1, 2):
+        info = plan(ws, "--budget", 6, "--seed", seed)
+        answers = tmp_path / f"answers{seed}.csv"
+        with open(answers, "w", newline="", encoding="utf-8") as handle:
+            writer = csv.writer(handle)
+            writer.writerow(["case_id", "expert", "answer"])
+            for case_id, expert, *_ in assignments(ws, info["round"]):
+                writer.writerow([case_id, expert, truth[case_id]])
+        ok(invoke(ws, "answers", "import", answers))
+    with Workspace.open(ws) as handle:
+        pool = load_pool(handle)
+        details = handle.round_details()
+    mask = pool.has_truth
+    w = round_weights(pool, details, mask)
+    A, prob = pool.answers[mask], pool.selection_prob[mask]
+    asked = np.isfinite(prob) & (A >= 0)
+    historical = (A >= 0) & ~asked
+    assert historical.sum() == 1 and np.all(w[historical] == 1.0)
+    assert np.all(np.isnan(w[A < 0]))
+    assert np.all(w[asked] > 0)
+    region = regions_from_features(pool.X, n_regions=6, random_state=0)[mask]
+    total = sum(np.asarray(d["detail"]["design"]) for d in details)
+    for j in range(A.shape[1]):
+        assert w[asked[:, j], j].mean() == pytest.approx(1.0)
+        groups = {}
+        for i in np.flatnonzero(asked[:, j]):
+            groups.setdefault((region[i], pool.y[mask][i]), set()).add(round(float(w[i, j]), 12))
+        assert all(len(v) == 1 for v in groups.values())
+    # inside one region, a group asked more often per case weighs less (the weight is the
+    # region's mean chance over the group's own chance)
+    y = pool.y[mask]
+    for j in range(A.shape[1]):
+        for g in np.unique(region[asked[:, j]]):
+            members = np.flatnonzero(asked[:, j] & (region == g))
+            own, weight = total[j, g, y[members]], w[members, j]
+            order = np.argsort(own)
+            assert np.all(np.diff(weight[order]) <= 1e-9)

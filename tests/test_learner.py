@@ -255,6 +255,29 @@ def test_platt_matches_sklearn_logistic_regression(digits_scores):
     assert b_w == pytest.approx(ref_w.intercept_[0], rel=1e-3, abs=1e-3)
 
 
+def test_platt_prior_is_statsmodels_ridge_glm_around_the_identity():
+    # MAP Platt scaling under a Gaussian prior centred on (a, b) = (1, 0) is a ridge-penalised
+    # logistic GLM with the score as offset; reference: statsmodels GLM.fit_regularized with
+    # L1_wt=0 (objective -loglike/n + alpha/2 |params|^2, so alpha = prior / n)
+    sm = pytest.importorskip("statsmodels.api")
+    rng = np.random.default_rng(0)
+    z = 2.0 * rng.normal(size=60)
+    t = (rng.uniform(size=60) < 1.0 / (1.0 + np.exp(-(1.8 * z + 0.5)))).astype(float)
+    for prior in (5.0, 30.0):
+        a, b = cal.fit_platt(z, t, prior_strength=prior)
+        ref = sm.GLM(t, np.column_stack([z, np.ones_like(z)]), family=sm.families.Binomial(),
+                     offset=z).fit_regularized(alpha=prior / z.size, L1_wt=0.0)
+        assert a == pytest.approx(1.0 + ref.params[0], abs=1e-4)
+        assert b == pytest.approx(ref.params[1], abs=1e-4)
+    a0, _ = cal.fit_platt(z, t)
+    assert abs(cal.fit_platt(z, t, prior_strength=30.0)[0] - 1.0) < abs(a0 - 1.0)
+    # an overwhelming prior keeps a stack at "the first column alone"
+    coef = cal.fit_stack(np.column_stack([z, rng.normal(size=60)]), t, prior_strength=1e7)
+    np.testing.assert_allclose(coef, [1.0, 0.0, 0.0], atol=1e-3)
+    with pytest.raises(ValueError, match="prior_strength"):
+        cal.fit_platt(z, t, prior_strength=-1.0)
+
+
 # --- selection
 
 

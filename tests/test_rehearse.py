@@ -132,9 +132,10 @@ def test_stabilized_weights_sum_rounds_and_ignore_the_region():
 def test_cli_rehearse_json_and_plot(tmp_path):
     png = tmp_path / "curves.png"
     result = invoke(tmp_path, "rehearse", "--rounds", "1", "--budget", "3", "--cases", "300",
-                    "--strategies", "random", "--plot", str(png), "--json")
+                    "--strategies", "random", "--weighting", "recorded", "--plot", str(png), "--json")
     data = json.loads(result.stdout)
     assert [row["strategy"] for row in data["curves"]] == ["random"]
+    assert data["settings"]["weighting"] == "recorded"
     assert data["bayes_cost"] <= data["full_information_cost"] + 1e-12
     assert png.read_bytes()[:4] == b"\x89PNG"
 
