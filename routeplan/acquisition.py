@@ -37,23 +37,25 @@ Strategies
     A cell is bought by value only while its knowledge gradient per answer is at least
     ``min_value_per_fee`` times its fee (default 1: an answer must be expected to save at
     least what it costs, summed over the population's cases, which stand in for the cases
-    the policy will route). The budget left after that is spread over the pairs of the
+    the policy will route). The budget left after that is spread over the cells of the
     experts that could matter, leaving out (expert, region) cells where the expert, even if
-    always right, would not beat the model's cost on any case: with ``spread="spend"``
-    (default) each expert's *spend* is proportional to its remaining pairs, so a cheap
-    expert gets more answers than a dear one (picks proportional to pairs over fee); with
-    ``spread="pairs"`` its picks are, as ``random`` does. Inside an expert, picks go to
-    regions in proportion to size. The reasons are measured, not assumed
-    (``benchmarks/bench_rounds.py``, synthetic scenario): the router learns
-    ``P(right | x)`` from the answers and extrapolates where it has none, so it needs
-    answers spread over the feature space, which the region model cannot value; ranking
-    that rest by variance per fee piled it onto the cheapest expert and starved the others;
-    leaving out cells where an expert is dominated by another (95% Beta credible bounds)
-    made the median budget to reach the full-information cost worse (226 against 160 fee
-    units; 5 seeds); spreading by spend instead of by pairs brought it from 273 (random:
-    273) to 160, and the mean of the median gap over the schedule from 0.037 to 0.034
-    (random 0.039; 8 seeds, 2 router fits per point). ``min_value_per_fee=0`` keeps the
-    greedy to the end.
+    always right, would not beat the model's cost on any case. By default
+    (``spread="variance"``) the rest goes greedily to the cell of largest posterior variance
+    of its accuracy per unit of fee, with the same fantasy update (as ``uncertain`` ranks
+    cells), so that every cell the router may need is learned, the cheap ones first;
+    ``spread="spend"`` gives each expert a spend proportional to its remaining pairs and
+    ``spread="pairs"`` picks proportional to them (as ``random``), then per region in
+    proportion to size. The reasons are measured, not assumed
+    (``benchmarks/bench_rounds.py``, synthetic scenario, 8 seeds, 2 router fits per point):
+    the router learns ``P(right | x)`` from the answers and extrapolates where it has none,
+    so it needs answers spread over the feature space, which the knowledge gradient of the
+    region model cannot value. Mean over the budget schedule of the median gap to the
+    full-information cost: ``variance`` 0.025, ``spend`` 0.034, ``pairs`` 0.037 (``random``
+    0.039); with ``variance`` the median curve is at or below ``random``'s at every budget,
+    with the others not at the smallest budgets. Leaving out cells where an expert is
+    dominated by another (95% Beta credible bounds) made things worse (median budget to
+    reach the full-information cost 226 against 160 fee units; 5 seeds).
+    ``min_value_per_fee=0`` keeps the greedy to the end.
 ``uncertain``
     Largest posterior variance of the cell's accuracy per unit of fee, with the same fantasy
     update (uncertainty sampling at the level of the cell; Lewis & Gale, SIGIR 1994).
@@ -589,7 +591,7 @@ def select_assignments(
     prior: tuple[float, float] = (1.0, 1.0),
     fee_floor: float = 1e-3,
     min_value_per_fee: float = 1.0,
-    spread: str = "spend",
+    spread: str = "variance",
     max_steps: int = 2000,
     random_state: int | np.random.Generator | None = None,
 ) -> Selection:
@@ -624,8 +626,9 @@ def select_assignments(
         ``value`` buys a cell only while its knowledge gradient per answer is at least this
         times the fee; the rest of the budget is spread (module docstring). 0 keeps the
         greedy to the end.
-    spread : {"spend", "pairs"}, default="spend"
-        How ``value`` spreads the rest over experts: spend proportional to each expert's
+    spread : {"variance", "spend", "pairs"}, default="variance"
+        How ``value`` spreads the rest: by posterior variance of each cell's accuracy per
+        unit of fee (greedy, as ``uncertain``), spend proportional to each expert's
         remaining pairs, or picks proportional to them (as ``random``).
     max_steps : int, default=2000
         Rough number of greedy steps; larger rounds take picks in chunks.
@@ -647,8 +650,8 @@ def select_assignments(
         raise ValueError("max_per_expert must be >= 0")
     if not (np.isfinite(min_value_per_fee) and min_value_per_fee >= 0):
         raise ValueError(f"min_value_per_fee must be a number >= 0, got {min_value_per_fee!r}")
-    if spread not in ("spend", "pairs"):
-        raise ValueError(f"spread must be 'spend' or 'pairs', got {spread!r}")
+    if spread not in ("spend", "pairs", "variance"):
+        raise ValueError(f"spread must be 'spend', 'pairs' or 'variance', got {spread!r}")
     rng = np.random.default_rng(random_state)
     eligible = pool.eligible.copy()
     eligible[:, pool.capacities <= 0] = False
@@ -908,7 +911,10 @@ def _cell_counts(pool, costs, eligible, ledger, alpha0, beta0, fee_eff, strategy
     _greedy(score, cell_expert, room, ledger, step, rng, update, worth)
     useful = _could_matter(pool, costs, fee_eff).ravel()
     room_rest = np.where(useful, room, 0)
-    _spread_rest(room_rest, cell_expert, ledger, step, rng, update, by_spend=spread == "spend")
+    if spread == "variance":
+        _greedy(variance, cell_expert, room_rest, ledger, step, rng, update)
+    else:
+        _spread_rest(room_rest, cell_expert, ledger, step, rng, update, by_spend=spread == "spend")
     return k.reshape(m, r)
 
 

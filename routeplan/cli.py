@@ -568,8 +568,9 @@ def round_group() -> None:
 @round_group.command("plan")
 @click.option("--budget", type=float, required=True, help="Largest sum of fees for the round.")
 @click.option("--strategy", type=click.Choice(["value", "uncertain", "random"]), default="value", show_default=True,
-              help="value: value of information per fee; uncertain: widest accuracy estimate per fee; "
-                   "random: uniform over eligible pairs.")
+              help="value: value of information per fee, the rest of the budget to the least certain "
+                   "cells per fee; uncertain: widest accuracy estimate per fee; random: uniform over "
+                   "eligible pairs.")
 @click.option("--seed", type=int, default=0, show_default=True, help="The same seed on the same workspace gives the same plan.")
 @click.option("--audit-share", type=click.FloatRange(0, 1), default=0.1, show_default=True,
               help="Share of the budget drawn uniformly at random (audit), for unbiased accuracy estimates.")

@@ -353,12 +353,12 @@ def test_random_is_uniform_over_eligible_pairs():
 
 
 def test_value_spreads_budget_beyond_its_worth_uniformly():
-    # Documented rule: value buys cells only while KG per answer >= min_value_per_fee x fee; the rest
-    # is spread as random spreads it, so with an unreachable bar every expert ends with the same share
-    # of its eligible pairs up to one pick per region (definition of uniform over pairs).
+    # Documented rule: value buys cells only while KG per answer >= min_value_per_fee x fee; with
+    # spread="pairs" the rest is spread as random spreads it, so with an unreachable bar every expert
+    # ends with the same share of its eligible pairs up to one pick per region (uniform over pairs).
     pool = make_pool(n=1200, fees=(0.1, 0.1, 0.1), capacities=(1.0, 1.0, 1.0))
     sel = select_assignments(pool, budget=30, audit_share=0.0, explore_share=0.0, min_value_per_fee=1e12,
-                             random_state=0)
+                             spread="pairs", random_state=0)
     k = np.bincount(sel.expert, minlength=3)
     assert k.sum() == 300 and np.all(np.abs(k - 100) <= pool.n_regions)
     greedy = select_assignments(pool, budget=30, audit_share=0.0, explore_share=0.0, min_value_per_fee=0.0,
@@ -380,6 +380,26 @@ def test_value_spread_by_spend_or_by_pairs(spread):
     assert sel.budget_used <= 42 + 1e-9
     with pytest.raises(ValueError, match="spread"):
         select_assignments(pool, budget=42, spread="evenly")
+
+
+def test_value_spread_by_variance_goes_to_loose_cells_first():
+    # Documented rule (spread="variance", the default): the rest goes to the cell of largest posterior
+    # variance per fee. Hand computation: expert 0 (fee 0.05) has 45 right of 50 in every region, Beta(46, 6),
+    # variance 46*6 / (52^2 * 53) = 0.00193, per fee 0.0385; expert 1 (fee 0.2) has none, Beta(1, 1),
+    # variance 1/12, per fee 0.417, and stays above 0.0385 for its first ~30 fantasy answers per region.
+    # So 10 fee units (50 picks of expert 1, 12 or 13 per region) all go to expert 1, spread evenly.
+    answered = np.vstack([np.full(4, 50.0), np.zeros(4)])
+    correct = np.vstack([np.full(4, 45.0), np.zeros(4)])
+    pool = make_pool(n=1200, fees=(0.05, 0.2), capacities=(1.0, 1.0), answered=answered, correct=correct)
+    pool = with_(pool, model_cost=np.full(1200, 0.6))
+    sel = select_assignments(pool, budget=10, audit_share=0.0, explore_share=0.0, min_value_per_fee=1e12,
+                             random_state=0)
+    assert sel.expert.size == 50 and np.all(sel.expert == 1)
+    per_region = sel.cell_picks[1]
+    assert per_region.max() - per_region.min() <= 1
+    by_spend = select_assignments(pool, budget=10, audit_share=0.0, explore_share=0.0, min_value_per_fee=1e12,
+                                  spread="spend", random_state=0)
+    assert np.any(by_spend.expert == 0)
 
 
 def test_spread_leaves_out_experts_that_cannot_beat_the_model():
