@@ -1209,12 +1209,7 @@ class SurrogateRouter(_BaseRouter):
         if self.loss == "softmax":
             if self.calibrate and M:
                 self.option_platt_[1:, 1] = _defer_offsets(G, c_val, K)
-            T = cal.fit_temperature(G[:, :K], val.y) if self.calibrate else 1.0
-            self.class_temperature_ = T
-            P0, P1 = (cal.apply_temperature(G[:, :K], t) for t in (1.0, T))
-            self.calibration_["classes"] = {
-                "temperature": T, "ece_before": cal.expected_calibration_error(P0, val.y),
-                "ece_after": cal.expected_calibration_error(P1, val.y)}
+            self._fit_class_temperature(G, val)
             agree = self.predict_route(val.X) == np.argmin(self.predict_costs(val.X), axis=1)
             self.calibration_["route_agreement"] = float(agree.mean())
             return
@@ -1237,8 +1232,8 @@ class SurrogateRouter(_BaseRouter):
             "ece_after": cal.expected_calibration_error(self.predict_proba(val.X), val.y)}
         self.calibration_["options_platt"] = self.option_platt_.tolist()
 
-    def _calibrate_asymmetric(self, val: _Part, G: np.ndarray) -> None:
-        """Temperature for the class scores, Platt per expert on the deferral logits."""
+    def _fit_class_temperature(self, G: np.ndarray, val: _Part) -> None:
+        """Temperature of the K class scores on validation (1 without ``calibrate``), with its ECE report."""
         K = self.n_classes_
         T = cal.fit_temperature(G[:, :K], val.y) if self.calibrate else 1.0
         self.class_temperature_ = T
@@ -1246,6 +1241,11 @@ class SurrogateRouter(_BaseRouter):
         self.calibration_["classes"] = {
             "temperature": T, "ece_before": cal.expected_calibration_error(P0, val.y),
             "ece_after": cal.expected_calibration_error(P1, val.y)}
+
+    def _calibrate_asymmetric(self, val: _Part, G: np.ndarray) -> None:
+        """Temperature for the class scores, Platt per expert on the deferral logits."""
+        K = self.n_classes_
+        self._fit_class_temperature(G, val)
         if not self.calibrate:
             return
         z = G[:, K:] - _lse_without_max(G[:, :K])[:, None]
