@@ -146,6 +146,7 @@ def _show_fit_table(report: dict[str, Any]) -> None:
         chosen=report["chosen"], model_ids=report["model_ids"], table=pd.DataFrame(report["table"]),
         notes=report["notes"], answers_per_expert=report["answers_per_expert"], n_train=report["n_train"],
         n_selection=report["n_selection"], calibration=report.get("calibration") or {},
+        effective_answers=report.get("effective_answers") or {},
     )
     Console(width=_width(), soft_wrap=False).print(render_fit(fit_report))
 

@@ -54,7 +54,11 @@ Strategies
     0.039); with ``variance`` the median curve is at or below ``random``'s at every budget,
     with the others not at the smallest budgets. Leaving out cells where an expert is
     dominated by another (95% Beta credible bounds) made things worse (median budget to
-    reach the full-information cost 226 against 160 fee units; 5 seeds).
+    reach the full-information cost 226 against 160 fee units; 5 seeds). Even an oracle
+    that restricted the picks to the cases where, by the true costs, the expert is best or
+    within 0.1 of the best did far worse than ``random`` (mean median gap 0.107 against
+    0.039; ``benchmarks/probe_focus.py``): the router, shown an expert only where it is
+    good, defers to it elsewhere too.
     ``min_value_per_fee=0`` keeps the greedy to the end.
 ``uncertain``
     Largest posterior variance of the cell's accuracy per unit of fee, with the same fantasy

@@ -18,6 +18,7 @@ import pandas as pd
 from .errors import InputError, NotFitted
 from .features import FeatureSpec, fit_features
 from .pool import Pool, load_pool
+from .stats import effective_sample_size
 from .workspace import Workspace
 
 __all__ = ["FitReport", "answer_weights", "round_weights", "fit_workspace", "held_out_predictions", "load_router", "MIN_TRUTH_CASES"]
@@ -47,6 +48,9 @@ class FitReport:
         Cases used to fit and to compare.
     calibration : dict
         Expected calibration error before and after calibration, from the chosen router.
+    effective_answers : dict of str to float
+        Kish's effective number of each expert's answers under the weights the fit gave them
+        (equal to the count when every answer weighs the same).
     """
 
     chosen: str
@@ -57,13 +61,15 @@ class FitReport:
     n_train: int
     n_selection: int
     calibration: dict = field(default_factory=dict)
+    effective_answers: dict = field(default_factory=dict)
 
     def to_dict(self) -> dict:
         """Plain data for ``--json``."""
         table = self.table.replace({np.nan: None}).to_dict(orient="records")
         return {"chosen": self.chosen, "model_ids": self.model_ids, "table": table, "notes": self.notes,
                 "answers_per_expert": self.answers_per_expert, "n_train": self.n_train,
-                "n_selection": self.n_selection, "calibration": self.calibration}
+                "n_selection": self.n_selection, "calibration": self.calibration,
+                "effective_answers": self.effective_answers}
 
 
 def fit_workspace(
@@ -128,7 +134,11 @@ def fit_workspace(
     selection = np.asarray(table.attrs.get("selection_index", []), dtype=np.int64)
     training = np.setdiff1d(np.arange(len(ids)), selection)
     counts = {name: int((A[:, j] >= 0).sum()) for j, name in enumerate(pool.experts)}
+    effective = {name: round(effective_sample_size(weights[:, j][A[:, j] >= 0]), 1)
+                 for j, name in enumerate(pool.experts)}
+    table.attrs["notes"] = list(table.attrs.get("notes", [])) + uneven_weight_notes(counts, effective)
     metrics = _metrics(table, best, counts, fitted[best], pool, len(selection))
+    metrics["effective_answers"] = effective
     model_ids = {}
     with ws.transaction():
         for name, router in fitted.items():
@@ -145,7 +155,30 @@ def fit_workspace(
         ws.log("fit", {"chosen": best, "model_ids": model_ids, "seed": random_state,
                        "cases": int(mask.sum()), "answers": counts})
     return FitReport(best, model_ids, table, list(table.attrs.get("notes", [])), counts,
-                     len(training), len(selection), metrics.get("calibration", {}))
+                     len(training), len(selection), metrics.get("calibration", {}), effective)
+
+
+def uneven_weight_notes(counts: dict[str, int], effective: dict[str, float], *,
+                        min_answers: int = 20, share: float = 0.5) -> list[str]:
+    """Notes for experts whose answers weigh very unevenly.
+
+    An expert's answers are weighted by how likely the rounds were to ask it about each
+    case; when Kish's effective sample size of those weights
+    (:func:`routeplan.stats.effective_sample_size`) is below ``share`` of its
+    ``min_answers`` or more answers, the rounds asked it mostly in a few places, and the
+    router's estimate of its competence elsewhere rests on few answers. In rehearsals a
+    router fitted on answers drawn only where an expert did well trusted it elsewhere too
+    (``benchmarks/probe_focus.py --explain``).
+    """
+    notes = []
+    for name, n in counts.items():
+        eff = effective.get(name, float(n))
+        if n >= min_answers and eff < share * n:
+            notes.append(f"{name}'s {n} answers count as about {eff:.0f} once weighted for how "
+                         "unevenly the rounds drew them: where it was rarely asked, its competence "
+                         "rests on few answers and the router may trust it more than it should. A "
+                         "round with a larger --audit-share or --strategy random spreads its answers.")
+    return notes
 
 
 def round_weights(pool: Pool, rounds: list[dict], mask: np.ndarray) -> np.ndarray:

@@ -199,7 +199,13 @@ def render_fit(report) -> Group:
             style="bold" if row["router"] == report.chosen else ("dim" if row.get("kind") != "router" else None),
         )
     text = Text()
-    text.append("Answers on cases with truth: " + ", ".join(f"{k} {v}" for k, v in report.answers_per_expert.items()) + "\n")
+    eff = report.effective_answers or {}
+
+    def answers(name: str, n: int) -> str:
+        e = eff.get(name)
+        return f"{name} {n}" if e is None or e >= 0.95 * n else f"{name} {n} (weighted, worth {e:.0f})"
+
+    text.append("Answers on cases with truth: " + ", ".join(answers(k, v) for k, v in report.answers_per_expert.items()) + "\n")
     ece = report.calibration or {}
     if ece:
         text.append("Calibration (expected calibration error, validation split): " + _ece_words(ece) + "\n")

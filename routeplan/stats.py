@@ -19,6 +19,7 @@ __all__ = [
     "cohen_kappa",
     "kappa_from_confusion",
     "fleiss_kappa",
+    "effective_sample_size",
 ]
 
 
@@ -277,3 +278,29 @@ def fleiss_kappa(counts: ArrayLike) -> float:
     if np.isclose(p_e, 1.0):
         return float("nan")
     return float((p_bar - p_e) / (1.0 - p_e))
+
+
+def effective_sample_size(weights: ArrayLike) -> float:
+    """Kish's effective sample size of weighted observations, ``(sum w)^2 / sum w^2``.
+
+    Kish, *Survey Sampling*, Wiley, 1965, section 11.7: a weighted mean of ``n``
+    observations is about as precise as an unweighted mean of this many; it equals ``n``
+    for equal weights and falls toward 1 as one weight dominates. NaN entries (no
+    observation) are ignored.
+
+    Parameters
+    ----------
+    weights : array-like
+        Non-negative weights.
+
+    Returns
+    -------
+    float
+        0.0 when there is no positive weight.
+    """
+    w = np.asarray(weights, dtype=np.float64).ravel()
+    w = w[~np.isnan(w)]
+    if np.any(w < 0) or not np.all(np.isfinite(w)):
+        raise ValueError("weights must be finite and non-negative")
+    total = w.sum()
+    return float(total**2 / np.square(w).sum()) if total > 0 else 0.0

@@ -36,6 +36,8 @@ def test_fit_beats_model_alone_and_expert_alone_on_digits(digits5):
     # It defers mostly on the expert's classes 0..k-1, so it neither decides everything nor defers everything.
     assert 0.0 < chosen["coverage"] < 1.0
     assert report["answers_per_expert"] == {"oracle_k": 1797}
+    # historical answers all weigh 1, so Kish's effective size is the count (Kish 1965, 11.7)
+    assert report["effective_answers"]["oracle_k"] == pytest.approx(1797)
 
 
 @pytest.mark.slow
@@ -60,3 +62,11 @@ def test_fit_refuses_unknown_router(tmp_path):
     result = CliRunner().invoke(cli, ["--workspace", str(tmp_path / "w"), "fit", "--router", "nonsense"])
     assert result.exit_code == 2
     assert "nonsense" in result.stderr and "Traceback" not in result.stderr
+
+
+def test_uneven_weights_get_a_note():
+    from routeplan.fitting import uneven_weight_notes
+
+    # Kish (1965): effective size well under the count means a few answers carry the weight
+    notes = uneven_weight_notes({"e1": 300, "e2": 300, "e3": 10}, {"e1": 290.0, "e2": 60.0, "e3": 1.0})
+    assert len(notes) == 1 and notes[0].startswith("e2's 300 answers count as about 60")

@@ -173,3 +173,20 @@ def test_fleiss_kappa_matches_statsmodels_and_worked_example():
         assert fleiss_kappa(counts) == pytest.approx(sm_fleiss_kappa(counts))
     with pytest.raises(ValueError):
         fleiss_kappa([[2, 1], [1, 1]])  # unequal numbers of ratings
+
+
+def test_effective_sample_size_kish():
+    from routeplan.stats import effective_sample_size
+
+    # Kish, Survey Sampling (1965), 11.7: n_eff = n / (1 + cv^2), cv the coefficient of
+    # variation of the weights (population variance); equal weights give n, one dominant weight ~1
+    rng = np.random.default_rng(3)
+    w = rng.gamma(0.5, size=200)
+    assert effective_sample_size(w) == pytest.approx(w.size / (1 + w.var() / w.mean() ** 2))
+    assert effective_sample_size(np.full(37, 2.5)) == pytest.approx(37)
+    assert effective_sample_size([1e6, 1, 1, 1]) == pytest.approx(1.0, abs=1e-5)
+    # hand-worked: weights 1, 1, 1, 1, 4 -> 8^2 / (4 + 16) = 3.2; NaN means "no observation"
+    assert effective_sample_size([1, 1, np.nan, 1, 1, 4]) == pytest.approx(3.2)
+    assert effective_sample_size([]) == 0.0
+    with pytest.raises(ValueError):
+        effective_sample_size([1.0, -1.0])
