@@ -7,7 +7,8 @@ seeds, and ``value`` is never worse than ``random`` at any budget of the median 
 
 Two scenarios, each played by :func:`routeplan.rehearse.rehearse` (same planner as
 ``routeplan round plan``, a two-stage plug-in router fitted after each round on cross-fitted
-class probabilities, exact costs on held-out cases from known probabilities):
+class probabilities, whose focus steers the next round of ``value`` and ``uncertain`` unless
+``--no-focus``; exact costs on held-out cases from known probabilities):
 
 * synthetic: :func:`routeplan.simulate.make_scenario` with three experts of fees 0.05, 0.125
   and 0.2 and different regional strengths; 3,000 pool cases, 5,000 held out; seed ``s``
@@ -28,7 +29,7 @@ medians are over 8 seeds (``--seeds``): with one fit and 5 seeds the budget a se
 jumped by a factor of 2 or 4 between runs that differed in nothing that mattered.
 
 Run: ``.venv/bin/python benchmarks/bench_rounds.py [--seeds 8] [--jobs 2] [--fits 2]
-[--planner spread=pairs]`` (about 8 minutes on a 2-core machine).
+[--planner spread=pairs] [--no-focus]`` (about 8 minutes on a 2-core machine).
 """
 
 from __future__ import annotations
@@ -50,7 +51,8 @@ SCENARIOS = {
 }
 
 
-def play(kind: str, seed: int, n_fits: int, weighting: str, planner: dict | None = None) -> dict:
+def play(kind: str, seed: int, n_fits: int, weighting: str, planner: dict | None = None,
+         focus_margin: float | None = 0.1) -> dict:
     """One rehearsal of every strategy on one scenario and seed (runs in a worker process)."""
     import torch
 
@@ -63,11 +65,12 @@ def play(kind: str, seed: int, n_fits: int, weighting: str, planner: dict | None
     if kind == "synthetic":
         result = rehearse(n_pool=3000, n_eval=5000, budgets=budgets, n_regions=spec["n_regions"],
                           strategies=STRATEGIES, n_router_fits=n_fits, weighting=weighting,
-                          planner_options=planner, random_state=seed)
+                          planner_options=planner, focus_margin=focus_margin, random_state=seed)
     else:
         result = rehearse(digits_experts_scenario(random_state=seed), n_pool=900, budgets=budgets,
                           n_regions=spec["n_regions"], strategies=STRATEGIES, n_router_fits=n_fits,
-                          weighting=weighting, planner_options=planner, random_state=seed)
+                          weighting=weighting, planner_options=planner, focus_margin=focus_margin,
+                          random_state=seed)
     curves = result.curves.assign(budget=np.tile(budgets, len(STRATEGIES)), seed=seed)
     return {"kind": kind, "seed": seed, "curves": curves, "full": result.full_information_cost,
             "bayes": result.bayes_cost, "seconds": time.perf_counter() - start}
@@ -143,6 +146,9 @@ def main() -> None:
     parser.add_argument("--fits", type=int, default=2, help="Router seeds averaged per point.")
     parser.add_argument("--weighting", default="stabilized", help="stabilized, recorded or none.")
     parser.add_argument("--only", choices=sorted(SCENARIOS), default=None)
+    parser.add_argument("--focus-margin", type=float, default=0.1,
+                        help="Margin of the router's focus (routeplan.acquisition.router_focus).")
+    parser.add_argument("--no-focus", action="store_true", help="Plan without the router's focus.")
     parser.add_argument("--planner", action="append", default=[], metavar="KEY=VALUE",
                         help="A keyword of routeplan.acquisition.select_assignments (repeatable), "
                              "e.g. spread=pairs or min_value_per_fee=2.")
@@ -158,9 +164,11 @@ def main() -> None:
             parser.error(f"--planner {item}: not KEY=NUMBER")
     start = time.perf_counter()
     with ProcessPoolExecutor(max_workers=max(1, args.jobs)) as pool:
-        futures = [pool.submit(play, k, s, args.fits, args.weighting, planner) for k, s in tasks]
+        margin = None if args.no_focus else args.focus_margin
+        futures = [pool.submit(play, k, s, args.fits, args.weighting, planner, margin) for k, s in tasks]
         runs = [f.result() for f in futures]
     print(f"strategies {', '.join(STRATEGIES)}; weighting {args.weighting}; planner {planner or 'defaults'}; "
+          f"focus {'off' if margin is None else f'margin {margin:g}'}; "
           f"{args.fits} router fit(s) per point; "
           f"{len(tasks)} rehearsals in {time.perf_counter() - start:.0f} s wall with {args.jobs} worker(s)")
     summary = {k: report(k, [r for r in runs if r["kind"] == k]) for k in kinds}

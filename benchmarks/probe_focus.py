@@ -34,21 +34,32 @@ import numpy as np
 import bench_rounds
 
 
-def _oracle_mask(seed: int, mode: str, tau: float) -> np.ndarray:
-    """(n_pool, M) cases where an answer of expert j could change the true decision."""
+def _decisive(true_costs: np.ndarray, n_classes: int, mode: str, tau: float) -> np.ndarray:
+    """(n, M): where an answer of expert j could change the decision, by the true costs."""
+    M = true_costs.shape[1] - n_classes
+    mask = np.zeros((true_costs.shape[0], M), dtype=bool)
+    for j in range(M):
+        col = n_classes + j
+        margin = true_costs[:, col] - np.delete(true_costs, col, axis=1).min(axis=1)
+        mask[:, j] = np.abs(margin) < tau if mode == "contested" else margin < tau
+    return mask
+
+
+def _scenario(seed: int, n_pool: int = 3000, n_eval: int = 5000):
+    """The rehearsal's synthetic scenario (as rehearse() builds it) and every case's true costs."""
     from routeplan.costs import error_cost_matrix, expected_cost_vectors
     from routeplan.simulate import make_scenario
 
-    n_pool = 3000
-    scn = make_scenario(n_pool + 5000, random_state=seed)  # as rehearse() builds it
-    tc = expected_cost_vectors(scn.proba[:n_pool], scn.correct_proba[:n_pool],
+    scn = make_scenario(n_pool + n_eval, random_state=seed)
+    tc = expected_cost_vectors(scn.proba, scn.correct_proba,
                                cost_matrix=error_cost_matrix(scn.n_classes), fees=scn.fees)
-    K = scn.n_classes
-    mask = np.zeros((n_pool, scn.n_experts), dtype=bool)
-    for j in range(scn.n_experts):
-        margin = tc[:, K + j] - np.delete(tc, K + j, axis=1).min(axis=1)
-        mask[:, j] = np.abs(margin) < tau if mode == "contested" else margin < tau
-    return mask
+    return scn, tc
+
+
+def _oracle_mask(seed: int, mode: str, tau: float, n_pool: int = 3000) -> np.ndarray:
+    """(n_pool, M) pool cases where an answer of expert j could change the true decision."""
+    scn, tc = _scenario(seed, n_pool)
+    return _decisive(tc[:n_pool], scn.n_classes, mode, tau)
 
 
 def play_focused(seed: int, mode: str, tau: float) -> dict:
@@ -70,29 +81,23 @@ def play_focused(seed: int, mode: str, tau: float) -> dict:
         return draw_cells(pool, restrict(eligible), k, rng)
 
     acquisition._cell_counts, acquisition._draw_cells = counts, draw
-    out = bench_rounds.play("synthetic", seed, 2, "stabilized")
+    out = bench_rounds.play("synthetic", seed, 2, "stabilized", focus_margin=None)  # the oracle alone
     out["mask_share"] = mask.mean(axis=0).round(3).tolist()
     return out
 
 
 def explain(mode: str, tau: float, per_expert: int = 300, audit: int = 30) -> None:
     """Where a router trained on oracle-focused answers goes wrong (seed 0)."""
-    from routeplan.costs import error_cost_matrix, expected_cost_vectors
     from routeplan.learner import PluginRouter
     from routeplan.rehearse import ROUTER_SETTINGS
-    from routeplan.simulate import make_scenario
 
     n_pool, seed = 3000, 0
-    scn = make_scenario(n_pool + 5000, random_state=seed)
+    scn, tc_all = _scenario(seed, n_pool)
     K, M = scn.n_classes, scn.n_experts
-    held = np.arange(n_pool, n_pool + 5000)
-    tc = expected_cost_vectors(scn.proba[held], scn.correct_proba[held],
-                               cost_matrix=error_cost_matrix(K), fees=scn.fees)
-    inside = np.zeros((held.size, M), dtype=bool)
-    for j in range(M):
-        margin = tc[:, K + j] - np.delete(tc, K + j, axis=1).min(axis=1)
-        inside[:, j] = np.abs(margin) < tau if mode == "contested" else margin < tau
-    mask = _oracle_mask(seed, mode, tau)
+    held = np.arange(n_pool, scn.X.shape[0])
+    tc = tc_all[held]
+    inside = _decisive(tc, K, mode, tau)
+    mask = _decisive(tc_all[:n_pool], K, mode, tau)
     every = scn.answers(seed)[:n_pool]
     rng = np.random.default_rng(seed)
     for design in ("focused", "uniform"):

@@ -106,7 +106,10 @@ def _buy_round(r: int, budget: float, seed: int) -> dict[str, Any]:
     """Plan a round, export its sheets, let the simulated experts answer, import, close."""
     plan = _routeplan_json(["round", "plan", "--budget", f"{budget:g}", "--seed", str(seed + r)])
     per_expert = ", ".join(f"{e['expert']} {e['cases']}" for e in plan["experts"])
-    _say(f"round {plan['round']}: {plan['assignments']} assignments ({per_expert}), fees {plan['spend']:.2f}")
+    focus = plan.get("focus")
+    steer = (f"; asked where model #{focus['model_id']}'s routing is open "
+             f"({focus['pairs_in_focus']:.0%} of the pairs)" if focus else "")
+    _say(f"round {plan['round']}: {plan['assignments']} assignments ({per_expert}), fees {plan['spend']:.2f}{steer}")
     round_id = str(plan["round"])
     sheets, answers = f"sheets/{round_id}", f"answers/{round_id}"
     _routeplan(["round", "export", round_id, "--out", sheets])

@@ -446,12 +446,18 @@ def route(app, policy_path, cases_path, out_path, exact, id_column, chunk_size, 
               show_default=True,
               help="How answers are weighted when a router is fitted: stabilized over the rounds' designs "
                    "(as 'fit' does), by each pick's own recorded probability, or not at all.")
+@click.option("--focus-margin", type=click.FloatRange(min=0), default=0.1, show_default=True,
+              help="From the second round, value and uncertain ask only where the router fitted after the "
+                   "previous round could send the case to the expert (its cost within this margin of the "
+                   "best option), as 'round plan' does.")
+@click.option("--no-focus", is_flag=True, help="Plan every round without the router's focus.")
 @click.option("--seed", type=int, default=0, show_default=True, help="Seeds the scenario, the rounds and the routers.")
 @click.option("--plot", "plot_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
               help="Write the curves to this PNG.")
 @json_option
 @pass_app
-def rehearse(app, n_rounds, budget_per_round, n_pool, strategies, audit_share, weighting, seed, plot_path, as_json):
+def rehearse(app, n_rounds, budget_per_round, n_pool, strategies, audit_share, weighting, focus_margin, no_focus,
+             seed, plot_path, as_json):
     """Rehearse a budget on a simulated scenario before spending money.
 
     Plays the rounds for each strategy on a synthetic pool with known competence (three
@@ -476,7 +482,8 @@ def rehearse(app, n_rounds, budget_per_round, n_pool, strategies, audit_share, w
     with Progress(console=app.console, disable=app.quiet or as_json, transient=True) as bar:
         task = bar.add_task("rehearsing", total=len(chosen) * n_rounds)
         result = run(n_pool=n_pool, strategies=chosen, n_rounds=n_rounds, budget_per_round=budget_per_round,
-                     audit_share=audit_share, weighting=weighting, random_state=seed,
+                     audit_share=audit_share, weighting=weighting,
+                     focus_margin=None if no_focus else focus_margin, random_state=seed,
                      progress=lambda text: bar.update(task, advance=1, description=text))
     target = result.full_information_cost + 0.01
     reach = budget_to_reach(result.curves, target)
@@ -579,16 +586,22 @@ def round_group() -> None:
 @click.option("--regions", type=click.IntRange(min=1), default=6, show_default=True,
               help="Regions of the feature space for the accuracy estimates.")
 @click.option("--due-days", type=float, default=None, help="Answers are due this many days from now.")
+@click.option("--focus-margin", type=click.FloatRange(min=0), default=0.1, show_default=True,
+              help="Once 'fit' has kept a router, value and uncertain ask only where that router could send "
+                   "the case to the expert: its estimated cost within this margin (in errors) of the best "
+                   "option. The audit share stays uniform.")
+@click.option("--no-focus", is_flag=True, help="Ignore the kept router when planning.")
 @click.option("--dry-run", is_flag=True, help="Show the plan without storing it.")
 @json_option
 @pass_app
 def round_plan(app, budget, strategy, seed, audit_share, max_per_expert, include_unverified, regions, due_days,
-               dry_run, as_json):
+               focus_margin, no_focus, dry_run, as_json):
     """Choose which cases go to which expert in a new round.
 
     The fees of the round's assignments add up to at most --budget. Each expert takes at most --max-per-expert cases and at most its capacity share of the
     round's assignments (rounded up); no expert is asked twice about a case. Every
-    assignment records its selection probability.
+    assignment records its selection probability. After 'fit', the kept router's open
+    decisions steer the default strategy (see --focus-margin); fit again after each round.
 
     Example:
 
@@ -600,7 +613,8 @@ def round_plan(app, budget, strategy, seed, audit_share, max_per_expert, include
     with app.workspace() as ws:
         plan = plan_round(ws, budget, strategy=strategy, seed=seed, audit_share=audit_share,
                           max_per_expert=max_per_expert, include_unverified=include_unverified,
-                          due_days=due_days, n_regions=regions, dry_run=dry_run)
+                          due_days=due_days, n_regions=regions,
+                          focus_margin=None if no_focus else focus_margin, dry_run=dry_run)
     if as_json:
         app.emit_json(plan.to_dict())
     elif not app.quiet:

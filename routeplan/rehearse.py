@@ -258,8 +258,8 @@ class _Stage:
     C: np.ndarray
     router_params: dict
 
-    def score(self, answers: np.ndarray, weights: np.ndarray | None, seed: int) -> float:
-        """Fit a two-stage plug-in router on the answers; return its exact held-out cost."""
+    def fit(self, answers: np.ndarray, weights: np.ndarray | None, seed: int) -> Any:
+        """A two-stage plug-in router fitted on the answers."""
         import warnings
 
         from .learner import PluginRouter
@@ -269,7 +269,21 @@ class _Stage:
             warnings.simplefilter("ignore", UserWarning)  # "no known answer" early on is expected
             router.fit(self.X, self.y, answers, fees=self.fees, cost_matrix=self.C, sample_weight=weights,
                        class_proba=self.P)
+        return router
+
+    def cost(self, router: Any) -> float:
+        """The exact held-out system cost of a fitted router."""
         return system_cost_exact(self.true_costs, router.predict_route(self.X_eval, class_proba=self.P_eval))
+
+    def score(self, answers: np.ndarray, weights: np.ndarray | None, seed: int) -> float:
+        """Fit a two-stage plug-in router on the answers; return its exact held-out cost."""
+        return self.cost(self.fit(answers, weights, seed))
+
+    def focus(self, router: Any, margin: float | None) -> np.ndarray | None:
+        """The router's focus on the pool (:func:`routeplan.acquisition.router_focus`)."""
+        if router is None or margin is None:
+            return None
+        return acquisition.router_focus(router.predict_costs(self.X, class_proba=self.P), self.C.shape[0], margin)
 
 
 def stabilized_weights(designs: Sequence[np.ndarray], region: np.ndarray, stratum: np.ndarray,
@@ -352,16 +366,21 @@ def _play(stage: _Stage, plan: Callable, weigh: Callable, strategy: str, steps: 
     spend = 0.0
     rng = np.random.default_rng([seed, STRATEGIES.index(strategy)])
     rows = []
+    router = None  # the last router fitted: its focus steers the next round
     for round_no, cumulative in enumerate(steps, start=1):
         if cumulative - spend >= float(stage.fees.min()):
-            sel = plan(revealed, strategy, cumulative - spend, rng)
+            sel = plan(revealed, strategy, cumulative - spend, rng, router)
             revealed[sel.case, sel.expert] = True
             prob[sel.case, sel.expert] = sel.selection_prob
             designs.append(sel.design)
             spend += float(sel.spend.sum())
         shown = np.where(revealed, answers_all, -1)
         weights = weigh(designs, prob, shown, revealed) if designs else None
-        cost = float(np.mean([stage.score(shown, weights, seed + 7919 * k) for k in range(n_fits)]))
+        costs = []
+        for k in range(n_fits):
+            router = stage.fit(shown, weights, seed + 7919 * k)
+            costs.append(stage.cost(router))
+        cost = float(np.mean(costs))
         rows.append({"strategy": strategy, "round": round_no, "spend": spend,
                      "answers": int(revealed.sum()), "system_cost": cost})
         if progress is not None:
@@ -397,6 +416,7 @@ def rehearse(
     planner_options: dict | None = None,
     router_params: dict | None = None,
     weighting: str = "stabilized",
+    focus_margin: float | None = 0.1,
     n_router_fits: int = 1,
     n_folds: int = 5,
     n_reference_fits: int = 3,
@@ -431,8 +451,13 @@ def rehearse(
         Weights of the answers when a router is fitted: :func:`stabilized_weights` over the
         rounds' designs; the recorded selection probabilities through
         :func:`routeplan.fitting.answer_weights`; or none.
+    focus_margin : float or None, default=0.1
+        From the second round on, ``value`` and ``uncertain`` pick only pairs in the focus of
+        the router fitted after the previous round (:func:`routeplan.acquisition.router_focus`
+        with this margin), as ``routeplan round plan`` does with the workspace's kept router;
+        None plans without focus.
     n_router_fits : int, default=1
-        Router seeds averaged at each point of a curve.
+        Router seeds averaged at each point of a curve (the last one steers the next round).
     n_folds : int, default=5
         Folds of the cross-fitted classifier.
     n_reference_fits : int, default=3
@@ -452,6 +477,8 @@ def rehearse(
         raise ValueError(f"weighting must be one of {', '.join(WEIGHTINGS)}, got {weighting!r}")
     if int(n_router_fits) != n_router_fits or n_router_fits < 1:
         raise ValueError("n_router_fits must be a positive integer")
+    if focus_margin is not None and not (np.isfinite(focus_margin) and focus_margin >= 0):
+        raise ValueError(f"focus_margin must be a number >= 0 or None, got {focus_margin!r}")
     steps = _schedule(budgets, n_rounds, budget_per_round)
     scn = scenario if scenario is not None else make_scenario(n_pool + n_eval, random_state=random_state)
     n_pool = min(n_pool, scn.X.shape[0] // 2) if scenario is not None else n_pool
@@ -464,11 +491,12 @@ def rehearse(
         stage.X, stage.y, scn.n_classes, random_state=random_state), 1.0)
     options = dict(planner_options or {})
 
-    def plan(revealed, strategy, budget, rng):
+    def plan(revealed, strategy, budget, rng, router):
         pool = _planner_input(stage.y, region, revealed, answers_all, model_cost, stage.fees, 1.0,
                               scn.n_experts, n_regions)
         return acquisition.select_assignments(pool, budget=budget, strategy=strategy, audit_share=audit_share,
-                                              random_state=rng, **options)
+                                              focus=stage.focus(router, focus_margin), random_state=rng,
+                                              **options)
 
     weigh = _weigher(weighting, region, stage.y)
     rows = []
@@ -478,6 +506,7 @@ def rehearse(
                      float(stage.fees.sum() * n_pool),
                      {"n_pool": n_pool, "n_eval": int(stage.true_costs.shape[0]), "budgets": steps,
                       "audit_share": audit_share, "n_regions": n_regions, "seed": random_state,
+                      "focus_margin": focus_margin,
                       "experts": list(scn.names), "fees": stage.fees.tolist(), "weighting": weighting,
                       "router": {k: list(v) if isinstance(v, tuple) else v for k, v in params.items()},
                       "planner": options})

@@ -16,6 +16,12 @@ Choices written down here
   seeded by the round's seed.
 * Accuracies per (expert, region) rest on every stored answer on a case with truth (historical
   ones included); open assignments of open rounds count as answers still to come.
+* Focus: once ``routeplan fit`` has kept a router fitted on the current labels, experts and
+  feature columns, ``value`` and ``uncertain`` pick only pairs where that router's estimated
+  cost of asking the expert is within ``focus_margin`` of its best other option
+  (:func:`routeplan.acquisition.router_focus`); the audit stays uniform. The plan names the
+  model. A router that needs imported class probabilities (two-stage) cannot score the
+  candidates here, and the round is planned without focus.
 * The assignments are stored in a seeded random order, so a sheet does not reveal which rows
   are the audit.
 * Closing a round leaves its open assignments unanswered (state ``open`` in a ``closed``
@@ -40,9 +46,10 @@ from .acquisition import (
     cell_counts,
     class_probabilities,
     model_decision_cost,
+    router_focus,
     select_assignments,
 )
-from .errors import InputError
+from .errors import InputError, NotFitted
 from .files import write_csv
 from .workspace import Workspace
 
@@ -87,6 +94,7 @@ class RoundPlan:
     experts: list[dict]
     due_at: str | None = None
     notes: list[str] = field(default_factory=list)
+    focus: dict | None = None
 
     def to_dict(self) -> dict:
         """Plain data for ``--json`` (see ``schemas/round-plan.schema.json``)."""
@@ -112,6 +120,10 @@ class RoundPlan:
         parts: list = [head, table]
         parts.append(Text("expected gain: expected drop of the summed decision cost over the workspace's "
                           "cases, in fee units, once these answers are in", style="dim"))
+        if self.focus:
+            parts.append(Text(f"focus: pairs where model #{self.focus['model_id']} could send the case to "
+                              f"the expert (cost within {self.focus['margin']:g} of its best option): "
+                              f"{self.focus['pairs_in_focus']:.0%} of the candidate pairs", style="dim"))
         parts.extend(Text(f"note: {n}") for n in self.notes)
         return Group(*parts)
 
@@ -202,6 +214,7 @@ def plan_round(
     include_unverified: bool = False,
     due_days: float | None = None,
     n_regions: int = 6,
+    focus_margin: float | None = 0.1,
     dry_run: bool = False,
 ) -> RoundPlan:
     """Choose a round of assignments and store it (one transaction, one journal entry).
@@ -225,6 +238,12 @@ def plan_round(
         Answers are due this many days from now (stored with the round).
     n_regions : int, default=6
         Regions of the feature space.
+    focus_margin : float or None, default=0.1
+        With a kept router (``routeplan fit``) fitted on the workspace's current experts,
+        labels and features, ``value`` and ``uncertain`` pick only pairs where that router's
+        estimated cost of asking the expert is within this margin of its best other option
+        (:func:`routeplan.acquisition.router_focus`); None, or no usable router, plans
+        without focus.
     dry_run : bool, default=False
         Plan but store nothing.
 
@@ -239,14 +258,23 @@ def plan_round(
         or a budget below every fee).
     """
     _check_plan_options(budget, strategy, audit_share, max_per_expert, due_days, n_regions)
-    pool, case_ids, experts = _pool(ws, include_unverified, int(n_regions), int(seed))
+    if focus_margin is not None and not (np.isfinite(focus_margin) and focus_margin >= 0):
+        raise InputError(f"--focus-margin must be a number >= 0, got {focus_margin!r}")
+    pool, case_ids, experts, X = _pool(ws, include_unverified, int(n_regions), int(seed))
     _check_something_fits(pool, experts, budget)
+    focus, focus_model, focus_note = (None, None, None) if focus_margin is None or strategy == "random" else \
+        _router_focus(ws, X, [e["name"] for e in experts], float(focus_margin))
     rng = np.random.default_rng(int(seed))
     sel = select_assignments(pool, budget=float(budget), strategy=strategy, audit_share=float(audit_share),
-                             max_per_expert=max_per_expert, random_state=rng)
+                             max_per_expert=max_per_expert, focus=focus, random_state=rng)
     order = rng.permutation(sel.case.size)
     due_at = _due_at(due_days)
     plan = _plan_result(sel, experts, strategy, int(seed), float(budget), float(audit_share), due_at)
+    if focus_note:
+        plan.notes.append(focus_note)
+    if focus is not None:
+        plan.focus = {"model_id": int(focus_model), "margin": float(focus_margin),
+                      "pairs_in_focus": round(float(focus[pool.eligible].mean()) if pool.eligible.any() else 0.0, 6)}
     if dry_run:
         return plan
     names = [e["name"] for e in experts]
@@ -289,6 +317,7 @@ def _detail(plan: RoundPlan, max_per_expert, include_unverified, n_regions, sel:
         "audit_spend": plan.audit_spend,
         "experts": plan.experts,
         "notes": plan.notes,
+        "focus": plan.focus,
     }
 
 
@@ -313,6 +342,34 @@ def _plan_result(sel: Selection, experts: list[dict], strategy, seed, budget, au
     )
 
 
+def _router_focus(ws: Workspace, X: np.ndarray, experts: list[str], margin: float
+                  ) -> tuple[np.ndarray | None, int | None, str | None]:
+    """The kept router's focus on the candidates (features X) and its model id; else why not.
+
+    Usable: fitted on the workspace's current labels, experts (same names, same order) and
+    feature columns. Fees and capacities may have changed since; the router's costs use the
+    fees it was fitted with.
+    """
+    from .features import FeatureSpec
+    from .fitting import load_router
+
+    try:
+        model_id, router, params, _ = load_router(ws)
+    except NotFitted:
+        return None, None, None  # nothing fitted yet: the usual first round
+    spec = FeatureSpec.from_dict(params["features"])
+    stored_experts = [e["name"] for e in params.get("experts", [])]
+    if (list(params.get("labels", [])) != list(ws.labels) or stored_experts != list(experts)
+            or list(spec.names) != list(ws.feature_columns)):
+        return None, None, (f"planned without focus: the kept model #{model_id} was fitted on other "
+                            "experts, labels or features; run 'routeplan fit' again")
+    try:
+        costs = router.predict_costs(spec.transform(X))
+    except (TypeError, ValueError):  # e.g. a two-stage router that needs imported probabilities
+        return None, None, f"planned without focus: the kept model #{model_id} cannot score these cases"
+    return router_focus(costs, len(ws.labels), margin), int(model_id), None
+
+
 def _check_something_fits(pool: PlannerInput, experts: list[dict], budget: float) -> None:
     """Refuse a plan that cannot hold a single assignment, saying why."""
     open_experts = pool.capacities > 0
@@ -328,8 +385,10 @@ def _check_something_fits(pool: PlannerInput, experts: list[dict], budget: float
         raise InputError(f"--budget {budget:g} buys no assignment: the cheapest fee is {cheapest:g}")
 
 
-def _pool(ws: Workspace, include_unverified: bool, n_regions: int, seed: int) -> tuple[PlannerInput, list[str], list[dict]]:
-    """Read the workspace into a PlannerInput; also return candidate case ids and the experts."""
+def _pool(ws: Workspace, include_unverified: bool, n_regions: int, seed: int
+          ) -> tuple[PlannerInput, list[str], list[dict], np.ndarray]:
+    """Read the workspace into a PlannerInput; also return candidate case ids, the experts and
+    the candidates' features."""
     from .competence import regions_from_features
 
     frame, X = ws.case_frame()
@@ -365,7 +424,7 @@ def _pool(ws: Workspace, include_unverified: bool, n_regions: int, seed: int) ->
         model_cost=model_decision_cost(proba, ws.error_cost), population_region=region,
         error_cost=ws.error_cost,
     )
-    return pool, frame["case_id"].to_numpy()[candidates].tolist(), experts
+    return pool, frame["case_id"].to_numpy()[candidates].tolist(), experts, X[candidates]
 
 
 def _assigned(ws, position, region, names, r):

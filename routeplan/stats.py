@@ -105,7 +105,7 @@ def mean_interval(
     The interval is ``mean +/- z * s / sqrt(n)`` with ``s`` the sample standard
     deviation (ddof=1), the large-sample interval of any textbook (common practice).
     With ``weights`` the mean is the weighted (Hajek) mean and ``n`` is Kish's
-    effective sample size ``(sum w)**2 / sum w**2`` (Kish, Survey Sampling, 1965).
+    effective sample size (:func:`effective_sample_size`).
 
     Parameters
     ----------
@@ -134,7 +134,7 @@ def mean_interval(
         return np.nan, np.nan, np.nan
     mean = float(np.dot(w, x) / total)
     var = float(np.dot(w, (x - mean) ** 2) / total)
-    n_eff = total**2 / float(np.dot(w, w))
+    n_eff = effective_sample_size(w)
     low, high = _normal_interval(np.asarray(mean), np.asarray(var), np.asarray(n_eff), z)
     return mean, float(low), float(high)
 
@@ -283,10 +283,10 @@ def fleiss_kappa(counts: ArrayLike) -> float:
 def effective_sample_size(weights: ArrayLike) -> float:
     """Kish's effective sample size of weighted observations, ``(sum w)^2 / sum w^2``.
 
-    Kish, *Survey Sampling*, Wiley, 1965, section 11.7: a weighted mean of ``n``
-    observations is about as precise as an unweighted mean of this many; it equals ``n``
-    for equal weights and falls toward 1 as one weight dominates. NaN entries (no
-    observation) are ignored.
+    Kish, *Survey Sampling*, Wiley, 1965, section 11.7 (section cited from memory): a
+    weighted mean of ``n`` observations is about as precise as an unweighted mean of this
+    many; it equals ``n`` for equal weights and falls toward 1 as one weight dominates.
+    NaN entries (no observation) are ignored.
 
     Parameters
     ----------

@@ -22,6 +22,7 @@ from routeplan.acquisition import (
     class_probabilities,
     knowledge_gradient,
     model_decision_cost,
+    router_focus,
     select_assignments,
 )
 
@@ -468,3 +469,50 @@ def test_audit_estimate_of_accuracy_is_unbiased():
     assert abs(estimates.mean() - truth) < 3 * se
     # the targeted picks are not a sample of the population: their mean is far off (shows the test has teeth)
     assert abs(np.mean(targeted) - truth) > 3 * se
+
+
+def test_router_focus_hand_example():
+    # margin sampling on the router's deferral decision (Scheffer, Decomain & Wrobel, IDA 2001):
+    # expert j is in focus when its cost is within the margin of the best *other* option
+    # (hand-worked; columns: class 0, class 1, expert A, expert B)
+    E = np.array([
+        [0.10, 0.90, 0.30, 0.15],   # model best (0.10): B within 0.1 -> in, A (0.30) out
+        [0.40, 0.60, 0.20, 0.50],   # A best: its best other is the model (0.40) -> in; B 0.50 > 0.20 + 0.1
+        [0.40, 0.60, 0.45, 0.45],   # A and B tie at 0.45 against the model's 0.40: both within 0.1
+    ])
+    assert router_focus(E, 2, 0.1).tolist() == [[False, True], [True, False], [True, True]]
+    assert router_focus(E, 2, 0.0).tolist() == [[False, False], [True, False], [False, False]]
+    with pytest.raises(ValueError):
+        router_focus(E, 2, -0.1)
+    with pytest.raises(ValueError):
+        router_focus(E[:, :1], 2)
+
+
+def test_focus_limits_the_strategy_but_not_the_audit_or_random():
+    pool = make_pool(seed=3)
+    rng = np.random.default_rng(0)
+    focus = rng.uniform(size=pool.eligible.shape) < 0.3
+    for strategy in ("value", "uncertain"):
+        sel = select_assignments(pool, budget=20.0, strategy=strategy, audit_share=0.2, focus=focus, random_state=1)
+        own = ~sel.audit
+        assert own.any() and focus[sel.case[own], sel.expert[own]].all()
+        # the audit stays a simple random sample of the eligible pairs (common practice):
+        # with 30% of the pairs in focus, an audit of this size almost surely leaves it
+        assert not focus[sel.case[sel.audit], sel.expert[sel.audit]].all()
+    sel = select_assignments(pool, budget=20.0, strategy="random", audit_share=0.0, focus=focus, random_state=1)
+    assert not focus[sel.case, sel.expert].all()
+    with pytest.raises(ValueError):
+        select_assignments(pool, budget=20.0, focus=focus[:, :2])
+
+
+def test_focus_that_runs_out_leaves_the_rest_to_the_other_pairs():
+    # common practice: a round spends its budget; when the router has few open decisions the
+    # focused pairs go first and the rest is spent outside the focus by the same strategy
+    pool = make_pool(seed=4)
+    focus = np.zeros(pool.eligible.shape, dtype=bool)
+    focus[:6, 0] = True
+    sel = select_assignments(pool, budget=5.0, strategy="value", audit_share=0.0, focus=focus, random_state=2)
+    picked = set(zip(sel.case.tolist(), sel.expert.tolist()))
+    assert {(i, 0) for i in range(6)} <= picked
+    assert len(picked) > 6
+    assert sel.budget_used > 5.0 - max(pool.fees)

@@ -410,3 +410,51 @@ def test_fit_weights_round_answers_by_the_stored_designs(ws, tmp_path):
             own, weight = total[j, g, y[members]], w[members, j]
             order = np.argsort(own)
             assert np.all(np.diff(weight[order]) <= 1e-9)
+
+
+# --------------------------------------------------------------------------- focus
+
+
+def test_plan_after_fit_is_steered_by_the_kept_router(ws, tmp_path):
+    # margin sampling on the router's deferral decisions (Scheffer, Decomain & Wrobel, IDA 2001):
+    # once 'fit' keeps a router, value picks (not the audit) lie where that router could send
+    # the case to the expert; the plan names the model; --no-focus and 'random' ignore it
+    from routeplan.acquisition import router_focus
+    from routeplan.features import FeatureSpec
+    from routeplan.fitting import load_router
+    from routeplan.workspace import Workspace
+
+    schema = Draft202012Validator(json.loads((SCHEMAS / "round-plan.schema.json").read_text()))
+    first = plan(ws, "--budget", 8, "--seed", 1)
+    assert first["focus"] is None  # nothing fitted yet
+    truth = dict(rows(ws, "SELECT case_id, truth FROM cases"))
+    answers = tmp_path / "answers.csv"
+    with open(answers, "w", newline="", encoding="utf-8") as handle:
+        writer = csv.writer(handle)
+        writer.writerow(["case_id", "expert", "answer"])
+        for case_id, expert, *_ in assignments(ws, first["round"]):
+            writer.writerow([case_id, expert, truth[case_id] if expert != "cy" else "a"])
+    ok(invoke(ws, "answers", "import", answers))
+    ok(invoke(ws, "fit", "--router", "plugin", "--max-epochs", "5", "--seed", "0"))
+    kept = rows(ws, "SELECT model_id FROM models WHERE chosen = 1")[0][0]
+    second = plan(ws, "--budget", 8, "--seed", 2)
+    schema.validate(second)
+    assert second["focus"]["model_id"] == kept and second["focus"]["margin"] == pytest.approx(0.1)
+    assert 0 < second["focus"]["pairs_in_focus"] <= 1
+    with Workspace.open(ws) as handle:
+        _, router, params, _ = load_router(handle)
+        frame, X = handle.case_frame()
+    spec = FeatureSpec.from_dict(params["features"])
+    index = {c: i for i, c in enumerate(frame["case_id"])}
+    names = list(EXPERTS)
+    picks = [(c, e) for c, e, strategy, *_ in assignments(ws, second["round"]) if strategy != "audit"]
+    assert picks
+    costs = router.predict_costs(spec.transform(X[[index[c] for c, _ in picks]]))
+    focus = router_focus(costs, 3, 0.1)
+    assert all(focus[i, names.index(e)] for i, (_, e) in enumerate(picks))
+    assert plan(ws, "--budget", 8, "--seed", 3, "--no-focus", "--dry-run")["focus"] is None
+    assert plan(ws, "--budget", 8, "--seed", 3, "--strategy", "random", "--dry-run")["focus"] is None
+    # a router fitted before an expert joined cannot steer: the plan says so
+    ok(invoke(ws, "experts", "add", "dee", "--fee", "0.1"))
+    later = plan(ws, "--budget", 8, "--seed", 4, "--dry-run")
+    assert later["focus"] is None and any("without focus" in n for n in later["notes"])

@@ -178,8 +178,9 @@ def test_fleiss_kappa_matches_statsmodels_and_worked_example():
 def test_effective_sample_size_kish():
     from routeplan.stats import effective_sample_size
 
-    # Kish, Survey Sampling (1965), 11.7: n_eff = n / (1 + cv^2), cv the coefficient of
-    # variation of the weights (population variance); equal weights give n, one dominant weight ~1
+    # Kish, Survey Sampling (1965), 11.7 (section from memory): n_eff = n / (1 + cv^2), with cv
+    # the coefficient of variation of the weights (population variance); equal weights give n,
+    # one dominant weight about 1
     rng = np.random.default_rng(3)
     w = rng.gamma(0.5, size=200)
     assert effective_sample_size(w) == pytest.approx(w.size / (1 + w.var() / w.mean() ** 2))
