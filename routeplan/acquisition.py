@@ -54,11 +54,8 @@ Strategies
     0.039); with ``variance`` the median curve is at or below ``random``'s at every budget,
     with the others not at the smallest budgets. Leaving out cells where an expert is
     dominated by another (95% Beta credible bounds) made things worse (median budget to
-    reach the full-information cost 226 against 160 fee units; 5 seeds). Even an oracle
-    that restricted the picks to the cases where, by the true costs, the expert is best or
-    within 0.1 of the best did far worse than ``random`` (mean median gap 0.107 against
-    0.039; ``benchmarks/probe_focus.py``): the router, shown an expert only where it is
-    good, defers to it elsewhere too.
+    reach the full-information cost 226 against 160 fee units; 5 seeds). See also "Focus"
+    below.
     ``min_value_per_fee=0`` keeps the greedy to the end.
 ``uncertain``
     Largest posterior variance of the cell's accuracy per unit of fee, with the same fantasy
@@ -99,9 +96,9 @@ units (``random`` 273), staying within from 193 to 113 (``random`` 320), and the
 curve goes below the full-information cost from 160 fee units; on digits from 9.7 to 4.8
 (``random`` 10.8), staying within from 9.7 to 6.8 (``random`` 16). Without the fallback to
 the pairs out of focus (the same script on that version), ``value`` left up to half of the
-digits budget unspent and was worse than ``random`` at the four largest budgets. A focus drawn from the *true* costs instead
-fails badly (``benchmarks/probe_focus.py``): the router must see its own mistakes, not only
-the places that matter.
+digits budget unspent and was worse than ``random`` at the four largest budgets. A focus
+drawn from the *true* costs instead fails badly (``benchmarks/probe_focus.py``): the router
+must see its own mistakes, not only the places that matter.
 
 Audit share
 -----------
@@ -638,7 +635,7 @@ def router_focus(expected_costs: ArrayLike, n_classes: int, margin: float = 0.1)
     if M == 0 or E.shape[0] == 0:
         return focus
     # best and second-best option per case: the best other option of the arg-min is the second
-    order = np.argsort(E, axis=1, kind="stable")[:, :2] if E.shape[1] > 1 else np.zeros((E.shape[0], 2), int)
+    order = np.argsort(E, axis=1, kind="stable")[:, :2]  # K >= 1 and M >= 1: two options at least
     rows = np.arange(E.shape[0])
     best, second = E[rows, order[:, 0]], E[rows, order[:, 1]]
     for j in range(M):
@@ -750,7 +747,7 @@ def select_assignments(
         picks.append(_random_picks(eligible, ledger, rng, max_steps))
     else:
         options = (explore_min, explore_share, tight_sd, tight_n, min_value_per_fee, spread)
-        unfocused = eligible.copy()
+        unfocused = eligible.copy() if focus is not None else eligible
         if focus is not None:
             eligible &= focus  # in place: the design below reads the focused eligibility
         k = _cell_counts(pool, costs, eligible, ledger, alpha, beta, fee_eff, strategy, options, max_steps, rng)
