@@ -63,7 +63,12 @@ def _oracle_mask(seed: int, mode: str, tau: float, n_pool: int = 3000) -> np.nda
 
 
 def play_focused(seed: int, mode: str, tau: float) -> dict:
-    """bench_rounds.play on the synthetic scenario with the oracle restriction patched in."""
+    """bench_rounds.play on the synthetic scenario with the oracle restriction patched in.
+
+    It patches the planner's cell counting and drawing instead of passing the mask as
+    ``select_assignments(focus=...)``: that keyword also spends what the focus leaves on the
+    other pairs, and the probe measures the restriction alone (as its figures were taken).
+    """
     from routeplan import acquisition
 
     mask = _oracle_mask(seed, mode, tau)

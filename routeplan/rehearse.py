@@ -20,6 +20,9 @@ Choices that keep the measurement honest
   strategies face the same experts (common random numbers).
 * The full-information reference is the mean over ``n_reference_fits`` router seeds, fitted
   with the same settings as the routers on the curves.
+* From the second round on, ``value`` and ``uncertain`` are steered by the focus of the
+  router fitted after the previous round (``focus_margin``), as ``routeplan round plan`` is
+  by the workspace's kept router; the full-information reference is not.
 * Budgets may be a schedule of cumulative spends (``budgets``), e.g. the geometric one of
   :func:`budget_schedule`, so that a curve has resolution where costs fall fast.
 * Answers are weighted by :func:`stabilized_weights` over the rounds' designs by default, as
