@@ -144,7 +144,8 @@ def main() -> None:
     parser.add_argument("--seeds", type=int, default=8, help="Seeds per scenario (0..N-1).")
     parser.add_argument("--jobs", type=int, default=2, help="Worker processes.")
     parser.add_argument("--fits", type=int, default=2, help="Router seeds averaged per point.")
-    parser.add_argument("--weighting", default="stabilized", help="stabilized, recorded or none.")
+    parser.add_argument("--weighting", default="none", help="none (as routeplan fit weighs round answers), "
+                        "stabilized or recorded (routeplan.rehearse.WEIGHTINGS).")
     parser.add_argument("--only", choices=sorted(SCENARIOS), default=None)
     parser.add_argument("--focus-margin", type=float, default=0.1,
                         help="Margin of the router's focus (routeplan.acquisition.router_focus).")

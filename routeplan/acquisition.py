@@ -120,11 +120,12 @@ from cell-level figures (conditional on those counts):
 * ``random``: ``k_j / e'_j``: picks of expert ``j`` over its eligible cases left after
   the audit;
 * ``value`` and ``uncertain``: within a cell the picks are spread over the classes present
-  (truth, or the predicted class where truth is unknown): each class gets one pick, the rest
-  go in proportion to the class's eligible cases (largest remainders), and the cases are drawn
-  by simple random sampling inside each (cell, class). A pick's probability is
-  ``k_cy / e_cy``; when a cell has fewer picks than classes, the classes that get one are
-  drawn at random and the probability is ``(k_c / S_c) / e_cy`` (``S_c`` classes present).
+  (the strata: the model's predicted classes, as :mod:`routeplan.rounds` passes them): each
+  class gets one pick, the rest go in proportion to the class's eligible cases (largest
+  remainders), and the cases are drawn by simple random sampling inside each (cell, class).
+  A pick's probability is ``k_cy / e_cy``; when a cell has fewer picks than classes, the
+  classes that get one are drawn at random and the probability is ``(k_c / S_c) / e_cy``
+  (``S_c`` classes present).
 
 Design of a round
 -----------------
@@ -194,7 +195,9 @@ class PlannerInput:
     region : ndarray of int of shape (n_cases,)
         Region code ``0..n_regions-1`` of each candidate case.
     stratum : ndarray of int of shape (n_cases,)
-        Class code of each candidate (truth, or the predicted class), to spread picks.
+        Class code of each candidate, to spread picks; :mod:`routeplan.rounds` passes the
+        model's predicted class (a function of the features, so that the chance of being
+        asked does not depend on the outcome).
     fees : ndarray of shape (n_experts,)
         Fee per case of each expert (>= 0).
     capacities : ndarray of shape (n_experts,)

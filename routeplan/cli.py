@@ -442,10 +442,11 @@ def route(app, policy_path, cases_path, out_path, exact, id_column, chunk_size, 
               help="Comma-separated strategies to compare.")
 @click.option("--audit-share", type=click.FloatRange(0, 1), default=0.1, show_default=True,
               help="Share of each round's budget spent uniformly at random.")
-@click.option("--weighting", type=click.Choice(["stabilized", "recorded", "none"]), default="stabilized",
+@click.option("--weighting", type=click.Choice(["none", "stabilized", "recorded"]), default="none",
               show_default=True,
-              help="How answers are weighted when a router is fitted: stabilized over the rounds' designs "
-                   "(as 'fit' does), by each pick's own recorded probability, or not at all.")
+              help="How answers are weighted when a router is fitted: not at all (as 'fit' weighs answers of "
+                   "rounds, which are picked from the features alone), stabilized over the rounds' designs, "
+                   "or by each pick's own recorded probability.")
 @click.option("--focus-margin", type=click.FloatRange(min=0), default=0.1, show_default=True,
               help="From the second round, value and uncertain ask only where the router fitted after the "
                    "previous round could send the case to the expert (its cost within this margin of the "

@@ -182,9 +182,20 @@ def uneven_weight_notes(counts: dict[str, int], effective: dict[str, float], *,
 
 
 def round_weights(pool: Pool, rounds: list[dict], mask: np.ndarray) -> np.ndarray:
-    """Weights of the answers on the cases of ``mask``: stabilized over the rounds' designs.
+    """Weights of the answers on the cases of ``mask``: equal, or stabilized over old designs.
 
-    Answers bought in rounds get :func:`routeplan.rehearse.stabilized_weights` over the designs
+    Rounds planned on predicted classes (``detail["strata"] == "predicted"``, every round
+    since that key exists) chose their pairs from the features alone: regions, the model's
+    predicted class, the router's focus and uniform draws, never the truth. The answers are
+    then missing at random given the features, and a model of ``P(expert right | x)`` fitted
+    on them without weights is unbiased (ignorability: Rubin, "Inference and missing data",
+    Biometrika 63(3), 1976), while inverse-probability weights would only add variance. So when
+    every round is of that kind, each answer weighs 1. Measured (``benchmarks/bench_rounds.py``,
+    8 seeds, 2 router fits per point, against stabilized weights over truth strata): see
+    :mod:`routeplan.rehearse`. The recorded selection probabilities still serve the audit's
+    unbiased accuracy estimates (:mod:`routeplan.competence`).
+
+    Otherwise (a workspace with rounds stratified by the truth), answers bought in rounds get :func:`routeplan.rehearse.stabilized_weights` over the designs
     the rounds stored (``detail["design"]``, experts x regions x classes; experts matched by
     name); historical answers weigh 1. Regions are recomputed as ``round plan`` computed them
     (:func:`routeplan.competence.regions_from_features` on every case, ``random_state=0``), with
@@ -214,6 +225,8 @@ def round_weights(pool: Pool, rounds: list[dict], mask: np.ndarray) -> np.ndarra
     from .rehearse import stabilized_weights
 
     A, prob = pool.answers[mask], pool.selection_prob[mask]
+    if rounds and all(r["detail"].get("strata") == "predicted" for r in rounds):
+        return np.where(A >= 0, 1.0, np.nan)
     asked = np.isfinite(prob) & (A >= 0)
     usable = [r["detail"] for r in rounds if r["detail"].get("design") and r["detail"].get("regions")]
     if not asked.any() or not usable:

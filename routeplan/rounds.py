@@ -13,7 +13,12 @@ Choices written down here
   fixed seed (0), so they do not move with the round's seed
   (:func:`routeplan.competence.regions_from_features`).
 * ``P(y | x)`` for the model's expected cost: :func:`routeplan.acquisition.class_probabilities`,
-  seeded by the round's seed.
+  seeded by the round's seed. Its predicted class is also the stratum over which a cell's
+  picks are spread, for every candidate, never the truth: the chance that a pair is asked
+  then depends on the features alone (region, predicted class, the router's focus), never on
+  the outcome, so the answers are missing at random given the features and a model of
+  ``P(expert right | x)`` fitted on them needs no weights (the round's detail says
+  ``"strata": "predicted"``; :func:`routeplan.fitting.round_weights`).
 * Accuracies per (expert, region) rest on every stored answer on a case with truth (historical
   ones included); open assignments of open rounds count as answers still to come.
 * Focus: once ``routeplan fit`` has kept a router fitted on the current labels, experts and
@@ -303,12 +308,14 @@ def _due_at(due_days: float | None) -> str | None:
 def _detail(plan: RoundPlan, max_per_expert, include_unverified, n_regions, sel: Selection) -> dict:
     """What the round row keeps besides its columns.
 
-    ``design`` is :attr:`routeplan.acquisition.Selection.design` (experts x regions x classes):
-    each group's chance of being asked in this round, kept so that later fits can weight
-    answers by the combined design over rounds.
+    ``design`` is :attr:`routeplan.acquisition.Selection.design` (experts x regions x
+    predicted classes): each group's chance of being asked in this round. ``strata`` names
+    what the design's third axis holds; rounds stored before it (no key) were stratified by
+    the truth, and later fits weight their answers by the combined design.
     """
     return {
         "design": np.round(np.asarray(sel.design, dtype=float), 12).tolist(),
+        "strata": "predicted",
         "audit_share": plan.audit_share,
         "max_per_expert": max_per_expert,
         "include_unverified": bool(include_unverified),
@@ -406,7 +413,7 @@ def _pool(ws: Workspace, include_unverified: bool, n_regions: int, seed: int
     region = regions_from_features(X, n_regions=min(n_regions, len(frame)), random_state=0)
     r = int(region.max()) + 1
     proba = class_probabilities(X, truth, len(labels), random_state=seed)
-    stratum = np.where(truth >= 0, truth, proba.argmax(axis=1))
+    stratum = proba.argmax(axis=1)  # not the truth: see "Choices written down here"
     names = [e["name"] for e in experts]
     position = pd.Index(frame["case_id"])
     answers = ws.answer_frame()

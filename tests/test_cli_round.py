@@ -356,11 +356,34 @@ def test_close_counts_answered_and_expired(ws, tmp_path):
 # --------------------------------------------------------------------------- weights for fit
 
 
-def test_fit_weights_round_answers_by_the_stored_designs(ws, tmp_path):
-    # Stabilized inverse-probability weights (Robins, Hernan & Brumback, Epidemiology 2000) over
-    # the designs the rounds stored: inside one (expert, region, class) group every round answer
-    # weighs the same, each expert's round answers average 1, historical answers weigh 1, and a
-    # group asked more often than its region's mean weighs less than 1.
+def test_plan_spreads_picks_over_predicted_classes_not_the_truth(ws):
+    # The planner's strata are the model's predicted classes, so the chance of a pair being
+    # asked depends on the features only (missing at random given x: Rubin, Biometrika 1976).
+    from routeplan.acquisition import class_probabilities
+    from routeplan.rounds import _pool
+    from routeplan.workspace import Workspace
+
+    with Workspace.open(ws) as handle:
+        pool, case_ids, _, _ = _pool(handle, False, 6, 3)
+        frame, X = handle.case_frame()
+        truth = np.array([handle.labels.index(t) if isinstance(t, str) else -1 for t in frame["truth"]])
+        predicted = class_probabilities(X, truth, len(handle.labels), random_state=3).argmax(axis=1)
+    position = {c: i for i, c in enumerate(frame["case_id"])}
+    rows_ = [position[c] for c in case_ids]
+    assert np.array_equal(pool.stratum, predicted[rows_])
+    info = plan(ws, "--budget", 6, "--seed", 3)
+    with Workspace.open(ws) as handle:
+        detail = {d["round_id"]: d["detail"] for d in handle.round_details()}[info["round"]]
+    assert detail["strata"] == "predicted"
+
+
+def test_fit_weights_answers_of_rounds_equally_and_old_rounds_by_their_designs(ws, tmp_path):
+    # Rounds planned on predicted classes: every answer weighs 1 (ignorable missingness, Rubin,
+    # Biometrika 1976). Rounds stored before that rule (no "strata" in the detail, stratified
+    # by the truth): stabilized inverse-probability weights (Robins, Hernan & Brumback,
+    # Epidemiology 2000) over their designs: inside one (expert, region, class) group every
+    # round answer weighs the same, each expert's round answers average 1, historical answers
+    # weigh 1, and a group asked more often than its region's mean weighs less than 1.
     from routeplan.competence import regions_from_features
     from routeplan.fitting import round_weights
     from routeplan.pool import load_pool
@@ -386,8 +409,16 @@ def test_fit_weights_round_answers_by_the_stored_designs(ws, tmp_path):
         pool = load_pool(handle)
         details = handle.round_details()
     mask = pool.has_truth
-    w = round_weights(pool, details, mask)
     A, prob = pool.answers[mask], pool.selection_prob[mask]
+    assert all(d["detail"]["strata"] == "predicted" for d in details)
+    equal = round_weights(pool, details, mask)
+    assert np.all(equal[A >= 0] == 1.0) and np.all(np.isnan(equal[A < 0]))
+    rng = np.random.default_rng(0)
+    for d in details:  # as stored before the rule: no "strata", a design over true classes
+        del d["detail"]["strata"]
+        shape = np.shape(d["detail"]["design"])
+        d["detail"]["design"] = rng.uniform(0.05, 0.5, size=(shape[0], shape[1], pool.n_classes)).tolist()
+    w = round_weights(pool, details, mask)
     asked = np.isfinite(prob) & (A >= 0)
     historical = (A >= 0) & ~asked
     assert historical.sum() == 1 and np.all(w[historical] == 1.0)
