@@ -28,7 +28,7 @@ Each point of a curve is the mean exact cost of two router fits (``--fits``), an
 medians are over 8 seeds (``--seeds``): with one fit and 5 seeds the budget a seed needs
 jumped by a factor of 2 or 4 between runs that differed in nothing that mattered.
 
-Run: ``.venv/bin/python benchmarks/bench_rounds.py [--seeds 8] [--jobs 2] [--fits 2]
+Run: ``.venv/bin/python benchmarks/bench_rounds.py [--seeds 8] [--first-seed 0] [--jobs 2] [--fits 2]
 [--planner spread=pairs] [--no-focus]`` (about 8 minutes on a 2-core machine).
 """
 
@@ -141,7 +141,8 @@ def report(kind: str, runs: list[dict]) -> dict:
 def main() -> None:
     """Command-line entry point."""
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--seeds", type=int, default=8, help="Seeds per scenario (0..N-1).")
+    parser.add_argument("--seeds", type=int, default=8, help="Seeds per scenario (FIRST..FIRST+N-1).")
+    parser.add_argument("--first-seed", type=int, default=0, help="First seed (to extend an earlier run).")
     parser.add_argument("--jobs", type=int, default=2, help="Worker processes.")
     parser.add_argument("--fits", type=int, default=2, help="Router seeds averaged per point.")
     parser.add_argument("--weighting", default="none", help="none (as routeplan fit weighs round answers), "
@@ -155,7 +156,7 @@ def main() -> None:
                              "e.g. spread=pairs or min_value_per_fee=2.")
     args = parser.parse_args()
     kinds = [args.only] if args.only else list(SCENARIOS)
-    tasks = [(k, s) for k in kinds for s in range(args.seeds)]
+    tasks = [(k, s) for k in kinds for s in range(args.first_seed, args.first_seed + args.seeds)]
     planner = {}
     for item in args.planner:
         key, _, value = item.partition("=")

@@ -30,7 +30,8 @@ Choices that keep the measurement honest
   pair being asked depends on the features alone and the routers are fitted with every
   answer weighing 1, as ``routeplan fit`` fits them (:func:`routeplan.fitting.round_weights`;
   ignorable missingness, Rubin, Biometrika 63(3), 1976). Measured with
-  ``benchmarks/bench_rounds.py`` (8 seeds, 2 router fits per point): the planner stratified
+  ``benchmarks/bench_rounds.py`` (seeds 0-7, 2 router fits per point, knowledge-gradient bar
+  ``min_value_per_fee=1`` in both): the planner stratified
   by the truth with answers weighted by :func:`stabilized_weights` (the earlier default)
   needed a median 113 fee units on the synthetic scenario and 4.8 on digits to get within
   0.01 of the full-information cost (mean over the schedule of the median gap 0.024 and

@@ -367,6 +367,19 @@ def test_value_spreads_budget_beyond_its_worth_uniformly():
     assert not np.array_equal(np.sort(greedy.cell_picks.ravel()), np.sort(sel.cell_picks.ravel()))
 
 
+def test_value_default_bar_is_three_times_the_fee():
+    # Documented default (module docstring, measured with benchmarks/bench_rounds.py): value buys
+    # a cell only while an answer is expected to save three times its fee. The default must plan
+    # exactly as the explicit bar 3 does, and the bar must matter on this pool (1 plans otherwise).
+    pool = make_pool(n=600, fees=(0.05, 0.1, 0.2), capacities=(1.0, 1.0, 1.0))
+    kw = dict(budget=5, audit_share=0.0, explore_share=0.0, random_state=0)
+    default = select_assignments(pool, **kw)
+    three = select_assignments(pool, min_value_per_fee=3.0, **kw)
+    one = select_assignments(pool, min_value_per_fee=1.0, **kw)
+    assert np.array_equal(default.case, three.case) and np.array_equal(default.expert, three.expert)
+    assert not np.array_equal(np.sort(one.cell_picks.ravel()), np.sort(three.cell_picks.ravel()))
+
+
 @pytest.mark.parametrize("spread", ["spend", "pairs"])
 def test_value_spread_by_spend_or_by_pairs(spread):
     # Documented rule: with fees 0.05 / 0.1 / 0.2 and every pair eligible, spreading by spend gives each
