@@ -186,18 +186,20 @@ def round_weights(pool: Pool, rounds: list[dict], mask: np.ndarray) -> np.ndarra
 
     Rounds planned on predicted classes (``detail["strata"] == "predicted"``, every round
     since that key exists) chose their pairs from the features alone: regions, the model's
-    predicted class, the router's focus and uniform draws, never the truth. The answers are
-    then missing at random given the features, and a model of ``P(expert right | x)`` fitted
-    on them without weights is unbiased (ignorability: Rubin, "Inference and missing data",
+    predicted class, the router's focus and uniform draws, never the truth (up to the
+    negligible pull of a case's own label on the predicted class, :mod:`routeplan.rounds`).
+    The answers are then missing at random given the features, and a model of
+    ``P(expert right | x)`` fitted on them without weights is unbiased (ignorability: Rubin, "Inference and missing data",
     Biometrika 63(3), 1976), while inverse-probability weights would only add variance. So when
     every round is of that kind, each answer weighs 1. Measured (``benchmarks/bench_rounds.py``,
     8 seeds, 2 router fits per point, against stabilized weights over truth strata): see
     :mod:`routeplan.rehearse`. The recorded selection probabilities still serve the audit's
     unbiased accuracy estimates (:mod:`routeplan.competence`).
 
-    Otherwise (a workspace with rounds stratified by the truth), answers bought in rounds get :func:`routeplan.rehearse.stabilized_weights` over the designs
-    the rounds stored (``detail["design"]``, experts x regions x classes; experts matched by
-    name); historical answers weigh 1. Regions are recomputed as ``round plan`` computed them
+    Otherwise (a workspace with rounds stratified by the truth), answers bought in rounds
+    get :func:`routeplan.rehearse.stabilized_weights` over the designs the rounds stored
+    (``detail["design"]``, experts x regions x classes; experts matched by name); historical
+    answers weigh 1. Regions are recomputed as ``round plan`` computed them
     (:func:`routeplan.competence.regions_from_features` on every case, ``random_state=0``), with
     the region count most rounds used; rounds planned with another count are left out of the
     sum (for a round planned before more cases were imported, the regions recomputed now may

@@ -18,7 +18,10 @@ Choices written down here
   then depends on the features alone (region, predicted class, the router's focus), never on
   the outcome, so the answers are missing at random given the features and a model of
   ``P(expert right | x)`` fitted on them needs no weights (the round's detail says
-  ``"strata": "predicted"``; :func:`routeplan.fitting.round_weights`).
+  ``"strata": "predicted"``; :func:`routeplan.fitting.round_weights`). Strictly, the
+  predicted class comes from a regularised linear model fitted on every case with truth, so
+  a case's own label moves it by a share of about one over the number of such cases: a
+  negligible dependence, not none.
 * Accuracies per (expert, region) rest on every stored answer on a case with truth (historical
   ones included); open assignments of open rounds count as answers still to come.
 * Focus: once ``routeplan fit`` has kept a router fitted on the current labels, experts and
