@@ -46,7 +46,8 @@ Strategies
     ``--first-seed 8 --seeds 4``); with 3, 80 and 3.4 over seeds 0-7, 96.6 and 4.8 over
     seeds 0-11 (``random`` 273 and 10.8, then 273 and 27.3). On seeds 12-19, not used for
     the choice, bar 3 needed 96.6 against ``random``'s 226 on the synthetic scenario and 6.8
-    against 19.3 on digits: the gain is real but smaller than on the seeds it was chosen on. The budget left after that is spread over the cells of the
+    against 19.3 on digits (ratios 0.43 and 0.35, against 0.29 and 0.32 on seeds 0-7; bar 1
+    was not run on those seeds). The budget left after that is spread over the cells of the
     experts that could matter, leaving out (expert, region) cells where the expert, even if
     always right, would not beat the model's cost on any case. By default
     (``spread="variance"``) the rest goes greedily to the cell of largest posterior variance
@@ -99,7 +100,8 @@ the pairs out of focus by the same strategy, so a round spends what ``random`` w
 design of a round treats the focus as part of eligibility, or, when the rest went outside
 it, averages the chances over both: an approximation, since within a group the focused cases
 were likelier to be asked. Measured (``benchmarks/bench_rounds.py``, 8 seeds, 2 router fits
-per point, margin 0.1, against the same planner without focus): on the synthetic scenario
+per point, margin 0.1, against the same planner without focus; both then spread picks over
+the true classes, weighted the answers and used a knowledge-gradient bar of 1): on the synthetic scenario
 the median budget to get within 0.01 of the full-information cost fell from 160 to 113 fee
 units (``random`` 273), staying within from 193 to 113 (``random`` 320), and the median
 curve goes below the full-information cost from 160 fee units; on digits from 9.7 to 4.8

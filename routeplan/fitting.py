@@ -162,8 +162,10 @@ def uneven_weight_notes(counts: dict[str, int], effective: dict[str, float], *,
                         min_answers: int = 20, share: float = 0.5) -> list[str]:
     """Notes for experts whose answers weigh very unevenly.
 
-    An expert's answers are weighted by how likely the rounds were to ask it about each
-    case; when Kish's effective sample size of those weights
+    Answers of rounds stratified by the truth (workspaces from before rounds were planned on
+    predicted classes) are weighted by how likely the rounds were to ask the expert about each
+    case (:func:`round_weights`; answers of newer rounds all weigh 1 and never trigger this
+    note); when Kish's effective sample size of those weights
     (:func:`routeplan.stats.effective_sample_size`) is below ``share`` of its
     ``min_answers`` or more answers, the rounds asked it mostly in a few places, and the
     router's estimate of its competence elsewhere rests on few answers. In rehearsals a
@@ -189,9 +191,9 @@ def round_weights(pool: Pool, rounds: list[dict], mask: np.ndarray) -> np.ndarra
     predicted class, the router's focus and uniform draws, never the truth (up to the
     negligible pull of a case's own label on the predicted class, :mod:`routeplan.rounds`).
     The answers are then missing at random given the features, and a model of
-    ``P(expert right | x)`` fitted on them without weights is unbiased (ignorability: Rubin, "Inference and missing data",
-    Biometrika 63(3), 1976), while inverse-probability weights would only add variance. So when
-    every round is of that kind, each answer weighs 1. Measured (``benchmarks/bench_rounds.py``,
+    ``P(expert right | x)`` fitted on them without weights is unbiased (ignorability: Rubin,
+    "Inference and missing data", Biometrika 63(3), 1976), while inverse-probability weights
+    would only add variance. So when every round is of that kind, each answer weighs 1. Measured (``benchmarks/bench_rounds.py``,
     8 seeds, 2 router fits per point, against stabilized weights over truth strata): see
     :mod:`routeplan.rehearse`. The recorded selection probabilities still serve the audit's
     unbiased accuracy estimates (:mod:`routeplan.competence`).

@@ -25,8 +25,9 @@ Choices that keep the measurement honest
   by the workspace's kept router; the full-information reference is not.
 * Budgets may be a schedule of cumulative spends (``budgets``), e.g. the geometric one of
   :func:`budget_schedule`, so that a curve has resolution where costs fall fast.
-* The planner spreads a cell's picks over the model's predicted classes (the cross-fitted
-  classifier's), as ``routeplan round plan`` does, never over the truth, so the chance of a
+* The planner spreads a cell's picks over the predicted classes of its own ``P(y | x)``
+  (:func:`routeplan.acquisition.class_probabilities`), as ``routeplan round plan`` does,
+  never over the truth, so the chance of a
   pair being asked depends on the features alone and the routers are fitted with every
   answer weighing 1, as ``routeplan fit`` fits them (:func:`routeplan.fitting.round_weights`;
   ignorable missingness, Rubin, Biometrika 63(3), 1976). Measured with

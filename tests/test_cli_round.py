@@ -371,6 +371,7 @@ def test_plan_spreads_picks_over_predicted_classes_not_the_truth(ws):
     position = {c: i for i, c in enumerate(frame["case_id"])}
     rows_ = [position[c] for c in case_ids]
     assert np.array_equal(pool.stratum, predicted[rows_])
+    assert np.any(predicted[rows_] != truth[rows_])  # else this test could not tell them apart
     info = plan(ws, "--budget", 6, "--seed", 3)
     with Workspace.open(ws) as handle:
         detail = {d["round_id"]: d["detail"] for d in handle.round_details()}[info["round"]]
