@@ -22,7 +22,9 @@ class probabilities, whose focus steers the next round of ``value`` and ``uncert
 For each seed the target is that seed's full-information cost + 0.01. "Reach" is the first
 budget of the schedule at which the cost is at or below the target; "sustained" also needs
 every larger budget to stay there. Budgets are cumulative, on a geometric schedule, so a
-ratio is resolved to one step of the schedule (a factor ``2 ** (1/2)``).
+ratio is resolved to one step of the schedule (a factor ``2 ** (1/2)``). Beside the medians
+the script prints a bootstrap interval of their ratio over seeds and, where ``value``'s median
+curve is above ``random``'s, the seed-paired difference there.
 
 Each point of a curve is the mean exact cost of two router fits (``--fits``), and the
 medians are over 8 seeds (``--seeds``): with one fit and 5 seeds the budget a seed needs
@@ -86,6 +88,25 @@ def reach(curve: pd.DataFrame, target: float, sustained: bool) -> float:
     return float(hit.min()) if hit.size else math.inf
 
 
+def bootstrap_ratio(value: list[float], random: list[float], n_boot: int = 2000,
+                    seed: int = 0) -> tuple[float, float]:
+    """95% percentile bootstrap interval of median(value) / median(random) over seeds.
+
+    Seeds are resampled with replacement, keeping each seed's pair together (Efron &
+    Tibshirani, *An Introduction to the Bootstrap*, 1993, ch. 13). With 8 seeds the
+    interval is wide: it says how far the goal's verdict could move on other seeds.
+    """
+    v, r = np.asarray(value, dtype=float), np.asarray(random, dtype=float)
+    idx = np.random.default_rng(seed).integers(0, v.size, size=(n_boot, v.size))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ratios = np.median(v[idx], axis=1) / np.median(r[idx], axis=1)
+    ratios = ratios[~np.isnan(ratios)]
+    if not ratios.size:
+        return math.nan, math.nan
+    low, high = np.percentile(ratios, [2.5, 97.5])
+    return float(low), float(high)
+
+
 def _fmt(value: float) -> str:
     return "never" if math.isinf(value) else f"{value:.3g}"
 
@@ -123,6 +144,8 @@ def report(kind: str, runs: list[dict]) -> dict:
           + f"; value/random = {_ratio(med['value'], med['random'])} (goal <= {GOAL_RATIO:.2f}, aim {AIM_RATIO:.2f})")
     print("median budget, sustained: " + ", ".join(f"{s} {_fmt(med_sus[s])}" for s in STRATEGIES)
           + f"; value/random = {_ratio(med_sus['value'], med_sus['random'])}")
+    low, high = bootstrap_ratio(table["value"], table["random"])
+    print(f"95% bootstrap interval of the ratio of medians (seeds resampled): {low:.2f} to {high:.2f}")
     curves = pd.concat([r["curves"].assign(gap=r["curves"]["system_cost"] - r["full"]) for r in runs])
     median_curve = curves.pivot_table(index="budget", columns="strategy", values="gap", aggfunc="median")
     spend = curves.pivot_table(index="budget", columns="strategy", values="spend", aggfunc="median")
@@ -133,9 +156,26 @@ def report(kind: str, runs: list[dict]) -> dict:
     worse = median_curve.index[median_curve["value"] > median_curve["random"]].tolist()
     print("value <= random at every point of the median curve: "
           + ("yes" if not worse else f"NO (worse at budgets {', '.join(f'{b:.3g}' for b in worse)})"))
+    if worse:
+        _print_paired(curves, worse)
     mean_gap = median_curve.mean()
     print("mean over the schedule of the median gap: " + ", ".join(f"{s} {mean_gap[s]:+.4f}" for s in STRATEGIES))
     return {"median": med, "sustained": med_sus, "worse_at": worse}
+
+
+def _print_paired(curves: pd.DataFrame, budgets: list[float]) -> None:
+    """Seed-paired difference of value and random where value's median is worse.
+
+    The medians are strict, so two strategies equal in expectation differ by chance at a
+    budget; the paired mean difference over seeds and its standard error (the usual paired
+    comparison, e.g. Wasserman, *All of Statistics*, 2004, ch. 10) say how large that is.
+    """
+    by_seed = curves.pivot_table(index=["seed", "budget"], columns="strategy", values="gap")
+    for budget in budgets:
+        d = (by_seed["value"] - by_seed["random"]).xs(budget, level="budget").to_numpy()
+        se = d.std(ddof=1) / np.sqrt(d.size) if d.size > 1 else float("nan")
+        print(f"  budget {budget:.3g}: value - random per seed, mean {d.mean():+.4f} "
+              f"(standard error {se:.4f}); value worse on {int((d > 0).sum())} of {d.size} seeds")
 
 
 def main() -> None:
