@@ -18,23 +18,13 @@ reference included).
 from __future__ import annotations
 
 import argparse
-import json
 import warnings
 
 import numpy as np
 
-from routeplan import simulate
+from probe_gap import parse_option  # benchmarks/ is the script's folder, first on sys.path
+from routeplan import learner, simulate
 from routeplan.rehearse import ROUTER_SETTINGS, _stage, digits_experts_scenario
-
-
-def _variant(text: str) -> tuple[str, dict]:
-    """KEY=VALUE as a one-keyword variant, VALUE read as JSON when it parses."""
-    key, _, value = text.partition("=")
-    try:
-        parsed = json.loads(value)
-    except json.JSONDecodeError:
-        parsed = value
-    return text, {key: parsed}
 
 
 def main() -> None:
@@ -48,16 +38,12 @@ def main() -> None:
                         help="A variant: one PluginRouter keyword over the rounds' settings.")
     args = parser.parse_args()
     if args.calibration_prior is not None:  # a probe may move the library's constant
-        import routeplan.learner
-
-        routeplan.learner.CALIBRATION_PRIOR = args.calibration_prior
-    variants = dict([("defaults", {})] + [_variant(t) for t in args.router])
+        learner.CALIBRATION_PRIOR = args.calibration_prior
+    variants = {"defaults": {}, **{text: dict([parse_option(text)]) for text in args.router}}
     gaps: dict[str, list[float]] = {name: [] for name in variants}
-    import routeplan.learner
-
     print(f"{args.scenario}, {args.per_expert} answers per expert drawn at random; gap to the "
           "full-information cost (exact, held out), mean of 2 router fits; calibration prior "
-          f"{routeplan.learner.CALIBRATION_PRIOR:g}")
+          f"{learner.CALIBRATION_PRIOR:g}")
     for seed in range(args.seeds):
         if args.scenario == "digits":  # as bench_rounds.py: 898 pool cases, 899 held out
             stage, answers = _stage(digits_experts_scenario(random_state=seed), 898,

@@ -27,7 +27,7 @@ from routeplan import costs, simulate
 from routeplan.learner import PluginRouter
 
 
-def _option(text: str) -> tuple[str, object]:
+def parse_option(text: str) -> tuple[str, object]:
     """KEY=VALUE with VALUE read as JSON when it parses."""
     key, _, value = text.partition("=")
     try:
@@ -43,7 +43,7 @@ def main() -> None:
     parser.add_argument("--seeds", type=int, nargs="+", default=[0, 1], help="Router seeds.")
     parser.add_argument("--n-train", type=int, default=20_000)
     args = parser.parse_args()
-    params = dict(_option(t) for t in args.router)
+    params = dict(parse_option(t) for t in args.router)
 
     n = args.n_train
     sc = simulate.make_scenario(n + 10_000, random_state=0)
