@@ -101,8 +101,8 @@ design of a round treats the focus as part of eligibility, or, when the rest wen
 it, averages the chances over both: an approximation, since within a group the focused cases
 were likelier to be asked. Measured (``benchmarks/bench_rounds.py``, 8 seeds, 2 router fits
 per point, margin 0.1, against the same planner without focus; both then spread picks over
-the true classes, weighted the answers and used a knowledge-gradient bar of 1): on the synthetic scenario
-the median budget to get within 0.01 of the full-information cost fell from 160 to 113 fee
+the true classes, weighted the answers and used a knowledge-gradient bar of 1): on the
+synthetic scenario the median budget to get within 0.01 of the full-information cost fell from 160 to 113 fee
 units (``random`` 273), staying within from 193 to 113 (``random`` 320), and the median
 curve goes below the full-information cost from 160 fee units; on digits from 9.7 to 4.8
 (``random`` 10.8), staying within from 9.7 to 6.8 (``random`` 16). Margins 0.05 and 0.2 did

@@ -193,9 +193,9 @@ def round_weights(pool: Pool, rounds: list[dict], mask: np.ndarray) -> np.ndarra
     The answers are then missing at random given the features, and a model of
     ``P(expert right | x)`` fitted on them without weights is unbiased (ignorability: Rubin,
     "Inference and missing data", Biometrika 63(3), 1976), while inverse-probability weights
-    would only add variance. So when every round is of that kind, each answer weighs 1. Measured (``benchmarks/bench_rounds.py``,
-    8 seeds, 2 router fits per point, against stabilized weights over truth strata): see
-    :mod:`routeplan.rehearse`. The recorded selection probabilities still serve the audit's
+    would only add variance. So when every round is of that kind, each answer weighs 1.
+    Measured (``benchmarks/bench_rounds.py``, 8 seeds, 2 router fits per point, against
+    stabilized weights over truth strata): see :mod:`routeplan.rehearse`. The recorded selection probabilities still serve the audit's
     unbiased accuracy estimates (:mod:`routeplan.competence`).
 
     Otherwise (a workspace with rounds stratified by the truth), answers bought in rounds

@@ -27,13 +27,12 @@ Choices that keep the measurement honest
   :func:`budget_schedule`, so that a curve has resolution where costs fall fast.
 * The planner spreads a cell's picks over the predicted classes of its own ``P(y | x)``
   (:func:`routeplan.acquisition.class_probabilities`), as ``routeplan round plan`` does,
-  never over the truth, so the chance of a
-  pair being asked depends on the features alone and the routers are fitted with every
-  answer weighing 1, as ``routeplan fit`` fits them (:func:`routeplan.fitting.round_weights`;
-  ignorable missingness, Rubin, Biometrika 63(3), 1976). Measured with
-  ``benchmarks/bench_rounds.py`` (seeds 0-7, 2 router fits per point, knowledge-gradient bar
-  ``min_value_per_fee=1`` in both): the planner stratified
-  by the truth with answers weighted by :func:`stabilized_weights` (the earlier default)
+  never over the truth, so the chance of a pair being asked depends on the features alone
+  and the routers are fitted with every answer weighing 1, as ``routeplan fit`` fits them
+  (:func:`routeplan.fitting.round_weights`; ignorable missingness, Rubin, Biometrika 63(3),
+  1976). Measured with ``benchmarks/bench_rounds.py`` (seeds 0-7, 2 router fits per point,
+  knowledge-gradient bar ``min_value_per_fee=1`` in both): the planner stratified by the
+  truth with answers weighted by :func:`stabilized_weights` (the earlier default)
   needed a median 113 fee units on the synthetic scenario and 4.8 on digits to get within
   0.01 of the full-information cost (mean over the schedule of the median gap 0.024 and
   0.0092); stratified by predicted classes without weights, 96.6 and 3.4 (0.022 and 0.0074).
