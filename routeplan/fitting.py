@@ -184,31 +184,34 @@ def uneven_weight_notes(counts: dict[str, int], effective: dict[str, float], *,
 
 
 def round_weights(pool: Pool, rounds: list[dict], mask: np.ndarray) -> np.ndarray:
-    """Weights of the answers on the cases of ``mask``: equal, or stabilized over old designs.
+    """Weights of the answers on the cases of ``mask``: 1, or stabilized over old designs.
 
     Rounds planned on predicted classes (``detail["strata"] == "predicted"``, every round
     since that key exists) chose their pairs from the features alone: regions, the model's
     predicted class, the router's focus and uniform draws, never the truth (up to the
     negligible pull of a case's own label on the predicted class, :mod:`routeplan.rounds`).
-    The answers are then missing at random given the features, and a model of
+    Their answers are then missing at random given the features, and a model of
     ``P(expert right | x)`` fitted on them without weights is unbiased (ignorability: Rubin,
     "Inference and missing data", Biometrika 63(3), 1976), while inverse-probability weights
-    would only add variance. So when every round is of that kind, each answer weighs 1.
+    would only add variance. So each of their answers weighs 1, as historical answers do.
     Measured (``benchmarks/bench_rounds.py``, 8 seeds, 2 router fits per point, against
-    stabilized weights over truth strata): see :mod:`routeplan.rehearse`. The recorded selection probabilities still serve the audit's
-    unbiased accuracy estimates (:mod:`routeplan.competence`).
+    stabilized weights over truth strata): see :mod:`routeplan.rehearse`. The recorded
+    selection probabilities still serve the audit's unbiased accuracy estimates
+    (:mod:`routeplan.competence`).
 
-    Otherwise (a workspace with rounds stratified by the truth), answers bought in rounds
-    get :func:`routeplan.rehearse.stabilized_weights` over the designs the rounds stored
-    (``detail["design"]``, experts x regions x classes; experts matched by name); historical
-    answers weigh 1. Regions are recomputed as ``round plan`` computed them
-    (:func:`routeplan.competence.regions_from_features` on every case, ``random_state=0``), with
-    the region count most rounds used; rounds planned with another count are left out of the
-    sum (for a round planned before more cases were imported, the regions recomputed now may
-    differ a little from the plan's). Without any usable design, the recorded selection
-    probabilities are used (:func:`answer_weights`). Why: in rehearsals on the synthetic
-    scenario, weighting each answer by the inverse of its own round's probability let small
-    early rounds and the audit dominate (see :mod:`routeplan.rehearse`).
+    Answers of older rounds (no ``"strata"`` in the detail: stratified by the truth) get
+    :func:`routeplan.rehearse.stabilized_weights` over the designs those rounds stored
+    (``detail["design"]``, experts x regions x classes; experts matched by name), each
+    expert's such answers scaled to mean 1. The rule is per round, so a workspace holding
+    both kinds weighs each answer by the round that bought it. Regions are recomputed as
+    ``round plan`` computed them (:func:`routeplan.competence.regions_from_features` on every
+    case, ``random_state=0``), with the region count most old rounds used; rounds planned
+    with another count are left out of the sum (for a round planned before more cases were
+    imported, the regions recomputed now may differ a little from the plan's). Without any
+    usable design, the old answers get their recorded selection probabilities
+    (:func:`answer_weights`). Why: in rehearsals on the synthetic scenario, weighting each
+    answer by the inverse of its own round's probability let small early rounds and the
+    audit dominate (see :mod:`routeplan.rehearse`).
 
     Parameters
     ----------
@@ -216,25 +219,38 @@ def round_weights(pool: Pool, rounds: list[dict], mask: np.ndarray) -> np.ndarra
     rounds : list of dict
         :meth:`routeplan.workspace.Workspace.round_details`.
     mask : ndarray of bool of shape (n_cases,)
-        The cases fitted on (they have truth, which is the design's class stratum).
+        The cases fitted on (they have truth, which is the old designs' class stratum).
 
     Returns
     -------
     ndarray of shape (mask.sum(), n_experts)
         NaN where there is no answer.
     """
+    A, prob = pool.answers[mask], pool.selection_prob[mask]
+    weights = np.where(A >= 0, 1.0, np.nan)
+    old_rounds = {int(r["round_id"]): r["detail"] for r in rounds
+                  if r["detail"].get("strata") != "predicted"}
+    old = (A >= 0) & np.isfinite(prob) & np.isin(pool.answer_round[mask], list(old_rounds))
+    if not old.any():
+        return weights
+    stable = _stabilized_old(pool, list(old_rounds.values()), mask, old)
+    if stable is None:
+        stable = answer_weights(np.where(old, prob, np.nan), np.where(old, A, -1))
+    weights[old] = stable[old]
+    return weights
+
+
+def _stabilized_old(pool: Pool, details: list[dict], mask: np.ndarray, old: np.ndarray
+                    ) -> np.ndarray | None:
+    """Stabilized weights of the ``old`` answers over the old rounds' designs, or None."""
     from collections import Counter
 
     from .competence import regions_from_features
     from .rehearse import stabilized_weights
 
-    A, prob = pool.answers[mask], pool.selection_prob[mask]
-    if rounds and all(r["detail"].get("strata") == "predicted" for r in rounds):
-        return np.where(A >= 0, 1.0, np.nan)
-    asked = np.isfinite(prob) & (A >= 0)
-    usable = [r["detail"] for r in rounds if r["detail"].get("design") and r["detail"].get("regions")]
-    if not asked.any() or not usable:
-        return answer_weights(prob, A)
+    usable = [d for d in details if d.get("design") and d.get("regions")]
+    if not usable:
+        return None
     n_regions = Counter(int(d["regions"]) for d in usable).most_common(1)[0][0]
     region = regions_from_features(pool.X, n_regions=min(n_regions, len(pool.X)), random_state=0)
     r, K, index = int(region.max()) + 1, pool.n_classes, {n: j for j, n in enumerate(pool.experts)}
@@ -250,9 +266,8 @@ def round_weights(pool: Pool, rounds: list[dict], mask: np.ndarray) -> np.ndarra
                 full[index[name], :, : min(K, design.shape[2])] = design[row, :, :K]
         designs.append(full)
     if not designs:
-        return answer_weights(prob, A)
-    stable = stabilized_weights(designs, region[mask], pool.y[mask], asked)
-    return np.where(asked, stable, np.where(A >= 0, 1.0, np.nan))
+        return None
+    return stabilized_weights(designs, region[mask], pool.y[mask], old)
 
 
 def answer_weights(selection_prob: np.ndarray, answers: np.ndarray, *, clip: float = 10.0) -> np.ndarray:

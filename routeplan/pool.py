@@ -37,6 +37,9 @@ class Pool:
         and where there is no answer.
     audit : ndarray of bool, shape (n_cases, n_experts)
         True where the answer comes from the uniformly random audit share.
+    answer_round : ndarray of int, shape (n_cases, n_experts)
+        Round whose assignment the answer answered; -1 for historical answers and where
+        there is no answer.
     labels : list of str
     experts : list of str
     fees : ndarray of float, shape (n_experts,)
@@ -52,6 +55,7 @@ class Pool:
     answers: np.ndarray
     selection_prob: np.ndarray
     audit: np.ndarray
+    answer_round: np.ndarray
     labels: list[str]
     experts: list[str]
     fees: np.ndarray
@@ -112,6 +116,7 @@ def load_pool(ws: Workspace) -> Pool:
     answers = np.full((n, M), -1, dtype=np.int64)
     prob = np.full((n, M), np.nan)
     audit = np.zeros((n, M), dtype=bool)
+    answer_round = np.full((n, M), -1, dtype=np.int64)
     found = ws.answer_frame()
     if len(found):
         rows = position.reindex(found["case_id"].to_numpy()).to_numpy()
@@ -121,6 +126,7 @@ def load_pool(ws: Workspace) -> Pool:
         answers[rows, cols] = found["answer"].map(code).to_numpy()[keep]
         prob[rows, cols] = found["selection_prob"].to_numpy()[keep]
         audit[rows, cols] = found["audit"].to_numpy()[keep]
+        answer_round[rows, cols] = found["round_id"].fillna(-1).to_numpy(dtype=np.int64)[keep]
     return Pool(
         case_ids=frame["case_id"].to_numpy(dtype=object),
         X=X,
@@ -129,6 +135,7 @@ def load_pool(ws: Workspace) -> Pool:
         answers=answers,
         selection_prob=prob,
         audit=audit,
+        answer_round=answer_round,
         labels=labels,
         experts=names,
         fees=np.array([e["fee"] for e in experts], dtype=float),

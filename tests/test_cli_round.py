@@ -443,6 +443,20 @@ def test_fit_weights_answers_of_rounds_equally_and_old_rounds_by_their_designs(w
             order = np.argsort(own)
             assert np.all(np.diff(weight[order]) <= 1e-9)
 
+    # A workspace holding both kinds: the rule is per round. Answers of the round planned on
+    # predicted classes weigh 1; the old round's answers get stabilized weights over the old
+    # round's design alone (the same function, routeplan.rehearse.stabilized_weights).
+    from routeplan.rehearse import stabilized_weights
+
+    details[1]["detail"]["strata"] = "predicted"
+    mixed = round_weights(pool, details, mask)
+    rnd = pool.answer_round[mask]
+    newer, older = asked & (rnd == details[1]["round_id"]), asked & (rnd == details[0]["round_id"])
+    assert newer.any() and older.any() and not (newer & older).any()
+    assert np.all(mixed[newer] == 1.0) and np.all(mixed[historical] == 1.0)
+    alone = stabilized_weights([np.asarray(details[0]["detail"]["design"])], region, y, older)
+    np.testing.assert_allclose(mixed[older], alone[older])
+    assert not np.allclose(mixed[older], w[older])  # the newer round's design no longer counts
 
 # --------------------------------------------------------------------------- focus
 

@@ -152,3 +152,13 @@ def test_cli_rehearse_refuses_unknown_strategy(tmp_path):
 def test_rehearse_refuses_unknown_weighting():
     with pytest.raises(ValueError, match="weighting"):
         rehearse(n_pool=100, n_eval=100, weighting="magic")
+
+
+def test_cli_weighting_choices_are_the_library_s():
+    # The CLI spells the choices out (it may not import numpy at start-up); they must stay the
+    # library's own (common practice: one source of truth for a public option).
+    from routeplan.cli import cli
+    from routeplan.rehearse import WEIGHTINGS
+
+    option = next(p for p in cli.commands["rehearse"].params if p.name == "weighting")
+    assert tuple(option.type.choices) == WEIGHTINGS
