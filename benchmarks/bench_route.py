@@ -42,7 +42,7 @@ EXACT_CASES = 100_000
 CHILD = r"""
 import json, resource, sys, time
 t0 = time.perf_counter()
-from routeplan.freezing import route_file
+from routeplan.deploy import route_file
 t1 = time.perf_counter()
 result = route_file(sys.argv[1], sys.argv[2], sys.argv[3], exact=sys.argv[4] == "exact")
 t2 = time.perf_counter()

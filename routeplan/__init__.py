@@ -30,7 +30,7 @@ _EXPORTS = {
     "plan_round": "routeplan.rounds",
     "competence_report": "routeplan.competence",
     "freeze_workspace": "routeplan.freezing",
-    "route_frame": "routeplan.freezing",
+    "route_frame": "routeplan.deploy",
     "read_policy": "routeplan.policy",
     "make_scenario": "routeplan.simulate",
 }

@@ -72,7 +72,6 @@ def expected_calibration_error(proba: ArrayLike, y: ArrayLike, n_bins: int = 15)
     correct = (P.argmax(axis=1) == y).astype(np.float64)
     # bin b holds confidences in (b/n_bins, (b+1)/n_bins]; 0 goes to the first bin
     bins = np.clip(np.ceil(conf * n_bins).astype(np.int64) - 1, 0, n_bins - 1)
-    counts = np.bincount(bins, minlength=n_bins)
     acc = np.bincount(bins, weights=correct, minlength=n_bins)
     cf = np.bincount(bins, weights=conf, minlength=n_bins)
     return float(np.abs(acc - cf).sum() / y.size)

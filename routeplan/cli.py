@@ -8,8 +8,6 @@ imports torch. Exit codes: 0 success, 2 bad input or usage, 1 internal fault.
 from __future__ import annotations
 
 import json
-import os
-import sys
 import traceback
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -417,7 +415,7 @@ def route(app, policy_path, cases_path, out_path, exact, id_column, chunk_size, 
     \b
         routeplan route --policy tiles-policy.json new_tiles.csv --out decisions.csv
     """
-    from .freezing import route_file
+    from .deploy import route_file
 
     result = route_file(policy_path, cases_path, out_path, exact=exact, id_column=id_column,
                         chunk_size=chunk_size, console=app.console, progress=not (app.quiet or as_json))

@@ -14,11 +14,15 @@ checks that it agrees with the reference validator of the ``jsonschema`` package
 
 from __future__ import annotations
 
+import contextlib
 import csv
 import hashlib
 import io
 import json
+import os
 import re
+import tempfile
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -36,11 +40,15 @@ __all__ = [
     "check_rows",
     "file_sha256",
     "write_csv",
+    "write_atomically",
+    "check_out_path",
     "neutralise_formula",
+    "FORMULA_LEAD",
 ]
 
 _SCHEMA_DIR = Path(__file__).resolve().parent / "schemas"
-_FORMULA_LEAD = ("=", "+", "-", "@", "\t", "\r")
+#: First characters that make a spreadsheet run a cell as a formula (or hide it).
+FORMULA_LEAD = ("=", "+", "-", "@", "\t", "\r")
 
 
 @dataclass(frozen=True)
@@ -563,7 +571,7 @@ def neutralise_formula(value: Any) -> Any:
     read as formulas by common spreadsheet programs (common practice: the OWASP
     guidance on CSV injection). Numbers are left alone.
     """
-    if isinstance(value, str) and value.startswith(_FORMULA_LEAD):
+    if isinstance(value, str) and value.startswith(FORMULA_LEAD):
         return "'" + value
     return value
 
@@ -597,7 +605,55 @@ def write_csv(frame: pd.DataFrame, path: str | Path, *, neutralise: bool = True)
         for name in out.columns:
             if out[name].dtype == object or pd.api.types.is_string_dtype(out[name]):
                 out[name] = out[name].map(neutralise_formula)
-    tmp = path.with_name(path.name + ".part")
-    out.to_csv(tmp, index=False, lineterminator="\n")
-    tmp.replace(path)
+    write_atomically(path, lambda tmp: out.to_csv(tmp, index=False, lineterminator="\n"))
     return path
+
+
+def write_atomically(path: str | Path, write: Callable[[str], Any]) -> None:
+    """Call ``write(tmp)`` on a temporary file beside ``path``, then rename it over ``path``.
+
+    The file is flushed to disk (fsync) before the rename, so a crash leaves either the old
+    file or the whole new one, never a part (common practice for atomic replacement on
+    POSIX). The temporary file is removed if ``write`` fails; the result is readable by all
+    (0644), as the files routeplan writes are meant to be shared.
+
+    Parameters
+    ----------
+    path : str or Path
+        Destination.
+    write : callable
+        Writes the whole content to the path it is given.
+    """
+    path = Path(path)
+    folder = path.parent if str(path.parent) else Path(".")
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=folder)
+    os.close(fd)
+    try:
+        write(tmp)
+        fd = os.open(tmp, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+        os.chmod(tmp, 0o644)  # mkstemp makes it private
+        os.replace(tmp, path)
+    except BaseException:
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        raise
+
+
+def check_out_path(out: Path, inputs: list[Path]) -> None:
+    """Refuse an output that would overwrite an input or land in a missing folder.
+
+    Raises
+    ------
+    InputError
+    """
+    for path in inputs:
+        with contextlib.suppress(OSError):
+            if out.resolve() == path.resolve():
+                raise InputError("--out would overwrite an input file; choose another name", source=str(out))
+    folder = out.parent if str(out.parent) else Path(".")
+    if not folder.is_dir():
+        raise InputError(f"the folder {folder} does not exist", source=str(out))

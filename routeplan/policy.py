@@ -25,12 +25,10 @@ from __future__ import annotations
 
 import base64
 import binascii
-import contextlib
 import hashlib
 import json
 import math
 import os
-import tempfile
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any, Mapping
@@ -38,6 +36,7 @@ from typing import Any, Mapping
 import numpy as np
 
 from routeplan.errors import InputError
+from routeplan.files import write_atomically
 
 __all__ = [
     "FORMAT_NAME",
@@ -102,7 +101,8 @@ def write_policy(path: str | os.PathLike, manifest: Mapping[str, Any],
         raise ValueError(f"cannot write policy: {problem}")
     digest = content_digest(body["manifest"], body["arrays"])
     document = {"manifest": body["manifest"], "arrays": body["arrays"], "sha256": digest}
-    _write_atomically(Path(path), json.dumps(document, indent=1, allow_nan=False) + "\n")
+    text = json.dumps(document, indent=1, allow_nan=False) + "\n"
+    write_atomically(Path(path), lambda tmp: Path(tmp).write_text(text, encoding="utf-8"))
     return digest
 
 
@@ -397,23 +397,6 @@ def _load_schema() -> dict:
 
 
 # --------------------------------------------------------------------------- writing
-
-
-def _write_atomically(path: Path, text: str) -> None:
-    """Write to a temporary file beside ``path``, fsync, then rename over it."""
-    folder = path.parent if str(path.parent) else Path(".")
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=folder)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as handle:
-            handle.write(text)
-            handle.flush()
-            os.fsync(handle.fileno())
-        os.chmod(tmp, 0o644)  # mkstemp makes it private; a policy is meant to be shared
-        os.replace(tmp, path)
-    except BaseException:
-        with contextlib.suppress(OSError):
-            os.unlink(tmp)
-        raise
 
 
 def _short(exc: BaseException | str) -> str:

@@ -432,7 +432,7 @@ def test_careful_reader_agrees_with_the_fast_one(built, tmp_path):
 
 def test_route_frame_is_row_by_row_and_checks_columns(built):
     from routeplan.errors import InputError
-    from routeplan.freezing import route_frame
+    from routeplan.deploy import route_frame
     from routeplan.policy import read_policy
 
     manifest, arrays = read_policy(built["policy"])

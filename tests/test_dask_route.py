@@ -61,7 +61,7 @@ def frozen_policy(folder: Path) -> Path:
 
 
 def test_map_partitions_matches_the_direct_call(tmp_path):
-    from routeplan.freezing import decision_columns, route_frame
+    from routeplan.deploy import decision_columns, route_frame
     from routeplan.policy import read_policy
 
     manifest, arrays = read_policy(frozen_policy(tmp_path))
