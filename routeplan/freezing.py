@@ -8,7 +8,6 @@ on those cases with 95% intervals, and writes everything as one policy file
 (:func:`routeplan.card.policy_card`). Applying the file to new cases is
 :mod:`routeplan.deploy`'s job.
 
-
 Design choices (written down here, as DESIGN.md asks):
 
 - Fees come from the router (the costs it learned include them). Capacities come from the

@@ -215,3 +215,26 @@ def test_schemas_in_package_are_the_schemas_folder():
     """The installed package ships the same schema documents as ``schemas/``."""
     for name in SCHEMA_NAMES:
         assert load_schema(name) == json.loads((SCHEMA_DIR / f"{name}.schema.json").read_text(encoding="utf-8"))
+
+
+def test_write_atomically_keeps_the_old_file_when_the_write_fails(tmp_path):
+    # Atomic replacement (write a temporary file, fsync, rename; common practice on POSIX):
+    # a failed write leaves the old content and no temporary file; a good one is readable by all.
+    import stat
+
+    from routeplan.files import write_atomically
+
+    path = tmp_path / "out.txt"
+    write_atomically(path, lambda tmp: Path(tmp).write_text("old", encoding="utf-8"))
+
+    def half_then_fail(tmp):
+        Path(tmp).write_text("half", encoding="utf-8")
+        raise OSError("disk full")
+
+    with pytest.raises(OSError, match="disk full"):
+        write_atomically(path, half_then_fail)
+    assert path.read_text(encoding="utf-8") == "old"
+    assert [p.name for p in tmp_path.iterdir()] == ["out.txt"]
+    write_atomically(path, lambda tmp: Path(tmp).write_text("new", encoding="utf-8"))
+    assert path.read_text(encoding="utf-8") == "new"
+    assert stat.S_IMODE(path.stat().st_mode) == 0o644
