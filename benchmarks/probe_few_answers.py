@@ -10,9 +10,9 @@ every strategy's curve.
 Run: ``.venv/bin/python benchmarks/probe_few_answers.py [--scenario synthetic|digits]
 [--per-expert 150] [--seeds 6] [--router KEY=VALUE ...] [--calibration-prior P]`` (each
 ``--router`` adds one variant beside the defaults; values are read as JSON, e.g.
-``--router calibrate=false``; ``--calibration-prior`` replaces
-:data:`routeplan.learner.CALIBRATION_PRIOR` for the whole run, the full-information
-reference included).
+``--router calibrate=false``; ``--calibration-prior`` sets the routers'
+``calibration_prior`` (default :data:`routeplan.learner.CALIBRATION_PRIOR`) for the whole
+run, the full-information reference included).
 """
 
 from __future__ import annotations
@@ -33,24 +33,26 @@ def main() -> None:
     parser.add_argument("--per-expert", type=int, default=150, help="Answers drawn per expert.")
     parser.add_argument("--seeds", type=int, default=6, help="Scenario seeds 0..N-1.")
     parser.add_argument("--calibration-prior", type=float, default=None,
-                        help="Replace routeplan.learner.CALIBRATION_PRIOR for this run.")
+                        help="The routers' calibration_prior for the whole run.")
     parser.add_argument("--router", action="append", default=[], metavar="KEY=VALUE",
                         help="A variant: one PluginRouter keyword over the rounds' settings.")
     args = parser.parse_args()
-    if args.calibration_prior is not None:  # a probe may move the library's constant
-        learner.CALIBRATION_PRIOR = args.calibration_prior
+    settings = dict(ROUTER_SETTINGS)
+    if args.calibration_prior is not None:
+        settings["calibration_prior"] = args.calibration_prior
+    prior = settings.get("calibration_prior", learner.CALIBRATION_PRIOR)
     variants = {"defaults": {}, **{text: dict([parse_option(text)]) for text in args.router}}
     gaps: dict[str, list[float]] = {name: [] for name in variants}
     print(f"{args.scenario}, {args.per_expert} answers per expert drawn at random; gap to the "
           "full-information cost (exact, held out), mean of 2 router fits; calibration prior "
-          f"{learner.CALIBRATION_PRIOR:g}")
+          f"{prior:g}")
     for seed in range(args.seeds):
         if args.scenario == "digits":  # as bench_rounds.py: 898 pool cases, 899 held out
             stage, answers = _stage(digits_experts_scenario(random_state=seed), 898,
-                                    dict(ROUTER_SETTINGS), 5, seed)
+                                    dict(settings), 5, seed)
         else:  # as bench_rounds.py: 3,000 pool cases, 5,000 held out
             stage, answers = _stage(simulate.make_scenario(8000, random_state=seed), 3000,
-                                    dict(ROUTER_SETTINGS), 5, seed)
+                                    dict(settings), 5, seed)
         rng = np.random.default_rng(seed)
         shown = np.full_like(answers, -1)
         for j in range(answers.shape[1]):
@@ -60,7 +62,7 @@ def main() -> None:
             warnings.simplefilter("ignore", UserWarning)
             full = np.mean([stage.score(answers, None, seed + 7919 * k) for k in range(2)])
             for name, params in variants.items():
-                stage.router_params = {**ROUTER_SETTINGS, **params}
+                stage.router_params = {**settings, **params}
                 gaps[name].append(np.mean([stage.score(shown, None, seed + 7919 * k)
                                            for k in range(2)]) - full)
         print(f"  seed {seed}: " + "  ".join(f"{n} {g[-1]:+.4f}" for n, g in gaps.items()),

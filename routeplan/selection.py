@@ -19,16 +19,8 @@ from numpy.typing import ArrayLike
 from sklearn.utils.validation import check_array, check_is_fitted
 
 from routeplan import costs as costs_mod
-from routeplan.learner import (
-    CANDIDATES,
-    DEFAULT_CANDIDATES,
-    PluginRouter,
-    _as_generator,
-    _check_answers_weights,
-    _check_y,
-    _onehot,
-    _split_indices,
-)
+from routeplan._routerbase import _as_generator, _check_answers_weights, _check_y, _onehot, _split_indices
+from routeplan.learner import CANDIDATES, DEFAULT_CANDIDATES, PluginRouter
 
 __all__ = ["SelectionResult", "fit_candidates", "select_router"]
 

@@ -255,6 +255,20 @@ def test_platt_matches_sklearn_logistic_regression(digits_scores):
     assert b_w == pytest.approx(ref_w.intercept_[0], rel=1e-3, abs=1e-3)
 
 
+def test_calibration_prior_reaches_the_expert_maps(small):
+    # The router's calibration_prior is the prior_strength of its Platt maps (Platt, 1999; the
+    # prior itself is checked against statsmodels below): with prior 0 the map is fitted freely
+    # and moves off the identity here, with a huge prior it stays at (1, 0); negative is refused.
+    X, y, A, fees = small
+    plain = PluginRouter(calibration_prior=0.0, random_state=0, **FAST).fit(X, y, A, fees=fees)
+    held = PluginRouter(calibration_prior=1e9, random_state=0, **FAST).fit(X, y, A, fees=fees)
+    rep = plain.calibration_["experts"][0]
+    assert rep["platt_a"] != pytest.approx(1.0, abs=1e-3)
+    np.testing.assert_allclose(held.expert_platt_, np.tile([1.0, 0.0], (2, 1)), atol=1e-4)
+    with pytest.raises(ValueError, match="calibration_prior"):
+        PluginRouter(calibration_prior=-1.0, **FAST).fit(X, y, A, fees=fees)
+
+
 def test_platt_prior_is_statsmodels_ridge_glm_around_the_identity():
     # MAP Platt scaling under a Gaussian prior centred on (a, b) = (1, 0) is a ridge-penalised
     # logistic GLM with the score as offset; reference: statsmodels GLM.fit_regularized with

@@ -1,0 +1,304 @@
+"""The plug-in router: a classifier plus per-expert correctness models, routed by expected cost."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from typing import Any
+
+import numpy as np
+import torch
+import torch.nn.functional as F
+from numpy.typing import ArrayLike
+from scipy.special import expit
+from torch import nn
+
+from routeplan import calibration as cal
+from routeplan import costs as costs_mod
+from routeplan._nets import _forward, _load_net, _make_net, _train_loop
+from routeplan._routerbase import (
+    CALIBRATION_PRIOR,
+    _COMMON_PARAMS_DOC,
+    _EPS,
+    _FIT_DOC,
+    _BaseRouter,
+    _by_chunks,
+    _check_class_proba,
+    _init_common,
+    _logit,
+    _onehot,
+    _Part,
+    realised_costs,
+)
+
+# --------------------------------------------------------------------------------------
+# plug-in router
+# --------------------------------------------------------------------------------------
+
+
+def _class_accuracy(part: _Part, n_classes: int, strength: float = 2.0) -> np.ndarray:
+    """Each expert's accuracy per true class, (M, K), IPS-weighted and shrunk.
+
+    Shrunk toward the expert's overall accuracy with a Beta prior of ``strength``
+    pseudo-answers (common practice); overall accuracy uses the rule of succession.
+    """
+    known = part.known
+    right = (part.answers == part.y[:, None]) & known
+    w = part.weights  # 0 where unknown
+    overall = ((w * right).sum(0) + 1.0) / (w.sum(0) + 2.0)  # (M,)
+    Y = _onehot(part.y, n_classes)  # (n, K)
+    num = (w * right).T @ Y  # (M, K)
+    den = w.T @ Y
+    return (num + strength * overall[:, None]) / (den + strength)
+
+
+class PluginRouter(_BaseRouter):
+    __doc__ = """Classifier plus per-expert correctness models; route to the least expected cost.
+
+    The classifier is trained by cross-entropy, the correctness model (one output per
+    expert) by binary log-loss on the known answers only, each weighted by the inverse
+    of its selection probability. A case goes to ``argmin_r E[c_r | x]`` with the
+    expected costs of :func:`routeplan.costs.expected_cost_vectors`: post-hoc deferral
+    (Narasimhan, Jitkrittum, Menon, Rawat & Kumar, "Post-hoc estimators for learning to
+    defer to an expert", NeurIPS 2022). Given ``class_proba`` (a model the team already
+    has), only the routing is learned: two-stage learning to defer (Mao, Mohri & Zhong,
+    "Two-Stage Learning to Defer with Multiple Experts", NeurIPS 2023).
+
+    The classifier is early-stopped on the validation system cost of the full routing
+    (correctness model fixed, temperature refitted each epoch when ``calibrate``), ties
+    broken by validation log-loss. Class probabilities are temperature-scaled and
+    correctness probabilities Platt-scaled on the validation split
+    (:mod:`routeplan.calibration`).
+
+    Parameters
+    ----------""" + _COMMON_PARAMS_DOC + """
+    Attributes
+    ----------
+    n_features_in_, n_classes_, n_experts_ : int
+    hidden_ : tuple of int
+        Hidden layer widths used (``hidden`` resolved).
+    fees_ : ndarray of shape (M,)
+    cost_matrix_ : ndarray of shape (K, K)
+    classifier_net_ : torch.nn.Module or None
+        None in two-stage mode.
+    correctness_net_ : torch.nn.Module
+    class_temperature_ : float
+    expert_platt_ : ndarray of shape (M, 2)
+        Platt ``(a, b)`` per expert.
+    class_accuracy_ : ndarray of shape (M, K)
+        Each expert's shrunk accuracy per true class (the class route).
+    expert_stack_ : ndarray of shape (M, 3)
+        Stacking coefficients per expert: network logit, class route, intercept.
+    calibration_ : dict
+        ECE before/after calibration on the validation split (optimistic: fitted there).
+    validation_cost_ : float
+        Validation system cost of the fitted router (unknown answers imputed).
+    history_ : dict
+        Validation scores per epoch of each network.
+    """
+
+    _net_names = ("classifier", "correctness")
+
+    def __init__(self, *, n_classes: int | None = None, head: str = "mlp",
+                 hidden: tuple[int, ...] | None = None, correctness_head: str | None = None,
+                 max_epochs: int = 200, batch_size: int = 512, learning_rate: float = 1e-3,
+                 weight_decay: float = 1e-4, patience: int = 15,
+                 early_stopping: str = "loss", validation_fraction: float = 0.2,
+                 calibrate: bool = True, calibration_prior: float = CALIBRATION_PRIOR,
+                 standardize: bool = True, random_state: Any = None, verbose: bool = False,
+                 console: Any = None) -> None:
+        _init_common(self, locals())
+
+    def fit(self, X: ArrayLike, y: ArrayLike, answers: ArrayLike, *, fees: ArrayLike,
+            cost_matrix: ArrayLike | None = None, sample_weight: ArrayLike | None = None,
+            X_val: ArrayLike | None = None, y_val: ArrayLike | None = None,
+            answers_val: ArrayLike | None = None, sample_weight_val: ArrayLike | None = None,
+            class_proba: ArrayLike | None = None, class_proba_val: ArrayLike | None = None
+            ) -> PluginRouter:
+        return self._fit(X, y, answers, fees=fees, cost_matrix=cost_matrix,
+                         sample_weight=sample_weight, X_val=X_val, y_val=y_val,
+                         answers_val=answers_val, sample_weight_val=sample_weight_val,
+                         class_proba=class_proba, class_proba_val=class_proba_val)
+
+    fit.__doc__ = """Fit the correctness model, then the classifier (unless two-stage).
+""" + _FIT_DOC.replace("        Returns", """\
+        class_proba, class_proba_val : array-like of shape (n, K), optional
+            Two-stage mode: probabilities of the team's own model; only routing is learned
+            and prediction then needs ``class_proba`` too.
+
+        Returns""")
+
+    def _fit_parts(self, train: _Part, val: _Part, gen: torch.Generator) -> None:
+        """Correctness model first, then the classifier against the routed cost."""
+        self.calibration_ = {}
+        self._fit_correctness(train, val, gen)
+        q_val = self._correct_proba(val.X)
+        c_val = (val.costs if not np.isnan(val.costs).any() else
+                 costs_mod.impute_missing_costs(val.costs, self._imputed(val, q_val)))
+        if self.two_stage_:
+            self.classifier_net_ = None
+            Z = np.log(np.clip(val.class_proba, _EPS, 1.0))
+        else:
+            self.classifier_net_ = self._train_classifier(train, val, q_val, c_val, gen)
+            Z = _forward(self.classifier_net_, val.X, self.x_mean_, self.x_scale_)
+        self.class_temperature_ = cal.fit_temperature(Z, val.y) if self.calibrate else 1.0
+        P_val = cal.apply_temperature(Z, self.class_temperature_)
+        self.calibration_["classes"] = {
+            "temperature": self.class_temperature_,
+            "ece_before": cal.expected_calibration_error(cal.apply_temperature(Z, 1.0), val.y),
+            "ece_after": cal.expected_calibration_error(P_val, val.y)}
+        self._fit_class_route(train, val, P_val)
+
+    def _fit_class_route(self, train: _Part, val: _Part, P_val: np.ndarray) -> None:
+        """Per-class expert accuracy, and its stacking with the feature-based model."""
+        M, K = self.n_experts_, self.n_classes_
+        self.class_accuracy_ = _class_accuracy(train, K)
+        self.expert_stack_ = np.tile([1.0, 0.0, 0.0], (M, 1))
+        self.expert_stack_[:, 0] = self.expert_platt_[:, 0]
+        self.expert_stack_[:, 2] = self.expert_platt_[:, 1]
+        if M == 0 or not self.calibrate:
+            return
+        z_x = _forward(self.correctness_net_, val.X, self.x_mean_, self.x_scale_)
+        z_c = _logit(P_val @ self.class_accuracy_.T)
+        reports = self.calibration_.get("experts", [{} for _ in range(M)])
+        for j, rep in enumerate(reports):
+            k = val.known[:, j]
+            t = (val.answers[k, j] == val.y[k]).astype(np.float64)
+            feats = np.column_stack([z_x[k, j], z_c[k, j]])
+            coef = cal.fit_stack(feats, t, val.weights[k, j], prior_strength=self.calibration_prior)
+            if coef[0] == 1.0 and not np.any(coef[1:]):
+                continue  # too few answers: keep the Platt-scaled feature model
+            self.expert_stack_[j] = coef
+            rep.update({"stack": coef.tolist(), "ece_stacked": cal.expected_calibration_error(
+                cal.apply_stack(feats, coef), t)})
+
+    def _train_classifier(self, train: _Part, val: _Part, q_val: np.ndarray, c_val: np.ndarray,
+                          gen: torch.Generator) -> nn.Module:
+        """Cross-entropy classifier, early-stopped on the plug-in routing's validation cost."""
+        net = _make_net(self.n_features_in_, self.n_classes_, self.head, self.hidden_)
+        tensors = (self._std(train.X), torch.from_numpy(train.y))
+        Xv, rows = self._std(val.X), np.arange(val.y.shape[0])
+
+        def loss_fn(m: nn.Module, xb: torch.Tensor, yb: torch.Tensor) -> torch.Tensor:
+            return F.cross_entropy(m(xb), yb)
+
+        def val_score(m: nn.Module) -> tuple[float, float]:
+            Z = m(Xv).numpy().astype(np.float64)
+            T = cal.fit_temperature(Z, val.y) if self.calibrate else 1.0
+            P = cal.apply_temperature(Z, T)
+            ec = costs_mod.expected_cost_vectors(P, q_val, cost_matrix=self.cost_matrix_,
+                                                 fees=self.fees_)
+            cost = realised_costs(c_val, ec.argmin(axis=1)).mean()
+            nll = float(-np.log(P[rows, val.y] + _EPS).mean())
+            return ((nll, float(cost)) if self.early_stopping in ("loss", None)
+                    else (float(cost), nll))
+
+        self.history_["classifier"] = _train_loop(net, loss_fn, tensors, val_score,
+                                                  self._settings(), gen, "classifier")
+        return net
+
+    def _proba_kw(self, part: _Part) -> dict[str, Any]:
+        """Pass the imported probabilities in two-stage mode."""
+        return {"class_proba": part.class_proba} if self.two_stage_ else {}
+
+    def _correct_for(self, part: _Part) -> np.ndarray:
+        """P(expert right) for a split, with the imported probabilities if two-stage."""
+        if not hasattr(self, "expert_stack_"):
+            return self._correct_proba(part.X)
+        P = cal.apply_temperature(self._class_logits(part.X, part.class_proba),
+                                  self.class_temperature_)
+        return self._stacked_correct(part.X, P)
+
+    def _stacked_correct(self, X: np.ndarray, P: np.ndarray) -> np.ndarray:
+        """P(expert right | x) from the feature model and the class route, stacked."""
+        M = self.n_experts_
+        if M == 0:
+            return np.zeros((X.shape[0], 0))
+        z_x = _forward(self.correctness_net_, X, self.x_mean_, self.x_scale_).astype(np.float64)
+        z_c = _logit(P @ self.class_accuracy_.T)
+        S = self.expert_stack_
+        return expit(S[:, 0] * z_x + S[:, 1] * z_c + S[:, 2])
+
+    def _proba_and_correct(self, X: np.ndarray, class_proba: ArrayLike | None
+                           ) -> tuple[np.ndarray, np.ndarray]:
+        """Calibrated class probabilities and P(expert right), both (n, .)."""
+        P = cal.apply_temperature(self._class_logits(X, class_proba), self.class_temperature_)
+        return P, self._stacked_correct(X, P)
+
+    def _class_logits(self, X: np.ndarray, class_proba: ArrayLike | None) -> np.ndarray:
+        """Class scores from the classifier, or log of the imported probabilities."""
+        if self.two_stage_:
+            if class_proba is None:
+                raise ValueError("this router was fitted in two-stage mode: pass class_proba")
+            P = _check_class_proba(class_proba, X.shape[0], self.n_classes_)
+            return np.log(np.clip(P, _EPS, 1.0))
+        if class_proba is not None:
+            raise ValueError("class_proba is only for routers fitted with class_proba")
+        return _forward(self.classifier_net_, X, self.x_mean_, self.x_scale_)
+
+    def predict_proba(self, X: ArrayLike, *, class_proba: ArrayLike | None = None) -> np.ndarray:
+        """Calibrated class probabilities ``P(y = k | x)``, shape (n, K).
+
+        Parameters
+        ----------
+        X : array-like of shape (n, d)
+        class_proba : array-like of shape (n, K), optional
+            Required in two-stage mode (the imported model's probabilities).
+        """
+        X = self._check_X(X)
+        return cal.apply_temperature(self._class_logits(X, class_proba), self.class_temperature_)
+
+    def predict_expert_correct(self, X: ArrayLike, *, class_proba: ArrayLike | None = None
+                               ) -> np.ndarray:
+        """Calibrated ``P(expert j right | x)``, shape (n, M).
+
+        A logistic stack, fitted on the validation answers, of the feature-based
+        correctness model and of ``sum_y P(y | x) A[j, y]`` with ``A`` each expert's
+        accuracy per true class on the training answers.
+
+        Parameters
+        ----------
+        X : array-like of shape (n, d)
+        class_proba : array-like of shape (n, K), optional
+            Required in two-stage mode.
+        """
+        return self._proba_and_correct(self._check_X(X), class_proba)[1]
+
+    def predict_costs(self, X: ArrayLike, *, class_proba: ArrayLike | None = None) -> np.ndarray:
+        """Estimated expected cost of each option, shape (n, K + M).
+
+        Parameters
+        ----------
+        X : array-like of shape (n, d)
+        class_proba : array-like of shape (n, K), optional
+            Required in two-stage mode.
+        """
+        return _by_chunks(self._costs_chunk, self._check_X(X), class_proba)
+
+    def _costs_chunk(self, X: np.ndarray, class_proba: np.ndarray | None) -> np.ndarray:
+        """Expected option costs of a chunk of validated rows."""
+        P, q = self._proba_and_correct(X, class_proba)
+        return costs_mod.expected_cost_vectors(P, q, cost_matrix=self.cost_matrix_,
+                                               fees=self.fees_)
+
+    def predict_route(self, X: ArrayLike, *, class_proba: ArrayLike | None = None) -> np.ndarray:
+        """Option of least expected cost per case (``K + j`` = expert j), shape (n,)."""
+        def routes(xs: np.ndarray, ps: np.ndarray | None) -> np.ndarray:
+            return np.argmin(self._costs_chunk(xs, ps), axis=1).astype(np.int64)
+
+        return _by_chunks(routes, self._check_X(X), class_proba)
+
+    def _extra_arrays(self) -> dict[str, np.ndarray]:
+        """The class temperature, per-class accuracies and stacking weights."""
+        return {"class_temperature": np.array([self.class_temperature_]),
+                "class_accuracy": self.class_accuracy_, "expert_stack": self.expert_stack_}
+
+    def _restore(self, arrays: Mapping[str, np.ndarray], meta: Mapping[str, Any]) -> None:
+        """Rebuild the networks and calibration."""
+        super()._restore(arrays, meta)
+        self.class_temperature_ = float(np.asarray(arrays["class_temperature"]).reshape(-1)[0])
+        M, K = self.n_experts_, self.n_classes_
+        self.class_accuracy_ = np.asarray(arrays["class_accuracy"], np.float64).reshape(M, K)
+        self.expert_stack_ = np.asarray(arrays["expert_stack"], np.float64).reshape(M, 3)
+        self.classifier_net_ = None if self.two_stage_ else _load_net(
+            _make_net(self.n_features_in_, self.n_classes_, self.head, self.hidden_),
+            "classifier", arrays)
