@@ -5,7 +5,7 @@ Pure functions over arrays: no workspace, no files (``routeplan.rounds`` does th
 The decision model
 ------------------
 Cases are split into regions of the feature space (k-means, see
-:func:`routeplan.competence.regions_from_features`). For case ``i`` the options are
+:func:`routeplan.regions.regions_from_features`). For case ``i`` the options are
 
 * the model: expected cost ``C * (1 - max_k P(k | x_i))`` (``C`` = cost of one error,
   ``P(y | x)`` from :func:`class_probabilities`);

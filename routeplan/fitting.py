@@ -204,7 +204,7 @@ def round_weights(pool: Pool, rounds: list[dict], mask: np.ndarray) -> np.ndarra
     (``detail["design"]``, experts x regions x classes; experts matched by name), each
     expert's such answers scaled to mean 1. The rule is per round, so a workspace holding
     both kinds weighs each answer by the round that bought it. Regions are recomputed as
-    ``round plan`` computed them (:func:`routeplan.competence.regions_from_features` on every
+    ``round plan`` computed them (:func:`routeplan.regions.regions_from_features` on every
     case, ``random_state=0``), with the region count most old rounds used; rounds planned
     with another count are left out of the sum (for a round planned before more cases were
     imported, the regions recomputed now may differ a little from the plan's). Without any
@@ -245,7 +245,7 @@ def _stabilized_old(pool: Pool, details: list[dict], mask: np.ndarray, old: np.n
     """Stabilized weights of the ``old`` answers over the old rounds' designs, or None."""
     from collections import Counter
 
-    from .competence import regions_from_features
+    from .regions import regions_from_features
     from .rehearse import stabilized_weights
 
     usable = [d for d in details if d.get("design") and d.get("regions")]

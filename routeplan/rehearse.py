@@ -52,7 +52,7 @@ import numpy as np
 import pandas as pd
 
 from . import acquisition
-from .competence import regions_from_features
+from .regions import regions_from_features
 from .costs import error_cost_matrix, expected_cost_vectors
 from .simulate import Scenario, make_scenario
 

@@ -11,7 +11,7 @@ Choices written down here
   assigned it in any earlier round (the database holds ``UNIQUE(case_id, expert)``).
 * Regions: k-means on the standardised features of *every* case in the workspace, with a
   fixed seed (0), so they do not move with the round's seed
-  (:func:`routeplan.competence.regions_from_features`).
+  (:func:`routeplan.regions.regions_from_features`).
 * ``P(y | x)`` for the model's expected cost: :func:`routeplan.acquisition.class_probabilities`,
   seeded by the round's seed. Its predicted class is also the stratum over which a cell's
   picks are spread, for every candidate, never the truth: the chance that a pair is asked
@@ -399,7 +399,7 @@ def _pool(ws: Workspace, include_unverified: bool, n_regions: int, seed: int
           ) -> tuple[PlannerInput, list[str], list[dict], np.ndarray]:
     """Read the workspace into a PlannerInput; also return candidate case ids, the experts and
     the candidates' features."""
-    from .competence import regions_from_features
+    from .regions import regions_from_features
 
     frame, X = ws.case_frame()
     if len(frame) == 0:
