@@ -19,6 +19,9 @@ Files written to DIR (the same seed always gives the same bytes):
     share of tiles each expert can take.
 ``history.csv``
     ``case_id, expert, answer``: the team's past grades of a few dozen pool tiles.
+``assumed_profiles.csv``
+    ``expert, label, accuracy``: the team's own rough guess of each expert's accuracy per
+    grade, for ``routeplan rehearse --profiles`` (coarser than the hidden profiles).
 ``.profiles.json`` and ``.hidden_tiles.csv``
     Hidden: each expert's competence profile and every tile's grade and latent facts.
     Only ``play_experts.py`` (and the demo's closing check) read them.
@@ -43,6 +46,7 @@ FILE_COLUMNS: dict[str, tuple[str, ...]] = {
     "truth.csv": ("case_id", "truth"),
     "experts.csv": ("name", "fee", "capacity"),
     "history.csv": ("case_id", "expert", "answer"),
+    "assumed_profiles.csv": ("expert", "label", "accuracy"),
 }
 
 # Share of historical tiles each expert graded (the apprentice saw them all).
@@ -99,6 +103,7 @@ def generate(out: str | Path, *, n: int = 4000, n_new: int = 1000, truth_share: 
         "truth.csv": pool_hidden.iloc[verified][["case_id", "truth"]],
         "experts.csv": tileworks.default_experts(),
         "history.csv": _history(pool, pool_hidden, profiles, n_history, rng, seed),
+        "assumed_profiles.csv": tileworks.assumed_profiles(),
         tileworks.HIDDEN_FILE: pd.concat([pool_hidden, new_hidden], ignore_index=True),
     }
     out = Path(out)

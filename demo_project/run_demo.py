@@ -280,6 +280,8 @@ def _print_summary(rows: list[dict[str, Any]], checks: list[dict[str, Any]], see
     print(f"  {routeplan} --workspace {WORKSPACE} round plan --budget 100 --strategy random --dry-run"
           "   (what would a random plan buy?)")
     print(f"  {routeplan} rehearse --rounds 4 --budget 25   (a simulated rehearsal; needs no workspace)")
+    print(f"  {routeplan} --workspace {WORKSPACE} rehearse --profiles {DATA}/assumed_profiles.csv --rounds 4 --budget 25")
+    print("     (the same on the works' own tiles, with the team's guess of each expert's accuracy)")
     print("  rerun the demo with --budget 25 or --seed 8 and compare the table;")
     print(f"  peek at {WORK / DATA / tileworks.PROFILES_FILE} to see how good each expert really is.")
 

@@ -152,6 +152,20 @@ def default_experts() -> pd.DataFrame:
     )
 
 
+def assumed_profiles() -> pd.DataFrame:
+    """Return the works' own rough guess of each expert's accuracy, per grade (for a rehearsal).
+
+    Invented beliefs, coarser than the hidden profiles: the team knows the apprentice misses
+    cracks (so is weaker on rejects), trusts the kiln master, and rates the tone lab as fair.
+    """
+    rows = [
+        ("apprentice", "", 0.85), ("apprentice", "reject", 0.6),
+        ("kiln_master", "", 0.93),
+        ("tone_lab", "", 0.75), ("tone_lab", "reject", 0.9),
+    ]
+    return pd.DataFrame(rows, columns=["expert", "label", "accuracy"])
+
+
 def default_profiles() -> dict[str, Any]:
     """Return the hidden competence profiles of the three experts (plain JSON-ready data)."""
     return {

@@ -435,7 +435,12 @@ def route(app, policy_path, cases_path, out_path, exact, id_column, chunk_size, 
 @click.option("--budget", "budget_per_round", type=click.FloatRange(min=0, min_open=True), default=10.0, show_default=True,
               help="Budget per round, in fee units.")
 @click.option("--cases", "n_pool", type=click.IntRange(100, 200_000), default=3000, show_default=True,
-              help="Cases in the simulated pool (all with truth).")
+              help="Cases in the rehearsal's pool (all with truth); with --profiles at most half of the "
+                   "workspace's cases with truth, the rest held out to measure the cost.")
+@click.option("--profiles", "profiles_path", type=click.Path(path_type=Path), default=None,
+              help="Rehearse on the workspace's own cases with truth instead of a simulated scenario, with "
+                   "each expert's assumed accuracy from this CSV or Parquet file (columns expert, label, "
+                   "accuracy; an empty label covers the expert's other labels).")
 @click.option("--strategies", default="value,uncertain,random", show_default=True,
               help="Comma-separated strategies to compare.")
 @click.option("--audit-share", type=click.FloatRange(0, 1), default=0.1, show_default=True,
@@ -455,32 +460,41 @@ def route(app, policy_path, cases_path, out_path, exact, id_column, chunk_size, 
               help="Write the curves to this PNG.")
 @json_option
 @pass_app
-def rehearse(app, n_rounds, budget_per_round, n_pool, strategies, audit_share, weighting, focus_margin, no_focus,
-             seed, plot_path, as_json):
-    """Rehearse a budget on a simulated scenario before spending money.
+def rehearse(app, n_rounds, budget_per_round, n_pool, profiles_path, strategies, audit_share, weighting,
+             focus_margin, no_focus, seed, plot_path, as_json):
+    """Rehearse a budget before spending money: on a simulated scenario, or on your own cases.
 
-    Plays the rounds for each strategy on a synthetic pool with known competence (three
-    experts of different fees and regional strengths), fits a router after each round, and
-    shows how the exact system cost falls with the fees spent. Needs no workspace.
+    Plays the rounds for each strategy, fits a router after each round, and shows how the
+    exact system cost falls with the fees spent. By default the pool is synthetic, with
+    known competence (three experts of different fees and regional strengths), and no
+    workspace is needed. With --profiles it is the workspace's own cases with truth and its
+    experts and fees, each expert right with the accuracy you assume for it (per label, if
+    you like); the answers are simulated from those assumptions, so the figures are only as
+    good as they are. Costs are in units of one wrong decision.
 
     Example:
 
     \b
         routeplan rehearse --rounds 6 --budget 10 --plot rehearsal.png
+        routeplan rehearse --profiles assumed.csv --rounds 4 --budget 25
     """
     from .errors import InputError
-    from .rehearse import STRATEGIES, budget_to_reach
+    from .rehearse import STRATEGIES, budget_to_reach, scenario_from_workspace
     from .rehearse import rehearse as run
 
     chosen = [s.strip() for s in strategies.split(",") if s.strip()]
     unknown = [s for s in chosen if s not in STRATEGIES]
     if unknown or not chosen:
         raise InputError(f"--strategies: unknown strategy {unknown[0] if unknown else ''!r}; choose from {', '.join(STRATEGIES)}")
+    scenario = None
+    if profiles_path is not None:
+        with app.workspace() as ws:
+            scenario = scenario_from_workspace(ws, profiles_path, random_state=seed)
     from rich.progress import Progress
 
     with Progress(console=app.console, disable=app.quiet or as_json, transient=True) as bar:
         task = bar.add_task("rehearsing", total=len(chosen) * n_rounds)
-        result = run(n_pool=n_pool, strategies=chosen, n_rounds=n_rounds, budget_per_round=budget_per_round,
+        result = run(scenario, n_pool=n_pool, strategies=chosen, n_rounds=n_rounds, budget_per_round=budget_per_round,
                      audit_share=audit_share, weighting=weighting,
                      focus_margin=None if no_focus else focus_margin, random_state=seed,
                      progress=lambda text: bar.update(task, advance=1, description=text))
@@ -497,6 +511,10 @@ def rehearse(app, n_rounds, budget_per_round, n_pool, strategies, audit_share, w
     from .report import render_rehearsal
 
     app.console.print(render_rehearsal(result, reach, target))
+    if profiles_path is not None:
+        app.say(f"Pool: {result.settings['n_pool']} of the workspace's cases with truth, "
+                f"{result.settings['n_eval']} held out; answers simulated from the accuracies assumed in "
+                f"{profiles_path}, costs in units of one wrong decision.")
     if plot_path is not None:
         app.say(f"Wrote the plot to {plot_path}")
 

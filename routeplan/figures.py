@@ -55,15 +55,18 @@ def competence_heatmap(frame: pd.DataFrame, level: str, path: str | Path, *, acc
     return path
 
 
-def rehearsal_plot(curves: pd.DataFrame, path: str | Path, *, bayes_cost: float, full_information_cost: float) -> Path:
-    """System cost against cumulative spend, one line per strategy, with the two references.
+def rehearsal_plot(curves: pd.DataFrame, path: str | Path, *, bayes_cost: float | None,
+                   full_information_cost: float) -> Path:
+    """System cost against cumulative spend, one line per strategy, with the references.
 
     Parameters
     ----------
     curves : pandas.DataFrame
         :attr:`routeplan.rehearse.Rehearsal.curves`.
     path : str or Path
-    bayes_cost, full_information_cost : float
+    bayes_cost : float or None
+        Drawn unless None (a scenario whose truth model is the truth itself).
+    full_information_cost : float
 
     Returns
     -------
@@ -78,7 +81,8 @@ def rehearsal_plot(curves: pd.DataFrame, path: str | Path, *, bayes_cost: float,
     for strategy, rows in curves.groupby("strategy", sort=False):
         ax.plot(rows["spend"], rows["system_cost"], marker="o", label=str(strategy))
     ax.axhline(full_information_cost, linestyle="--", color="grey", label="all answers known")
-    ax.axhline(bayes_cost, linestyle=":", color="black", label="Bayes-optimal")
+    if bayes_cost is not None:
+        ax.axhline(bayes_cost, linestyle=":", color="black", label="Bayes-optimal")
     ax.set_xlabel("cumulative fees spent")
     ax.set_ylabel("system cost per case (exact, held-out)")
     ax.set_title("Rehearsal: system cost against budget")

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import itertools
 import json
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Iterator, Sequence
 
@@ -29,6 +29,7 @@ __all__ = [
     "import_experts",
     "add_expert",
     "import_answers",
+    "read_profiles",
 ]
 
 
@@ -487,3 +488,62 @@ def _plan_answers(ws, table, labels, experts, claimed, strict, result) -> list[t
     result.notes = {"historical": historical, "linked_to_assignments": len(rows) - historical,
                     "repeated_rows": len(frame) - len(unique), "left_blank": blank}
     return rows
+
+
+# --------------------------------------------------------------------------- assumed profiles
+
+
+def read_profiles(path: str | Path, labels: Sequence[str], experts: Sequence[str]) -> np.ndarray:
+    """Read assumed expert profiles (columns ``expert``, ``accuracy``, optional ``label``).
+
+    Each row says how likely the expert's answer is right on cases whose truth is ``label``;
+    a row with an empty label covers every label that has no row of its own for that
+    expert. Nothing is stored: the matrix feeds a rehearsal on the workspace's own cases
+    (:func:`routeplan.rehearse.scenario_from_workspace`).
+
+    Parameters
+    ----------
+    path : str or Path
+        CSV or Parquet, validated against ``schemas/profiles-row.schema.json``.
+    labels, experts : sequence of str
+        The workspace's label set and experts.
+
+    Returns
+    -------
+    ndarray of shape (n_experts, n_labels)
+        ``accuracy[j, k]``: P(expert j right | truth k).
+
+    Raises
+    ------
+    InputError
+        A row naming an unknown expert or label, an accuracy outside [0, 1], a repeated
+        (expert, label) with another accuracy, or an expert or label left without one.
+    """
+    table = read_table(path, text_columns=("expert", "label"))
+    parsed = check_rows(table, load_schema("profiles-row"))
+    frame = table.frame.assign(accuracy=parsed["accuracy"])
+    if "label" not in frame.columns:
+        frame = frame.assign(label=None)
+    table = replace(table, frame=frame)
+    _check_known(table, "expert", set(experts), "expert", "add it with 'routeplan experts add' or fix the name")
+    _check_labels_in_set(table, "label", labels)
+    keyed = frame.assign(label=frame["label"].fillna(""))
+    _check_pair_conflicts(replace(table, frame=keyed), ["expert", "label"], "accuracy")
+    accuracy = np.full((len(experts), len(labels)), np.nan)
+    row_of = {name: j for j, name in enumerate(experts)}
+    col_of = {name: k for k, name in enumerate(labels)}
+    for expert, label, value in zip(keyed["expert"], keyed["label"], keyed["accuracy"]):
+        if label == "":
+            continue
+        accuracy[row_of[expert], col_of[label]] = value
+    for expert, label, value in zip(keyed["expert"], keyed["label"], keyed["accuracy"]):
+        if label == "":
+            row = accuracy[row_of[expert]]
+            row[np.isnan(row)] = value
+    missing = np.argwhere(np.isnan(accuracy))
+    if missing.size:
+        j, k = missing[0]
+        raise InputError(f"no assumed accuracy for expert {experts[j]!r} on label {labels[k]!r}; add a row "
+                         f"'{experts[j]},{labels[k]},ACCURACY' or one with an empty label for all its labels",
+                         source=table.source)
+    return accuracy

@@ -46,14 +46,15 @@ Choices that keep the measurement honest
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any, Callable, Sequence
 
 import numpy as np
 import pandas as pd
 
 from . import acquisition
-from .regions import regions_from_features
 from .costs import error_cost_matrix, expected_cost_vectors
+from .regions import regions_from_features
 from .simulate import Scenario, make_scenario
 
 __all__ = [
@@ -63,7 +64,9 @@ __all__ = [
     "budget_schedule",
     "budget_to_reach",
     "digits_experts_scenario",
+    "pool_scenario",
     "rehearse",
+    "scenario_from_workspace",
     "stabilized_weights",
     "system_cost_exact",
 ]
@@ -90,8 +93,10 @@ class Rehearsal:
         One row per (strategy, round): ``strategy``, ``round``, ``spend`` (cumulative fees),
         ``answers`` (cumulative), ``system_cost`` (exact expected cost per case on held-out
         cases of the router fitted after that round).
-    bayes_cost : float
-        Bayes-optimal expected cost on the held-out cases.
+    bayes_cost : float or None
+        Bayes-optimal expected cost on the held-out cases; None when the scenario's truth
+        model is the truth itself (digits, a team's own cases), where the least cost is that
+        of an oracle that knows every outcome and is no yardstick.
     full_information_cost : float
         Cost of the same router fitted with all answers of all pool cases (mean over seeds).
     full_information_spend : float
@@ -100,7 +105,7 @@ class Rehearsal:
     """
 
     curves: pd.DataFrame
-    bayes_cost: float
+    bayes_cost: float | None
     full_information_cost: float
     full_information_spend: float
     settings: dict = field(default_factory=dict)
@@ -235,6 +240,106 @@ def digits_experts_scenario(
                     correct_proba=accuracy[:, y].T.copy(), region_accuracy=accuracy,
                     fees=np.asarray(fees, dtype=np.float64),
                     names=tuple(f"expert{j + 1}" for j in range(len(subsets))))
+
+
+def pool_scenario(
+    X: np.ndarray,
+    y: np.ndarray,
+    accuracy: np.ndarray,
+    fees: Sequence[float],
+    names: Sequence[str] | None = None,
+    *,
+    random_state: int | np.random.Generator | None = 0,
+) -> Scenario:
+    """A team's own cases with assumed expert profiles, as a :class:`Scenario`.
+
+    The counterpart of :func:`digits_experts_scenario` for the cases of a workspace: truth is
+    known, so ``proba`` is the one-hot truth and a region is a class, and expert ``j`` is
+    right on a case of truth ``k`` with the assumed probability ``accuracy[j, k]`` (else a
+    uniformly random other class, the scenario's answer rule). Costs are then exact given the
+    truth and the assumptions, which are the user's, not measured. Cases come in a seeded
+    random order, so that the first ones (the rehearsal's pool) are a random sample.
+
+    Parameters
+    ----------
+    X : ndarray of shape (n, d)
+        Feature matrix (as ``routeplan fit`` builds it).
+    y : ndarray of int of shape (n,)
+        Truth codes ``0 .. K-1``.
+    accuracy : ndarray of shape (M, K)
+        Assumed P(expert j right | truth k), in [0, 1]
+        (:func:`routeplan.ingest.read_profiles`).
+    fees : sequence of float
+        Fee per case of each expert, in units of one error.
+    names : sequence of str, optional
+        Expert names (default ``expert1``, ...).
+    random_state : int, Generator or None, default=0
+        Seeds the order of the cases.
+
+    Returns
+    -------
+    Scenario
+    """
+    X = np.asarray(X, dtype=np.float64)
+    y = np.asarray(y, dtype=np.int64)
+    accuracy = np.asarray(accuracy, dtype=np.float64)
+    fees = np.asarray(fees, dtype=np.float64)
+    if accuracy.ndim != 2 or np.any(~np.isfinite(accuracy)) or np.any((accuracy < 0) | (accuracy > 1)):
+        raise ValueError("accuracy must be an (M, K) array of probabilities")
+    M, K = accuracy.shape
+    if X.ndim != 2 or y.shape != (X.shape[0],) or fees.shape != (M,) or np.any(fees < 0):
+        raise ValueError("X (n, d), y (n,) and one non-negative fee per expert are needed")
+    if y.size and (y.min() < 0 or y.max() >= K):
+        raise ValueError(f"y must hold codes 0..{K - 1}")
+    order = np.random.default_rng(random_state).permutation(len(y))
+    y = y[order]
+    return Scenario(X=X[order].astype(np.float32), proba=np.eye(K)[y], y=y, regions=y,
+                    correct_proba=accuracy[:, y].T.copy(), region_accuracy=accuracy, fees=fees,
+                    names=tuple(names) if names is not None else tuple(f"expert{j + 1}" for j in range(M)))
+
+
+def scenario_from_workspace(ws: Any, profiles: str | Path, *, random_state: int = 0) -> Scenario:
+    """The workspace's cases with truth, and assumed profiles read from a file.
+
+    Features are built as ``routeplan fit`` builds them; fees are divided by the
+    workspace's error cost, so that the rehearsal's costs are in units of one wrong
+    decision, as the simulated scenarios' are.
+
+    Parameters
+    ----------
+    ws : Workspace
+    profiles : str or Path
+        Profiles file (:func:`routeplan.ingest.read_profiles`).
+    random_state : int, default=0
+
+    Returns
+    -------
+    Scenario
+
+    Raises
+    ------
+    InputError
+        Too few cases with truth, a single label among them, no experts, or a bad profiles file.
+    """
+    from .errors import InputError
+    from .features import fit_features
+    from .fitting import MIN_TRUTH_CASES
+    from .ingest import read_profiles
+    from .pool import load_pool
+
+    pool = load_pool(ws)
+    if not pool.experts:
+        raise InputError("no experts yet; add them with 'routeplan experts add NAME --fee F'")
+    accuracy = read_profiles(profiles, pool.labels, pool.experts)
+    mask = pool.has_truth
+    if mask.sum() < 2 * MIN_TRUTH_CASES:
+        raise InputError(f"only {int(mask.sum())} case(s) have truth; a rehearsal on them needs at least "
+                         f"{2 * MIN_TRUTH_CASES} (half are held out to measure the cost)")
+    if len(np.unique(pool.y[mask])) < 2:
+        raise InputError("every case with truth has the same label; a rehearsal needs at least two labels")
+    X = fit_features(pool.X[mask], pool.feature_names).transform(pool.X[mask])
+    return pool_scenario(X, pool.y[mask], accuracy, pool.fees / pool.error_cost, pool.experts,
+                         random_state=random_state)
 
 
 def _crossfit_proba(X, y, X_eval, K, n_folds, seed, router_params) -> tuple[np.ndarray, np.ndarray]:
@@ -516,7 +621,9 @@ def rehearse(
     rows = []
     for strategy in strategies:
         rows += _play(stage, plan, weigh, strategy, steps, answers_all, random_state, int(n_router_fits), progress)
-    return Rehearsal(pd.DataFrame(rows), float(stage.true_costs.min(axis=1).mean()), full,
+    known_truth = bool(np.all(scn.proba.max(axis=1) == 1.0))
+    bayes = None if known_truth else float(stage.true_costs.min(axis=1).mean())
+    return Rehearsal(pd.DataFrame(rows), bayes, full,
                      float(stage.fees.sum() * n_pool),
                      {"n_pool": n_pool, "n_eval": int(stage.true_costs.shape[0]), "budgets": steps,
                       "audit_share": audit_share, "n_regions": n_regions, "seed": random_state,

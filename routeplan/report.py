@@ -253,8 +253,9 @@ def render_rehearsal(result, reach: dict, target: float) -> Group:
         by = dict(zip(rows["strategy"], rows["system_cost"]))
         table.add_row(str(round_no), f"{rows['spend'].max():.1f}", *[f"{by.get(s, float('nan')):.3f}" for s in strategies])
     text = Text()
-    text.append(f"Bayes-optimal cost {result.bayes_cost:.3f}; same router with every answer known "
-                f"{result.full_information_cost:.3f} (those answers would cost {result.full_information_spend:.0f}).\n")
+    bayes = "" if result.bayes_cost is None else f"Bayes-optimal cost {result.bayes_cost:.3f}; "
+    text.append(f"{bayes}same router with every answer known {result.full_information_cost:.3f} "
+                f"(those answers would cost {result.full_information_spend:.0f}).\n")
     for s in strategies:
         spent = reach.get(s, float("inf"))
         text.append(f"{s}: within 0.01 of the all-answers cost ({target:.3f}) "

@@ -21,7 +21,7 @@ import generate_cases  # noqa: E402
 import play_experts  # noqa: E402
 import tileworks  # noqa: E402
 
-PUBLIC_FILES = ("tiles.csv", "new_tiles.csv", "truth.csv", "experts.csv", "history.csv")
+PUBLIC_FILES = ("tiles.csv", "new_tiles.csv", "truth.csv", "experts.csv", "history.csv", "assumed_profiles.csv")
 
 
 @pytest.fixture(scope="module")
@@ -59,6 +59,11 @@ def test_generator_is_deterministic_and_writes_documented_columns(tmp_path: Path
     assert set(history["case_id"]) <= set(tiles["case_id"])
     profiles = json.loads((first / tileworks.PROFILES_FILE).read_text())
     assert set(profiles["experts"]) == set(frames["experts.csv"]["name"])
+    # the team's guess reads as routeplan's profiles file, one accuracy per expert and grade
+    from routeplan.ingest import read_profiles
+
+    guess = read_profiles(first / "assumed_profiles.csv", list(tileworks.LABELS), list(frames["experts.csv"]["name"]))
+    assert guess.shape == (3, len(tileworks.LABELS)) and ((guess > 0) & (guess < 1)).all()
 
 
 def test_correct_probability_takes_the_first_matching_rule() -> None:

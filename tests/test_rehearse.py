@@ -162,3 +162,86 @@ def test_cli_weighting_choices_are_the_library_s():
 
     option = next(p for p in cli.commands["rehearse"].params if p.name == "weighting")
     assert tuple(option.type.choices) == WEIGHTINGS
+
+
+# --------------------------------------------------------------------------- own cases, assumed profiles
+
+
+def test_pool_scenario_follows_the_assumed_profiles():
+    # scikit-learn's bundled iris, with two assumed experts: the scenario keeps every case (in a
+    # seeded order), its truth model is the one-hot truth, and each expert is right on a case of
+    # truth k with the assumed accuracy[j, k]; over 400 draws the share of right answers per
+    # (expert, class) stays within 4 binomial standard errors (common practice), and a wrong
+    # answer is never the truth (the answer rule of routeplan.simulate).
+    from sklearn.datasets import load_iris
+
+    from routeplan.rehearse import pool_scenario
+
+    X, y = load_iris(return_X_y=True)
+    accuracy = np.array([[0.9, 0.5, 0.2], [0.6, 0.95, 0.7]])
+    scn = pool_scenario(X, y, accuracy, [0.1, 0.3], ["ana", "ben"], random_state=1)
+    assert scn.names == ("ana", "ben") and scn.n_classes == 3 and scn.n_experts == 2
+    assert sorted(map(tuple, scn.X.astype(float).round(4))) == sorted(map(tuple, X.round(4)))
+    np.testing.assert_array_equal(scn.proba.argmax(axis=1), scn.y)
+    assert np.all(scn.proba.max(axis=1) == 1.0)
+    np.testing.assert_allclose(scn.correct_proba, accuracy[:, scn.y].T)
+    draws = np.stack([scn.answers(seed) for seed in range(400)])  # (400, n, M)
+    right = draws == scn.y[None, :, None]
+    for k in range(3):
+        n = 400 * int((scn.y == k).sum())
+        share = right[:, scn.y == k, :].mean(axis=(0, 1))
+        se = np.sqrt(accuracy[:, k] * (1 - accuracy[:, k]) / n)
+        assert np.all(np.abs(share - accuracy[:, k]) <= 4 * se + 1e-12)
+    with pytest.raises(ValueError, match="accuracy"):
+        pool_scenario(X, y, np.full((1, 3), 1.5), [0.1])
+
+
+@pytest.fixture(scope="module")
+def digits5(tmp_path_factory):
+    """scikit-learn's digits as a workspace with the expert oracle_k (fee 0; a few answers)."""
+    from sklearn_workspace import digits_workspace
+
+    return digits_workspace(tmp_path_factory.mktemp("profiles"), k=5, n_answers=20)
+
+
+def _profiles(tmp_path, rows):
+    path = tmp_path / "profiles.csv"
+    path.write_text("expert,label,accuracy\n" + "".join(f"{r}\n" for r in rows), encoding="utf-8")
+    return path
+
+
+@pytest.mark.slow
+def test_cli_rehearse_on_own_cases_with_assumed_profiles(tmp_path, digits5):
+    # The Mozannar & Sontag (ICML 2020, section 7) expert written as a profile: right on digits
+    # 0-4, and right 1 time in 10 elsewhere, which the answer rule turns into a uniform guess.
+    # The rehearsal uses the workspace's 1,797 digits (300 in the pool, the rest held out), its
+    # expert and fee; with the truth as truth model there is no Bayes-optimal yardstick.
+    path = _profiles(tmp_path, ["oracle_k,,0.1", *[f"oracle_k,{k},1" for k in range(5)]])
+    result = invoke(digits5, "rehearse", "--profiles", path, "--rounds", "1", "--budget", "3",
+                    "--cases", "300", "--strategies", "random", "--json")
+    data = json.loads(result.stdout)
+    assert data["bayes_cost"] is None
+    assert data["settings"]["experts"] == ["oracle_k"] and data["settings"]["fees"] == [0.0]
+    assert data["settings"]["n_pool"] == 300 and data["settings"]["n_eval"] == 1797 - 300
+    assert [row["strategy"] for row in data["curves"]] == ["random"]
+    assert 0 <= data["full_information_cost"] < 1
+
+
+@pytest.mark.parametrize("rows, message", [
+    (["nobody,,0.9"], "line 2: unknown expert 'nobody'"),
+    (["oracle_k,0,0.9"], "no assumed accuracy for expert 'oracle_k' on label '1'"),
+    (["oracle_k,,1.5"], "line 2"),
+    (["oracle_k,,0.9", "oracle_k,,0.8"], "line 3: conflicting accuracy"),
+])
+def test_cli_rehearse_refuses_bad_profiles(tmp_path, digits5, rows, message):
+    # Contract of DESIGN.md: bad input -> exit 2, one line naming the file (and line), no traceback.
+    from click.testing import CliRunner
+
+    from routeplan.cli import cli
+
+    path = _profiles(tmp_path, rows)
+    result = CliRunner().invoke(cli, ["--workspace", str(digits5), "rehearse", "--profiles", str(path)])
+    assert result.exit_code == 2
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 1 and "profiles.csv" in lines[0] and message in lines[0], lines
+    assert "Traceback" not in result.stderr
