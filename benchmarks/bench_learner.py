@@ -69,6 +69,7 @@ def bench_fit(n: int) -> None:
         _, wall, cpu = _timed(lambda: make().fit(X, y, A, fees=sc.fees), repeats=2)
         rows.append((name, wall, cpu))
     _, bare_wall, bare_cpu = _timed(lambda: _bare_torch_fit(X, y, A, (64, 64, 64)), repeats=2)
+    floor, floor_setting = _one_net_floor(X, y, (64, 64, 64))
     threads = min(2, os.cpu_count() or 1)
     lr = LogisticRegression(solver="lbfgs", max_iter=1000)
     _, lr_wall, lr_cpu = _timed(lambda: lr.fit(X, y), repeats=3)
@@ -84,6 +85,9 @@ def bench_fit(n: int) -> None:
     print(f"  {'bare torch loop, same two networks, no checks':48s} wall {bare_wall:6.2f} s  "
           f"cpu {bare_cpu:6.2f} s  (ratio to LogReg: wall {bare_wall / lr_wall:4.2f}; the floor "
           "of any fit of these networks)")
+    print(f"  {'one such network alone, fastest setting':48s} wall {floor:6.2f} s  ({floor_setting}; "
+          f"ratio to LogReg {floor / lr_wall:4.2f}: two such networks need at least "
+          f"{2 * floor / lr_wall:4.2f} x)")
     for name, wall, cpu in rows:
         print(f"  {name:48s} wall {wall:6.2f} s  cpu {cpu:6.2f} s\n"
               f"  {'':48s} ratio to LogReg: wall {wall / lr_wall:4.2f}, cpu {cpu / lr_cpu:4.2f} "
@@ -115,6 +119,40 @@ def _bare_torch_fit(X: np.ndarray, y: np.ndarray, A: np.ndarray, hidden: tuple[i
                 opt.zero_grad(set_to_none=True)
                 loss_fn(net, perm[s:s + batch_size]).backward()
                 opt.step()
+
+
+def _one_net_floor(X: np.ndarray, y: np.ndarray, hidden: tuple[int, ...], epochs: int = 10
+                   ) -> tuple[float, str]:
+    """Least wall time of one classifier network trained by plain fused Adam for ``epochs``
+    over the 80% of rows a router trains on, over batch sizes 512 / 2048 and 1 / 2 threads:
+    what any fit of one network of this size costs here, whatever the code around it."""
+    import torch
+    import torch.nn.functional as F
+
+    from routeplan._nets import _make_net
+
+    n = int(0.8 * X.shape[0])
+    Xt = torch.from_numpy(((X[:n] - X[:n].mean(0)) / X[:n].std(0)).astype(np.float32))
+    yt = torch.from_numpy(y[:n].astype(np.int64))
+    old_threads, best = torch.get_num_threads(), (np.inf, "")
+    try:
+        for threads in (1, 2):
+            torch.set_num_threads(threads)
+            for batch in (512, 2048):
+                torch.manual_seed(0)
+                net = _make_net(X.shape[1], int(y.max()) + 1, "mlp", hidden)
+                opt = torch.optim.Adam(net.parameters(), lr=1e-3, fused=True)
+                start = time.perf_counter()
+                for _ in range(epochs):
+                    for s in range(0, n, batch):
+                        opt.zero_grad(set_to_none=True)
+                        F.cross_entropy(net(Xt[s:s + batch]), yt[s:s + batch]).backward()
+                        opt.step()
+                wall = time.perf_counter() - start
+                best = min(best, (wall, f"batch {batch}, {threads} thread(s)"))
+    finally:
+        torch.set_num_threads(old_threads)
+    return best
 
 
 _SCORER = textwrap.dedent("""
