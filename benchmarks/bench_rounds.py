@@ -24,7 +24,7 @@ budget of the schedule at which the cost is at or below the target; "sustained" 
 every larger budget to stay there. Budgets are cumulative, on a geometric schedule, so a
 ratio is resolved to one step of the schedule (a factor ``2 ** (1/2)``); the script also
 reads the crossing between scheduled budgets (log-linear interpolation), which the goal's
-verdict does not use but which moves less between seed sets. Beside the medians
+verdict does not use but which is not rounded up to the next budget. Beside the medians
 the script prints a bootstrap interval of their ratio over seeds and, where ``value``'s median
 curve is above ``random``'s, the seed-paired difference there.
 

@@ -4,7 +4,8 @@ Each importer reads the whole file, checks it against its JSON Schema and agains
 workspace (unknown cases or experts, labels outside the label set, conflicts with what is
 stored), and only then writes, in one transaction, with one journal entry. Re-importing a file
 with the same bytes is a no-op. Any problem raises :class:`~routeplan.errors.InputError`
-before anything is written.
+before anything is written. :func:`read_profiles` checks a file the same way against the
+workspace but stores nothing (assumed expert accuracies, for a rehearsal).
 """
 
 from __future__ import annotations
