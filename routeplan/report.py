@@ -243,7 +243,7 @@ def render_rehearsal(result, reach: dict, target: float) -> Group:
     """
     curves = result.curves
     strategies = list(dict.fromkeys(curves["strategy"]))
-    table = Table(title="Exact system cost per case on held-out cases, after each round", title_justify="left",
+    table = Table(title="Exact system cost per held-out case", title_justify="left",
                   box=box.SIMPLE_HEAD, pad_edge=False)
     table.add_column("round", justify="right")
     table.add_column("spend", justify="right")
