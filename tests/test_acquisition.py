@@ -160,7 +160,6 @@ def _check_constraints(pool: PlannerInput, sel, budget: float, max_per_expert):
     spend = pool.fees[sel.expert].sum()
     assert spend <= budget * (1 + 1e-9)
     counts = np.bincount(sel.expert, minlength=m)
-    total = int(counts.sum())
     for j in range(m):
         if max_per_expert is not None:
             assert counts[j] <= max_per_expert

@@ -12,7 +12,7 @@ from routeplan.baselines import (
     system_cost,
     workload,
 )
-from routeplan.costs import cost_vectors, error_cost_matrix
+from routeplan.costs import cost_vectors
 
 # K = 2 classes, M = 2 experts; hand-written option costs (common practice: worked by hand).
 COSTS = np.array(

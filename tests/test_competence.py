@@ -1,4 +1,8 @@
-"""Tests of routeplan.competence against published data, reference libraries and hand arithmetic."""
+"""Tests of routeplan.competence against reference libraries and hand arithmetic.
+
+Agreement, Dawid-Skene and regions have their own files (test_agreement, test_latent,
+test_regions).
+"""
 
 from __future__ import annotations
 
@@ -8,24 +12,16 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-from sklearn.datasets import load_iris
-from sklearn.metrics import adjusted_rand_score, cohen_kappa_score, precision_recall_fscore_support
+from sklearn.metrics import cohen_kappa_score, precision_recall_fscore_support
 from sklearn.metrics import confusion_matrix as sk_confusion_matrix
-from statsmodels.stats.inter_rater import fleiss_kappa as sm_fleiss_kappa
 from statsmodels.stats.proportion import proportion_confint
 
 from routeplan.competence import (
     MODEL,
-    agreement_table,
     competence_report,
     confusion_matrices,
-    dawid_skene,
     expert_accuracy_table,
-    fleiss_for_shared,
-    latent_accuracy_table,
     per_class_table,
-    region_summary,
-    regions_from_features,
 )
 from routeplan.stats import mean_interval
 
@@ -54,35 +50,6 @@ def tiny():
     return answers, truth, model
 
 
-@pytest.fixture(scope="module")
-def anaesthesia():
-    """Dawid & Skene (1979) anaesthesia ratings as long-form answers, codes 0..3."""
-    raw = pd.read_csv(DATA / "dawid_skene_1979_anaesthesia.csv")
-    return pd.DataFrame({
-        "case": raw["patient"] - 1,
-        "expert": "observer_" + raw["observer"].astype(str),
-        "answer": raw["rating"] - 1,
-    })
-
-
-def _simulate_annotators(seed, n_cases=3000, n_experts=5, k=3):
-    """Seeded annotators with known confusion matrices; returns answers, truth, prior, confusion."""
-    rng = np.random.default_rng(seed)
-    prior = np.array([0.5, 0.3, 0.2])
-    truth = rng.choice(k, size=n_cases, p=prior)
-    conf = np.empty((n_experts, k, k))
-    for j in range(n_experts):
-        for c in range(k):
-            conf[j, c] = rng.dirichlet(np.ones(k))
-            diag = rng.uniform(0.6, 0.9)
-            conf[j, c] = conf[j, c] * (1 - diag) / (1 - conf[j, c, c]) * (np.arange(k) != c)
-            conf[j, c, c] = diag
-    rows = []
-    for j in range(n_experts):
-        u = rng.random(n_cases)[:, None]
-        answer = (u > np.cumsum(conf[j, truth], axis=1)).sum(axis=1)
-        rows.append(pd.DataFrame({"case": np.arange(n_cases), "expert": f"e{j}", "answer": answer}))
-    return pd.concat(rows, ignore_index=True), truth, prior, conf
 
 
 # --------------------------------------------------------------------------- accuracy table
@@ -273,152 +240,7 @@ def test_validation_errors(tiny):
         expert_accuracy_table(answers, truth, error_cost=0)
 
 
-# --------------------------------------------------------------------------- agreement
-
-
-def test_agreement_table_matches_sklearn_on_shared_cases():
-    rng = np.random.default_rng(17)
-    frames = []
-    for name in ["ann", "bob", "cy"]:
-        cases = rng.choice(300, size=200, replace=False)
-        frames.append(pd.DataFrame({"case": cases, "expert": name,
-                                    "answer": rng.integers(3, size=200)}))
-    answers = pd.concat(frames, ignore_index=True)
-    # a repeated answer: ann answers her first case again, differently; the first one counts
-    first = frames[0].iloc[0]
-    answers = pd.concat([answers, pd.DataFrame({"case": [first["case"]], "expert": ["ann"],
-                                                "answer": [(first["answer"] + 1) % 3]})])
-    table = agreement_table(answers, 3).set_index(["expert_a", "expert_b"])
-    for (x, y), row in table.iterrows():
-        fx = frames[["ann", "bob", "cy"].index(x)].set_index("case")["answer"]
-        fy = frames[["ann", "bob", "cy"].index(y)].set_index("case")["answer"]
-        shared = fx.index.intersection(fy.index)
-        assert row["n_shared"] == len(shared)
-        # reference: sklearn.metrics.cohen_kappa_score on the shared cases
-        assert row["kappa"] == pytest.approx(cohen_kappa_score(fx[shared], fy[shared]))
-
-
-def test_fleiss_for_shared_published_diagnoses():
-    wide = pd.read_csv(DATA / "fleiss_1971_diagnoses.csv")
-    answers = wide.melt(id_vars="subject", var_name="expert", value_name="rating")
-    answers = pd.DataFrame({"case": answers["subject"], "expert": answers["expert"],
-                            "answer": answers["rating"] - 1})
-    table = fleiss_for_shared(answers, 5)
-    assert len(table) == 1 and table.loc[0, "n_raters"] == 6 and table.loc[0, "n_cases"] == 30
-    # R irr::kappam.fleiss(diagnoses) = 0.4302445 (Fleiss 1971 data; value recorded in
-    # statsmodels' test_inter_rater.py)
-    assert table.loc[0, "kappa"] == pytest.approx(0.4302445, abs=1e-7)
-
-
-def test_fleiss_groups_cases_by_rater_set():
-    rng = np.random.default_rng(23)
-    panels = {"abc": ["a", "b", "c"], "abcd": ["a", "b", "c", "d"]}
-    frames, ratings = [], {}
-    for offset, (key, panel) in zip([0, 1000], panels.items()):
-        ratings[key] = rng.integers(3, size=(40, len(panel)))
-        for j, name in enumerate(panel):
-            frames.append(pd.DataFrame({"case": offset + np.arange(40), "expert": name,
-                                        "answer": ratings[key][:, j]}))
-    # two experts only on other cases: below min_raters, not reported
-    frames.append(pd.DataFrame({"case": 5000 + np.arange(40), "expert": "a", "answer": 0}))
-    frames.append(pd.DataFrame({"case": 5000 + np.arange(40), "expert": "b", "answer": 1}))
-    answers = pd.concat(frames, ignore_index=True)
-
-    def counts(r):
-        return np.stack([(r == k).sum(axis=1) for k in range(3)], axis=1)
-
-    table = fleiss_for_shared(answers, 3).set_index("experts")
-    assert sorted(table.index) == ["a, b, c", "a, b, c, d"]
-    # reference: statsmodels.stats.inter_rater.fleiss_kappa on each panel's counts
-    assert table.loc["a, b, c", "kappa"] == pytest.approx(sm_fleiss_kappa(counts(ratings["abc"])))
-    assert table.loc["a, b, c, d", "kappa"] == pytest.approx(
-        sm_fleiss_kappa(counts(ratings["abcd"]))
-    )
-    # a fixed panel: the 80 cases a, b and c all answered, d's answers left out
-    panel = fleiss_for_shared(answers, 3, experts=["a", "b", "c"])
-    both = np.concatenate([ratings["abc"], ratings["abcd"][:, :3]])
-    assert panel.loc[0, "n_cases"] == 80
-    assert panel.loc[0, "kappa"] == pytest.approx(sm_fleiss_kappa(counts(both)))  # statsmodels
-
-
-# --------------------------------------------------------------------------- Dawid-Skene
-
-
-def test_dawid_skene_anaesthesia(anaesthesia):
-    res = dawid_skene(anaesthesia, 4)
-    assert res.converged and res.n_iter < 100
-    # class proportions published by Dawid & Skene (Applied Statistics 1979), recalled from
-    # memory (approximate): 0.40, 0.42, 0.11, 0.07 -> tolerance 0.05
-    np.testing.assert_allclose(res.class_prior, [0.40, 0.42, 0.11, 0.07], atol=0.05)
-    # observer 1 rated each patient three times: the repeated rows count
-    assert res.n_answers[res.experts.index("observer_1")] == 135
-    # sanity check, not an exact value (reference README: 3 patients in one run): the EM's
-    # most likely class and the majority vote disagree on a few patients only
-    votes = pd.crosstab(anaesthesia["case"], anaesthesia["answer"]).to_numpy()
-    disagree = np.sum(votes.argmax(axis=1) != res.most_likely)
-    assert 1 <= disagree <= 5
-    np.testing.assert_allclose(res.posterior.sum(axis=1), 1.0)
-    np.testing.assert_allclose(res.confusion.sum(axis=2), 1.0)
-
-
-def test_dawid_skene_em_never_decreases_likelihood(anaesthesia):
-    # EM ascent property (Dempster, Laird & Rubin, JRSS B 1977), unsmoothed likelihood
-    lls = [
-        dawid_skene(anaesthesia, 4, max_iter=i, smoothing=0.0).log_likelihood
-        for i in range(1, 12)
-    ]
-    assert np.all(np.diff(lls) >= -1e-9) and lls[-1] > lls[0]
-
-
-def test_dawid_skene_recovers_simulated_annotators():
-    answers, truth, prior, conf = _simulate_annotators(seed=31)
-    res = dawid_skene(answers, 3)
-    # known parameters of the seeded simulation; with ~600-1500 cases per class a rate's
-    # standard error is under 0.02, so 0.05 is a generous tolerance; prior within 0.03
-    assert res.converged
-    np.testing.assert_allclose(res.class_prior, prior, atol=0.03)
-    np.testing.assert_allclose(res.confusion, conf, atol=0.05)
-    assert np.mean(res.most_likely == truth) > 0.9
-    latent = latent_accuracy_table(res)
-    expected = np.diagonal(conf, axis1=1, axis2=2) @ prior
-    np.testing.assert_allclose(latent["latent_accuracy"], expected, atol=0.03)
-
-
-def test_dawid_skene_with_known_truth():
-    answers, truth, prior, conf = _simulate_annotators(seed=37, n_cases=1500)
-    partial = np.where(np.random.default_rng(1).random(truth.size) < 0.3, truth, -1)
-    res = dawid_skene(answers, 3, truth=partial)
-    known = partial >= 0
-    # cases with known truth keep it (semi-supervised variant, documented)
-    np.testing.assert_array_equal(res.most_likely[known], truth[known])
-    assert np.all(res.posterior[known].max(axis=1) == 1.0)
-    np.testing.assert_allclose(res.confusion, conf, atol=0.06)  # known simulated parameters
-
-
-# --------------------------------------------------------------------------- regions and report
-
-
-def test_regions_from_features_on_iris():
-    X, y = load_iris(return_X_y=True)  # scikit-learn's bundled iris data
-    region = regions_from_features(X, n_regions=3, random_state=0)
-    assert set(region) == {0, 1, 2}
-    # common practice: standardised k-means finds the iris species well (ARI well above 0.5)
-    assert adjusted_rand_score(y, region) > 0.5
-    # standardising makes the regions independent of each feature's unit
-    rescaled = regions_from_features(X * [1000.0, 1.0, 0.01, 1.0], n_regions=3, random_state=0)
-    assert adjusted_rand_score(region, rescaled) == pytest.approx(1.0)
-    # centres fitted on a seeded subset still find the species, reproducibly
-    subset = regions_from_features(X, n_regions=3, random_state=0, fit_size=100)
-    assert adjusted_rand_score(y, subset) > 0.5
-    np.testing.assert_array_equal(
-        subset, regions_from_features(X, n_regions=3, random_state=0, fit_size=100)
-    )
-    summary = region_summary(X, region, ["sl", "sw", "pl", "pw"])
-    assert summary["n_cases"].sum() == 150
-    first = summary.set_index("region").loc[region[0]]
-    assert first["pl"] == pytest.approx(X[region == region[0], 2].mean())  # numpy mean
-    with pytest.raises(ValueError):
-        regions_from_features(X[:2], n_regions=3)
+# --------------------------------------------------------------------------- the report
 
 
 def test_competence_report_bundles_tables_and_serialises(tiny):

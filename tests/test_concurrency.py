@@ -8,7 +8,6 @@ row must arrive and no process may fail with "database is locked".
 from __future__ import annotations
 
 import multiprocessing as mp
-from pathlib import Path
 
 import numpy as np
 
