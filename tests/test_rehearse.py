@@ -8,6 +8,7 @@ import numpy as np
 import pandas as pd
 import pytest
 from scipy import signal, stats
+from sklearn.datasets import load_digits
 
 from routeplan.rehearse import (
     budget_schedule,
@@ -70,8 +71,6 @@ def test_budget_schedule_is_geometric():
 def test_digits_scenario_pools_scikit_learn_digits():
     # scikit-learn's bundled digits (1797 images of 8x8): a 4x4 feature is the mean of a 2x2 block,
     # computed here by another route (scipy.signal.convolve2d with a 2x2 box, every second value).
-    from sklearn.datasets import load_digits
-
     data = load_digits()
     scn = digits_experts_scenario(random_state=5)
     order = np.random.default_rng(5).permutation(1797)
@@ -171,8 +170,9 @@ def test_pool_scenario_follows_the_assumed_profiles():
     # scikit-learn's bundled iris, with two assumed experts: the scenario keeps every case (in a
     # seeded order), its truth model is the one-hot truth, and each expert is right on a case of
     # truth k with the assumed accuracy[j, k]; over 400 draws the share of right answers per
-    # (expert, class) stays within 4 binomial standard errors (common practice), and a wrong
-    # answer is never the truth (the answer rule of routeplan.simulate).
+    # (expert, class) stays within 4 binomial standard errors (common practice), and the wrong
+    # answers fall on the other classes, each of them seen (the answer rule of routeplan.simulate:
+    # a uniformly random other class).
     from sklearn.datasets import load_iris
 
     from routeplan.rehearse import pool_scenario
@@ -192,6 +192,9 @@ def test_pool_scenario_follows_the_assumed_profiles():
         share = right[:, scn.y == k, :].mean(axis=(0, 1))
         se = np.sqrt(accuracy[:, k] * (1 - accuracy[:, k]) / n)
         assert np.all(np.abs(share - accuracy[:, k]) <= 4 * se + 1e-12)
+        for j in range(2):
+            answers = draws[:, scn.y == k, j]
+            assert set(np.unique(answers[answers != k]).tolist()) == {0, 1, 2} - {k}
     with pytest.raises(ValueError, match="accuracy"):
         pool_scenario(X, y, np.full((1, 3), 1.5), [0.1])
 
@@ -208,6 +211,21 @@ def _profiles(tmp_path, rows):
     path = tmp_path / "profiles.csv"
     path.write_text("expert,label,accuracy\n" + "".join(f"{r}\n" for r in rows), encoding="utf-8")
     return path
+
+
+def test_scenario_from_workspace_uses_the_profile_per_case(tmp_path, digits5):
+    # The profile of the Mozannar & Sontag expert (ICML 2020, section 7) on the workspace's
+    # digits: P(right) is 1 on cases of truth 0-4 and 0.1 elsewhere, case by case; every case
+    # with truth is kept, and the fee is in units of one error (error cost 1 here).
+    from routeplan.rehearse import scenario_from_workspace
+    from routeplan.workspace import Workspace
+
+    path = _profiles(tmp_path, ["oracle_k,,0.1", *[f"oracle_k,{k},1" for k in range(5)]])
+    with Workspace.open(digits5) as ws:
+        scn = scenario_from_workspace(ws, path, random_state=0)
+    assert scn.names == ("oracle_k",) and scn.fees.tolist() == [0.0] and len(scn.y) == 1797
+    np.testing.assert_array_equal(scn.correct_proba[:, 0], np.where(scn.y < 5, 1.0, 0.1))
+    assert np.bincount(scn.y).tolist() == np.bincount(load_digits().target).tolist()
 
 
 @pytest.mark.slow
