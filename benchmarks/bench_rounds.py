@@ -233,7 +233,7 @@ def main() -> None:
     for item in args.planner:
         key, _, value = item.partition("=")
         try:
-            planner[key] = value if key == "spread" else float(value)
+            planner[key] = value if key == "spread" else int(value) if value.isdigit() else float(value)
         except ValueError:
             parser.error(f"--planner {item}: not KEY=NUMBER")
     start = time.perf_counter()

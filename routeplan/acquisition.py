@@ -675,6 +675,7 @@ def select_assignments(
     fee_floor: float = 1e-3,
     min_value_per_fee: float = 3.0,
     spread: str = "variance",
+    kg_min_answers: int = 0,
     max_steps: int = 2000,
     focus: ArrayLike | None = None,
     random_state: int | np.random.Generator | None = None,
@@ -714,6 +715,10 @@ def select_assignments(
         How ``value`` spreads the rest: by posterior variance of each cell's accuracy per
         unit of fee (greedy, as ``uncertain``), spend proportional to each expert's
         remaining pairs, or picks proportional to them (as ``random``).
+    kg_min_answers : int, default=0
+        ``value`` scores a cell by its knowledge gradient only once it holds this many
+        answers with truth (earlier rounds' and this round's picks); looser cells are left
+        to the variance spread.
     max_steps : int, default=2000
         Rough number of greedy steps; larger rounds take picks in chunks.
     focus : array-like of bool of shape (n_cases, n_experts), optional
@@ -737,6 +742,8 @@ def select_assignments(
         raise ValueError("max_per_expert must be >= 0")
     if not (np.isfinite(min_value_per_fee) and min_value_per_fee >= 0):
         raise ValueError(f"min_value_per_fee must be a number >= 0, got {min_value_per_fee!r}")
+    if isinstance(kg_min_answers, bool) or not isinstance(kg_min_answers, (int, np.integer)) or kg_min_answers < 0:
+        raise ValueError(f"kg_min_answers must be an integer >= 0, got {kg_min_answers!r}")
     if spread not in ("spend", "pairs", "variance"):
         raise ValueError(f"spread must be 'spend', 'pairs' or 'variance', got {spread!r}")
     if focus is not None:
@@ -762,7 +769,7 @@ def select_assignments(
     if strategy == "random":
         picks.append(_random_picks(eligible, ledger, rng, max_steps))
     else:
-        options = (explore_min, explore_share, tight_sd, tight_n, min_value_per_fee, spread)
+        options = (explore_min, explore_share, tight_sd, tight_n, min_value_per_fee, spread, kg_min_answers)
         unfocused = eligible.copy() if focus is not None else eligible
         if focus is not None:
             eligible &= focus  # in place: the design below reads the focused eligibility
@@ -965,7 +972,7 @@ def _picks_to_tight(alpha, beta, have, tight_sd: float, tight_n: int) -> NDArray
 def _cell_counts(pool, costs, eligible, ledger, alpha0, beta0, fee_eff, strategy, floor,
                  max_steps, rng) -> NDArray[np.int64]:
     """Strategy picks per (expert, region) cell: exploration floor, then the greedy."""
-    explore_min, explore_share, tight_sd, tight_n, min_value, spread = floor
+    explore_min, explore_share, tight_sd, tight_n, min_value, spread, kg_min = floor
     m, r = pool.n_experts, pool.n_regions
     room = np.zeros((m, r), dtype=np.int64)
     for j in range(m):
@@ -995,10 +1002,13 @@ def _cell_counts(pool, costs, eligible, ledger, alpha0, beta0, fee_eff, strategy
         scorer.append(_ValueScore(pool, costs, alpha, beta))
         scorer[0].refresh_all(room)
 
+    def ready() -> NDArray[np.bool_]:
+        return have + k >= kg_min
+
     def score() -> NDArray[np.float64]:
         if not scorer:
             return variance()
-        return scorer[0].score(cell_fee, variance())
+        return scorer[0].score(cell_fee, variance(), ready())
 
     step = _step_size(ledger, int(room.sum()), max_steps)
     if not scorer or min_value <= 0:
@@ -1006,7 +1016,7 @@ def _cell_counts(pool, costs, eligible, ledger, alpha0, beta0, fee_eff, strategy
         return k.reshape(m, r)
 
     def worth(c: int) -> bool:
-        return bool(scorer[0].kg[c] >= min_value * cell_fee[c])
+        return bool(have[c] + k[c] >= kg_min and scorer[0].kg[c] >= min_value * cell_fee[c])
 
     _greedy(score, cell_expert, room, ledger, step, rng, update, worth)
     useful = _could_matter(pool, costs, fee_eff).ravel()
@@ -1097,9 +1107,13 @@ class _ValueScore:
         for c in range(self.kg.size):
             self.refresh(c, int(room[c]))
 
-    def score(self, cell_fee: NDArray[np.float64], tie: NDArray[np.float64]) -> NDArray[np.float64]:
-        """KG(*) per fee, with ties (within 1e-12 relative) broken by ``tie``."""
+    def score(self, cell_fee: NDArray[np.float64], tie: NDArray[np.float64],
+              ready: NDArray[np.bool_] | None = None) -> NDArray[np.float64]:
+        """KG(*) per fee, with ties (within 1e-12 relative) broken by ``tie``; cells not
+        ``ready`` score zero."""
         value = self.kg / cell_fee
+        if ready is not None:
+            value = np.where(ready, value, 0.0)
         scale = max(float(np.max(np.abs(value))), 1e-300)
         rounded = np.round(value / scale, 12)
         return rounded + 1e-13 * tie / max(float(np.max(tie)), 1e-300)

@@ -379,6 +379,23 @@ def test_value_default_bar_is_three_times_the_fee():
     assert not np.array_equal(np.sort(one.cell_picks.ravel()), np.sort(three.cell_picks.ravel()))
 
 
+def test_value_leaves_loose_cells_to_the_variance_spread():
+    # Documented rule (kg_min_answers): a cell is scored by its knowledge gradient only once it holds
+    # that many answers. With a count no cell can reach, value must plan exactly as with a bar no cell
+    # can pass (everything goes to the variance spread), and a count of 0 exactly as the default.
+    pool = make_pool(n=600, fees=(0.05, 0.1, 0.2), capacities=(1.0, 1.0, 1.0))
+    kw = dict(budget=5, audit_share=0.0, explore_share=0.0, random_state=0)
+    gated = select_assignments(pool, kg_min_answers=10**6, **kw)
+    no_bar = select_assignments(pool, min_value_per_fee=1e12, **kw)
+    assert np.array_equal(gated.case, no_bar.case) and np.array_equal(gated.expert, no_bar.expert)
+    default, zero = select_assignments(pool, **kw), select_assignments(pool, kg_min_answers=0, **kw)
+    assert np.array_equal(default.case, zero.case) and np.array_equal(default.expert, zero.expert)
+    assert not np.array_equal(np.sort(default.cell_picks.ravel()), np.sort(gated.cell_picks.ravel()))
+    for bad in (-1, 2.5, True):
+        with pytest.raises(ValueError, match="kg_min_answers"):
+            select_assignments(pool, kg_min_answers=bad, **kw)
+
+
 @pytest.mark.parametrize("spread", ["spend", "pairs"])
 def test_value_spread_by_spend_or_by_pairs(spread):
     # Documented rule: with fees 0.05 / 0.1 / 0.2 and every pair eligible, spreading by spend gives each
