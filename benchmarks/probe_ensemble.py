@@ -22,7 +22,8 @@ import argparse
 
 import numpy as np
 
-from routeplan import costs, simulate
+from probe_gap import gap_setting  # the same setting (run from benchmarks/, which is on the path)
+from routeplan import costs
 from routeplan.learner import PluginRouter
 
 
@@ -34,17 +35,8 @@ def main() -> None:
     args = parser.parse_args()
 
     n = args.n_train
-    sc = simulate.make_scenario(n + 10_000, random_state=0)
-    A = sc.answers(1)
-    tr, te = np.arange(n), np.arange(n, n + 10_000)
+    sc, A, tr, te, bayes, gap = gap_setting(n)
     C = costs.error_cost_matrix(sc.n_classes)
-    ec = costs.expected_cost_vectors(sc.proba[te], sc.correct_proba[te], fees=sc.fees, cost_matrix=C)
-    bayes = ec.min(axis=1).mean()
-
-    def gap(p: np.ndarray, q: np.ndarray) -> float:
-        route = costs.expected_cost_vectors(p, q, fees=sc.fees, cost_matrix=C).argmin(axis=1)
-        return float(ec[np.arange(te.size), route].mean() - bayes)
-
     print(f"synthetic scenario, {n:,} training cases, all answers; Bayes-optimal {bayes:.4f}; "
           f"{args.members} routers per seed")
     singles, ensembles = [], []

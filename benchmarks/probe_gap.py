@@ -36,6 +36,27 @@ def parse_option(text: str) -> tuple[str, object]:
         return key, value
 
 
+def gap_setting(n: int):
+    """The scenario (``n`` training and 10,000 held-out cases), all answers, and a gap function.
+
+    Returns ``(scenario, answers, train_index, test_index, bayes, gap)``, where ``gap(p, q)``
+    is the exact expected cost on the held-out cases of routing by class probabilities ``p``
+    and correctness ``q``, minus the Bayes-optimal cost ``bayes``.
+    """
+    sc = simulate.make_scenario(n + 10_000, random_state=0)
+    A = sc.answers(1)
+    tr, te = np.arange(n), np.arange(n, n + 10_000)
+    C = costs.error_cost_matrix(sc.n_classes)
+    ec = costs.expected_cost_vectors(sc.proba[te], sc.correct_proba[te], fees=sc.fees, cost_matrix=C)
+    bayes = float(ec.min(axis=1).mean())
+
+    def gap(p: np.ndarray, q: np.ndarray) -> float:
+        route = costs.expected_cost_vectors(p, q, fees=sc.fees, cost_matrix=C).argmin(axis=1)
+        return float(ec[np.arange(te.size), route].mean() - bayes)
+
+    return sc, A, tr, te, bayes, gap
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--router", action="append", default=[], metavar="KEY=VALUE",
@@ -46,17 +67,7 @@ def main() -> None:
     params = dict(parse_option(t) for t in args.router)
 
     n = args.n_train
-    sc = simulate.make_scenario(n + 10_000, random_state=0)
-    A = sc.answers(1)
-    tr, te = np.arange(n), np.arange(n, n + 10_000)
-    C = costs.error_cost_matrix(sc.n_classes)
-    ec = costs.expected_cost_vectors(sc.proba[te], sc.correct_proba[te], fees=sc.fees, cost_matrix=C)
-    bayes = ec.min(axis=1).mean()
-
-    def gap(p: np.ndarray, q: np.ndarray) -> float:
-        route = costs.expected_cost_vectors(p, q, fees=sc.fees, cost_matrix=C).argmin(axis=1)
-        return float(ec[np.arange(te.size), route].mean() - bayes)
-
+    sc, A, tr, te, bayes, gap = gap_setting(n)
     print(f"synthetic scenario, {n:,} training cases, all answers; Bayes-optimal {bayes:.4f}; "
           f"router {params or 'defaults'}")
     for seed in args.seeds:
