@@ -1,6 +1,6 @@
 """Benchmarks of the routers (routeplan.learner).
 
-Run:  .venv/bin/python benchmarks/bench_learner.py [--quick]
+Run:  .venv/bin/python benchmarks/bench_learner.py [--quick] [--parts 1 2 3 4]
 
 1. Fit time on 100,000 x 32 (K = 10 classes, M = 5 experts, all answers known, 10 epochs)
    against scikit-learn's LogisticRegression (lbfgs) on the same matrix (goal: at most 3x)
@@ -9,8 +9,8 @@ Run:  .venv/bin/python benchmarks/bench_learner.py [--quick]
    measured with resource.getrusage ru_maxrss).
 3. Gap to the Bayes-optimal cost on the synthetic scenario with all answers (20,000 cases;
    goal: within 0.01), per router, seeds 0 and 1.
-4. Plug-in vs the softmax, one-vs-all and asymmetric softmax surrogates on digits
-   (Mozannar & Sontag's expert), mean over seeds 0 and 1.
+4. Plug-in, the average of three plug-ins, and the softmax, one-vs-all and asymmetric
+   softmax surrogates on digits (Mozannar & Sontag's expert), mean over seeds 0 and 1.
 
 Wall-clock figures depend on the machine's load; CPU seconds are printed beside them,
 and fit times are the least of a few runs.
@@ -30,7 +30,7 @@ import warnings
 import numpy as np
 
 from routeplan import costs, simulate
-from routeplan.learner import PluginRouter, SurrogateRouter
+from routeplan.learner import EnsembleRouter, PluginRouter, SurrogateRouter
 
 
 def _timed(fn, repeats: int = 1):
@@ -64,6 +64,7 @@ def bench_fit(n: int) -> None:
         ("PluginRouter (classifier + correctness nets)", lambda: PluginRouter(**epochs)),
         ("SurrogateRouter softmax (correctness + scorer)", lambda: SurrogateRouter(**epochs)),
         ("PluginRouter linear", lambda: PluginRouter(head="linear", **epochs)),
+        ("EnsembleRouter (3 plug-in routers)", lambda: EnsembleRouter(**epochs)),
     ]
     for name, make in candidates:
         _, wall, cpu = _timed(lambda: make().fit(X, y, A, fees=sc.fees), repeats=2)
@@ -222,6 +223,7 @@ def bench_bayes(n_train: int) -> None:
 
 _ROUTERS = [
     ("plugin", lambda s: PluginRouter(random_state=s)),
+    ("ensemble", lambda s: EnsembleRouter(random_state=s)),
     ("asymmetric", lambda s: SurrogateRouter(loss="asymmetric", random_state=s)),
     ("softmax", lambda s: SurrogateRouter(random_state=s)),
     ("ova", lambda s: SurrogateRouter(loss="ova", random_state=s)),
@@ -259,11 +261,17 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true",
                         help="smaller fit benchmark (20,000 cases)")
+    parser.add_argument("--parts", type=int, nargs="+", default=[1, 2, 3, 4],
+                        choices=[1, 2, 3, 4], help="which of the four benchmarks to run")
     args = parser.parse_args()
-    bench_fit(20_000 if args.quick else 100_000)
-    bench_score()
-    bench_bayes(20_000)
-    bench_digits()
+    if 1 in args.parts:
+        bench_fit(20_000 if args.quick else 100_000)
+    if 2 in args.parts:
+        bench_score()
+    if 3 in args.parts:
+        bench_bayes(20_000)
+    if 4 in args.parts:
+        bench_digits()
 
 
 if __name__ == "__main__":

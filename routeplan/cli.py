@@ -322,7 +322,8 @@ def answers_import(app, files, strict, as_json):
 @cli.command()
 @click.option("--seed", type=int, default=0, show_default=True, help="Seeds the validation split and every router.")
 @click.option("--router", "routers", multiple=True,
-              help="Fit only this router (repeatable): plugin, softmax-mlp, ova-mlp, softmax-linear, ... "
+              help="Fit only this router (repeatable): plugin-ensemble, plugin, asym-mlp, softmax-mlp, "
+                   "ova-mlp, plugin-linear, ... "
                    "Default: the standard candidates, keeping the best on validation.")
 @click.option("--max-epochs", type=click.IntRange(1, 10_000), default=None, help="Cap on training epochs.")
 @json_option
@@ -331,9 +332,11 @@ def fit(app, seed, routers, max_epochs, as_json):
     """Fit the classifier and router on the cases with truth and the answers gathered so far.
 
     Fits the candidate routers (a plug-in router: classifier plus per-expert correctness
-    models; and joint learners trained with the cost-sensitive deferral surrogates), compares
-    them with the baselines (model alone, each expert alone) on held-out cases by system cost
-    with 95% intervals, keeps the best, and stores every fitted model as a version.
+    models; the average of three such routers, preferred unless another candidate is
+    clearly better; and joint learners trained with the cost-sensitive deferral
+    surrogates), compares them with the baselines (model alone, each expert alone) on
+    held-out cases by system cost with 95% intervals, keeps the best, and stores every
+    fitted model as a version.
 
     Example:
 

@@ -51,7 +51,39 @@ def _class_accuracy(part: _Part, n_classes: int, strength: float = 2.0) -> np.nd
     return (num + strength * overall[:, None]) / (den + strength)
 
 
-class PluginRouter(_BaseRouter):
+class ExpectedCostRouting:
+    """Routing by least expected cost from calibrated ``P(y | x)`` and ``P(right | x)``.
+
+    Shared by :class:`PluginRouter` and :class:`routeplan.ensemble.EnsembleRouter`, which
+    provide ``_check_X``, ``_proba_and_correct``, ``cost_matrix_`` and ``fees_``.
+    """
+
+    def predict_costs(self, X: ArrayLike, *, class_proba: ArrayLike | None = None) -> np.ndarray:
+        """Estimated expected cost of each option, shape (n, K + M).
+
+        Parameters
+        ----------
+        X : array-like of shape (n, d)
+        class_proba : array-like of shape (n, K), optional
+            Required in two-stage mode.
+        """
+        return _by_chunks(self._costs_chunk, self._check_X(X), class_proba)
+
+    def _costs_chunk(self, X: np.ndarray, class_proba: np.ndarray | None) -> np.ndarray:
+        """Expected option costs of a chunk of validated rows."""
+        P, q = self._proba_and_correct(X, class_proba)
+        return costs_mod.expected_cost_vectors(P, q, cost_matrix=self.cost_matrix_,
+                                               fees=self.fees_)
+
+    def predict_route(self, X: ArrayLike, *, class_proba: ArrayLike | None = None) -> np.ndarray:
+        """Option of least expected cost per case (``K + j`` = expert j), shape (n,)."""
+        def routes(xs: np.ndarray, ps: np.ndarray | None) -> np.ndarray:
+            return np.argmin(self._costs_chunk(xs, ps), axis=1).astype(np.int64)
+
+        return _by_chunks(routes, self._check_X(X), class_proba)
+
+
+class PluginRouter(ExpectedCostRouting, _BaseRouter):
     __doc__ = """Classifier plus per-expert correctness models; route to the least expected cost.
 
     The classifier is trained by cross-entropy, the correctness model (one output per
@@ -262,30 +294,6 @@ class PluginRouter(_BaseRouter):
             Required in two-stage mode.
         """
         return self._proba_and_correct(self._check_X(X), class_proba)[1]
-
-    def predict_costs(self, X: ArrayLike, *, class_proba: ArrayLike | None = None) -> np.ndarray:
-        """Estimated expected cost of each option, shape (n, K + M).
-
-        Parameters
-        ----------
-        X : array-like of shape (n, d)
-        class_proba : array-like of shape (n, K), optional
-            Required in two-stage mode.
-        """
-        return _by_chunks(self._costs_chunk, self._check_X(X), class_proba)
-
-    def _costs_chunk(self, X: np.ndarray, class_proba: np.ndarray | None) -> np.ndarray:
-        """Expected option costs of a chunk of validated rows."""
-        P, q = self._proba_and_correct(X, class_proba)
-        return costs_mod.expected_cost_vectors(P, q, cost_matrix=self.cost_matrix_,
-                                               fees=self.fees_)
-
-    def predict_route(self, X: ArrayLike, *, class_proba: ArrayLike | None = None) -> np.ndarray:
-        """Option of least expected cost per case (``K + j`` = expert j), shape (n,)."""
-        def routes(xs: np.ndarray, ps: np.ndarray | None) -> np.ndarray:
-            return np.argmin(self._costs_chunk(xs, ps), axis=1).astype(np.int64)
-
-        return _by_chunks(routes, self._check_X(X), class_proba)
 
     def _extra_arrays(self) -> dict[str, np.ndarray]:
         """The class temperature, per-class accuracies and stacking weights."""

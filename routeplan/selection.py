@@ -20,9 +20,19 @@ from sklearn.utils.validation import check_array, check_is_fitted
 
 from routeplan import costs as costs_mod
 from routeplan._routerbase import _as_generator, _check_answers_weights, _check_y, _onehot, _split_indices
-from routeplan.learner import CANDIDATES, DEFAULT_CANDIDATES, PluginRouter
+from routeplan.learner import (
+    CANDIDATES,
+    DEFAULT_CANDIDATES,
+    TWO_STAGE_CANDIDATES,
+    EnsembleRouter,
+    PluginRouter,
+)
 
 __all__ = ["SelectionResult", "fit_candidates", "select_router"]
+
+#: The averaged plug-in candidate; when ``"plugin"`` is fitted beside it, its first member
+#: is that candidate (same cases, same kind of seed), which saves one plug-in fit.
+_ENSEMBLE = "plugin-ensemble"
 
 
 @dataclass
@@ -91,7 +101,12 @@ def _val_cases(X, y, answers, imputer, fees, C, class_proba) -> _ValCases:
     raw = costs_mod.cost_vectors(y, A, cost_matrix=C, fees=fees)
     missing = np.isnan(raw)
     known = A != costs_mod.MISSING_ANSWER
-    q = imputer.predict_expert_correct(X) if missing.any() else np.zeros(A.shape)
+    q = np.zeros(A.shape)
+    if missing.any():
+        two_stage = getattr(imputer, "two_stage_", False)
+        if two_stage and class_proba is None:
+            raise ValueError("a two-stage imputer needs class_proba_val")
+        q = imputer.predict_expert_correct(X, **({"class_proba": class_proba} if two_stage else {}))
     filled = raw
     if missing.any():
         exp = costs_mod.expected_cost_vectors(_onehot(y, K), q, cost_matrix=C, fees=fees)
@@ -309,9 +324,12 @@ def fit_candidates(
     random_state : int, numpy Generator or None
         Seeds the split and every candidate.
     names : sequence of str, optional
-        Candidates among :data:`routeplan.learner.CANDIDATES`; default
-        :data:`routeplan.learner.DEFAULT_CANDIDATES` (``"plugin"``, ``"asym-mlp"``,
-        ``"softmax-mlp"``, ``"ova-mlp"``), or ``("plugin",)`` in two-stage mode.
+        Candidates among :data:`routeplan.learner.CANDIDATES`, in order of preference;
+        default :data:`routeplan.learner.DEFAULT_CANDIDATES` (``"plugin-ensemble"``,
+        ``"plugin"``, ``"asym-mlp"``, ``"softmax-mlp"``, ``"ova-mlp"``), or
+        :data:`routeplan.learner.TWO_STAGE_CANDIDATES` in two-stage mode. With both
+        ``"plugin-ensemble"`` and ``"plugin"``, the plug-in candidate is the ensemble's
+        first member rather than a fit of its own.
     selection_fraction : float, default=0.25
     expert_names : list of str, optional
     class_proba : array-like of shape (n, K), optional
@@ -332,11 +350,12 @@ def fit_candidates(
         ``table.attrs["selection_index"]`` the rows of ``X`` used for selection.
     """
     names = tuple(names) if names is not None else (
-        ("plugin",) if class_proba is not None else DEFAULT_CANDIDATES)
+        TWO_STAGE_CANDIDATES if class_proba is not None else DEFAULT_CANDIDATES)
     unknown = [n for n in names if n not in CANDIDATES]
     if unknown or not names:
         raise ValueError(f"unknown candidate(s) {unknown}; choose from {sorted(CANDIDATES)}")
-    if class_proba is not None and any(CANDIDATES[n][0] is not PluginRouter for n in names):
+    if class_proba is not None and any(CANDIDATES[n][0] not in (PluginRouter, EnsembleRouter)
+                                       for n in names):
         raise ValueError("with class_proba (two-stage mode) only plug-in candidates apply")
     if not 0 < selection_fraction < 1:
         raise ValueError(f"selection_fraction must be in (0, 1), got {selection_fraction!r}")
@@ -350,14 +369,20 @@ def fit_candidates(
     rng = _as_generator(random_state)
     fit_idx, sel_idx = _split_indices(y, selection_fraction, int(rng.integers(0, 2**31 - 1)))
     fitted: dict[str, Any] = {}
+    share_member = _ENSEMBLE in names and "plugin" in names
     for name in names:
         cls, kw = CANDIDATES[name]
         params = {**dict(router_params or {}), **kw, "verbose": verbose, "console": console,
                   "random_state": int(rng.integers(0, 2**31 - 1))}
+        if share_member and name == "plugin":
+            continue  # the ensemble's first member (below)
         extra = {} if P is None else {"class_proba": P[fit_idx]}
         fitted[name] = cls(**params).fit(X[fit_idx], y[fit_idx], A[fit_idx], fees=fees,
                                          cost_matrix=cost_matrix, sample_weight=W[fit_idx],
                                          **extra)
+    if share_member:
+        fitted["plugin"] = fitted[_ENSEMBLE].members_[0]
+    fitted = {name: fitted[name] for name in names}  # the order of preference
     result = select_router(fitted, X[sel_idx], y[sel_idx], A[sel_idx], fees=fees,
                            cost_matrix=fitted[names[0]].cost_matrix_,
                            expert_names=expert_names,

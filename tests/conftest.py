@@ -2,7 +2,8 @@
 database dumps, and the large cases file of the crash-safety test.
 
 The small workspaces hold invented cases and experts; they exist to exercise the importers,
-not to check any number.
+not to check any number. ``digits_two_experts`` serves the routers' tests (scikit-learn's
+bundled digits with the simulated expert of Mozannar & Sontag, ICML 2020).
 """
 
 from __future__ import annotations
@@ -151,3 +152,17 @@ def large_cases_csv(tmp_path_factory) -> Path:
     path = tmp_path_factory.mktemp("large") / "cases_200k.csv"
     pacsv.write_csv(pa.table(columns), path)
     return path
+
+
+@pytest.fixture(scope="session")
+def digits_two_experts():
+    """500 digits, the k=5 simulated expert and a half-missing copy of it as a second, fees."""
+    import numpy as np
+
+    from routeplan import simulate
+
+    d = simulate.digits_scenario(5, random_state=0)
+    X, y = d.X[:500], d.y[:500]
+    rng = np.random.default_rng(0)
+    second = np.where(rng.random(500) < 0.5, d.answers[:500, 0], -1)
+    return X, y, np.column_stack([d.answers[:500, 0], second]), np.array([0.05, 0.1])
