@@ -179,27 +179,26 @@ _SCORER = textwrap.dedent("""
 
 
 def bench_score() -> None:
-    """Score 1,000,000 cases in a subprocess; time and peak memory."""
+    """Score 1,000,000 cases in a subprocess, per router; time and peak memory."""
     import json
 
     sc = simulate.make_scenario(5_000, n_features=32, n_classes=10, n_experts=5, random_state=0)
-    router = PluginRouter(max_epochs=3, random_state=0).fit(sc.X, sc.y, sc.answers(1),
-                                                            fees=sc.fees)
-    arrays, meta = router.get_arrays()
-    with tempfile.TemporaryDirectory() as tmp:
-        npz, js = os.path.join(tmp, "w.npz"), os.path.join(tmp, "m.json")
-        np.savez(npz, **arrays)
-        with open(js, "w") as fh:
-            json.dump(meta, fh)
-        out = subprocess.run([sys.executable, "-c", _SCORER, npz, js], check=True,
-                             capture_output=True, text=True)
-    r = json.loads(out.stdout.strip().splitlines()[-1])
-    print(f"\n[2] scoring 1,000,000 x 32 (PluginRouter MLP {router.hidden_}, K=10, M=5), "
-          "fresh process")
-    print(f"  predict_costs + argmin: wall {r['wall']:.2f} s (goal < 5), cpu {r['cpu']:.2f} s; "
-          f"predict_route alone: {r['wall_route']:.2f} s")
-    print(f"  peak RSS {r['peak_mb']:.0f} MB (goal < 1536); before scoring "
-          f"{r['rss_before_mb']:.0f} MB (interpreter, torch and the 128 MB input)")
+    print("\n[2] scoring 1,000,000 x 32 (K=10, M=5), fresh process per router")
+    for name, make in (("PluginRouter", PluginRouter), ("EnsembleRouter (3 plug-ins)", EnsembleRouter)):
+        router = make(max_epochs=3, random_state=0).fit(sc.X, sc.y, sc.answers(1), fees=sc.fees)
+        arrays, meta = router.get_arrays()
+        with tempfile.TemporaryDirectory() as tmp:
+            npz, js = os.path.join(tmp, "w.npz"), os.path.join(tmp, "m.json")
+            np.savez(npz, **arrays)
+            with open(js, "w") as fh:
+                json.dump(meta, fh)
+            out = subprocess.run([sys.executable, "-c", _SCORER, npz, js], check=True,
+                                 capture_output=True, text=True)
+        r = json.loads(out.stdout.strip().splitlines()[-1])
+        print(f"  {name}, MLP {router.hidden_}: predict_costs + argmin wall {r['wall']:.2f} s "
+              f"(goal < 5), cpu {r['cpu']:.2f} s; predict_route alone {r['wall_route']:.2f} s")
+        print(f"  {'':{len(name)}}  peak RSS {r['peak_mb']:.0f} MB (goal < 1536); before scoring "
+              f"{r['rss_before_mb']:.0f} MB (interpreter, torch and the 128 MB input)")
 
 
 def bench_bayes(n_train: int) -> None:

@@ -50,6 +50,11 @@ def _card_use(manifest: Mapping[str, Any]) -> list[str]:
             "the unit of the fees) against each expert's fee and holds each expert's capacity (largest "
             "share of routed cases). It supports people who decide; it is not meant to replace their "
             "judgement where a decision needs a licensed person.")
+    own = manifest["router"].get("class_proba_columns")
+    if own:
+        text += (f" The model that decides is the team's own: each case must also carry its class "
+                 f"probabilities in the columns {', '.join(own)}; the policy learned only whom to defer to. "
+                 "Retraining that model changes what the policy was validated on: fit and freeze again.")
     return ["## Intended use", "", text, ""]
 
 

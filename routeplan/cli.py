@@ -241,6 +241,35 @@ def truth_import(app, file, replace, as_json):
 
 
 @cli.group()
+def scores() -> None:
+    """Bring your own model's class probabilities in, to keep that model (two-stage)."""
+
+
+@scores.command("import")
+@click.argument("file", type=click.Path(path_type=Path))
+@click.option("--replace", is_flag=True, help="Allow changing probabilities that are already stored.")
+@json_option
+@pass_app
+def scores_import(app, file, replace, as_json):
+    """Import your model's class probabilities: columns case_id and proba_<label> per label.
+
+    Once every case with truth has them, 'routeplan fit' keeps your model and learns only
+    the routing (whether your model decides or which expert takes the case); new cases
+    given to 'routeplan route' must then carry the same proba_<label> columns.
+
+    Example:
+
+    \b
+        routeplan scores import our_model.csv
+    """
+    from .ingest import import_scores
+
+    with app.workspace() as ws:
+        result = import_scores(ws, file, replace=replace)
+    _report_imports(app, [result], as_json)
+
+
+@cli.group()
 def experts() -> None:
     """Add experts (annotators, reviewers) with their fee and capacity."""
 
@@ -326,9 +355,12 @@ def answers_import(app, files, strict, as_json):
                    "ova-mlp, plugin-linear, ... "
                    "Default: the standard candidates, keeping the best on validation.")
 @click.option("--max-epochs", type=click.IntRange(1, 10_000), default=None, help="Cap on training epochs.")
+@click.option("--two-stage/--no-two-stage", "two_stage", default=None,
+              help="Keep your own model (probabilities from 'routeplan scores import') and learn only the routing. "
+                   "Default: when every case with truth has imported probabilities.")
 @json_option
 @pass_app
-def fit(app, seed, routers, max_epochs, as_json):
+def fit(app, seed, routers, max_epochs, two_stage, as_json):
     """Fit the classifier and router on the cases with truth and the answers gathered so far.
 
     Fits the candidate routers (a plug-in router: classifier plus per-expert correctness
@@ -336,18 +368,22 @@ def fit(app, seed, routers, max_epochs, as_json):
     clearly better; and joint learners trained with the cost-sensitive deferral
     surrogates), compares them with the baselines (model alone, each expert alone) on
     held-out cases by system cost with 95% intervals, keeps the best, and stores every
-    fitted model as a version.
+    fitted model as a version. With your own model's probabilities imported for every case
+    with truth ('routeplan scores import'), that model is kept and only the routing is
+    learned (two-stage).
 
     Example:
 
     \b
         routeplan fit --seed 1
         routeplan fit --router plugin
+        routeplan fit --two-stage        (after 'routeplan scores import')
     """
     from .fitting import fit_workspace
 
     with app.workspace() as ws:
         report = fit_workspace(ws, routers=tuple(routers) or None, random_state=seed, max_epochs=max_epochs,
+                               two_stage=two_stage,
                                verbose=app.console.is_terminal and not (app.quiet or as_json), console=app.console)
     if as_json:
         app.emit_json(report.to_dict())

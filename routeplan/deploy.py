@@ -50,7 +50,10 @@ __all__ = [
     "route_frame",
 ]
 
-#: Cases scored at once by :func:`route_file` (bounds the memory of the scoring step).
+#: Cases scored at once by :func:`route_file` (bounds the memory of the scoring step). One
+#: router chunk, so chunks are not scored side by side here: with two (131,072) routing
+#: 1,000,000 cases with the averaged router took 10.4 s instead of 12.2 s but peaked at
+#: 1.38 GB instead of 1.20 GB (``benchmarks/bench_route.py``, 2026-12-03), too near 1.5 GB.
 DEFAULT_SCORE_CHUNK = 65_536
 #: The route of a case the model decides (no expert may take this name).
 MODEL_ROUTE = "model"
@@ -78,6 +81,9 @@ class Policy:
     prices : ndarray of shape (M,)
     capacities : ndarray of shape (M,)
         ``inf`` where the manifest says no cap (null).
+    proba_columns : list of str
+        For a router that keeps the team's own model (two-stage), the columns
+        ``proba_<label>`` every case to route must carry; else empty.
     """
 
     manifest: dict
@@ -88,6 +94,12 @@ class Policy:
     experts: list
     prices: np.ndarray
     capacities: np.ndarray
+    proba_columns: list = field(default_factory=list)
+
+    @property
+    def input_columns(self) -> list[str]:
+        """The columns a case must carry: the features, then any ``proba_<label>`` columns."""
+        return list(self.spec.names) + list(self.proba_columns)
 
     @property
     def n_classes(self) -> int:
@@ -146,13 +158,19 @@ class Policy:
                 f"the policy's router expects {sizes[0]} features, {sizes[1]} labels and {sizes[2]} experts, "
                 f"but the manifest lists {d}, {len(manifest['labels'])} and {len(experts)}; freeze it again",
                 source=source)
+        proba_columns: list = []
         if getattr(router, "two_stage_", False):
-            raise InputError("the policy's router needs the team's own class probabilities (two-stage); "
-                             "route cannot score cases with it", source=source)
+            from .ingest import score_columns
+
+            proba_columns = list(router_info.get("class_proba_columns") or [])
+            if proba_columns != score_columns(manifest["labels"]):
+                raise InputError("the policy's router keeps the team's own model, but the manifest does not list "
+                                 "its proba_<label> columns one per label; freeze it again", source=source)
         prices = np.array([float(e["price"]) for e in manifest["experts"]], dtype=np.float64)
         caps = np.array([math.inf if e["capacity"] is None else float(e["capacity"])
                          for e in manifest["experts"]], dtype=np.float64)
-        return cls(manifest, dict(arrays), router, spec, list(manifest["labels"]), experts, prices, caps)
+        return cls(manifest, dict(arrays), router, spec, list(manifest["labels"]), experts, prices, caps,
+                   proba_columns)
 
 
 def load_policy(path: str | os.PathLike) -> Policy:
@@ -208,11 +226,32 @@ def _cost_columns(labels: list, experts: list) -> list[str]:
 # --------------------------------------------------------------------------- scoring
 
 
-def _score(policy: Policy, X: np.ndarray) -> np.ndarray:
-    """Expected cost of every option for raw feature rows, shape (n, K + M)."""
-    if X.shape[0] == 0:
+#: How far a case's imported probabilities may sum from 1 (as ``routeplan scores import``).
+_PROBA_SUM_TOLERANCE = 1e-3
+
+
+def _score(policy: Policy, Z: np.ndarray, ids: Any = None) -> np.ndarray:
+    """Expected cost of every option for raw input rows (:attr:`Policy.input_columns`), (n, K + M).
+
+    For a two-stage policy the trailing ``proba_<label>`` columns are the team's model's
+    probabilities: each row must be non-negative and sum to 1 (within 0.001; renormalised).
+    ``ids`` name the cases in that error (default: their row numbers).
+    """
+    if Z.shape[0] == 0:
         return np.zeros((0, policy.n_classes + len(policy.experts)))
-    return np.asarray(policy.router.predict_costs(policy.spec.transform(X)), dtype=np.float64)
+    d = len(policy.spec.names)
+    X = policy.spec.transform(Z[:, :d])
+    if not policy.proba_columns:
+        return np.asarray(policy.router.predict_costs(X), dtype=np.float64)
+    P = Z[:, d:]
+    sums = P.sum(axis=1)
+    bad = (P < 0).any(axis=1) | (np.abs(sums - 1.0) > _PROBA_SUM_TOLERANCE)
+    if bad.any():
+        at = int(np.argmax(bad))
+        who = f"case {ids[at]!r}" if ids is not None else f"row {at}"
+        raise InputError(f"{who}: the class-probability columns ({', '.join(policy.proba_columns)}) must be "
+                         f"non-negative and sum to 1, not {sums[at]:.6g}")
+    return np.asarray(policy.router.predict_costs(X, class_proba=P / sums[:, None]), dtype=np.float64)
 
 
 def _decisions(policy: Policy, case_ids: Any, costs: np.ndarray, routes: np.ndarray,
@@ -267,7 +306,7 @@ def route_frame(frame: pd.DataFrame, manifest: Mapping[str, Any], arrays: Mappin
         If a column is missing or a feature value is not a finite number.
     """
     policy = policy if policy is not None else Policy.from_parts(manifest, arrays)
-    names = list(policy.spec.names)
+    names = policy.input_columns
     missing = [c for c in [id_column, *names] if c not in frame.columns]
     if missing:
         raise InputError(f"missing column(s) {', '.join(repr(m) for m in missing)}")
@@ -275,7 +314,7 @@ def route_frame(frame: pd.DataFrame, manifest: Mapping[str, Any], arrays: Mappin
         at = int(np.argmax(frame[id_column].isna().to_numpy()))
         raise InputError(f"row {frame.index[at]!r}: column '{id_column}' is empty")
     X = _frame_features(frame, names)
-    costs = _score(policy, X)
+    costs = _score(policy, X, frame.index)
     from .routing import route_with_prices
 
     routes = route_with_prices(costs, policy.prices, policy.n_classes) if len(frame) else np.zeros(0, np.int64)
@@ -415,8 +454,11 @@ def route_file(
     out = Path(out_path)
     check_out_path(out, [Path(policy_path), Path(cases_path)])
     policy = load_policy(policy_path)
-    ids, X = _read_cases(cases_path, id_column, list(policy.spec.names))
-    costs, n_outside = _score_chunks(policy, X, int(chunk_size), console, progress)
+    ids, X = _read_cases(cases_path, id_column, policy.input_columns)
+    try:
+        costs, n_outside = _score_chunks(policy, X, ids, int(chunk_size), console, progress)
+    except InputError as exc:
+        raise InputError(exc.message, source=str(cases_path)) from None
     del X
     if exact:
         routes = route_exact(costs, policy.capacities, policy.n_classes)
@@ -552,17 +594,17 @@ def _arrow_csv(path: Path, keep: list[str], id_column: str) -> Any:
     )
 
 
-def _score_chunks(policy: Policy, X: np.ndarray, chunk_size: int, console: Any,
+def _score_chunks(policy: Policy, X: np.ndarray, ids: Any, chunk_size: int, console: Any,
                   progress: bool) -> tuple[np.ndarray, int]:
     """Score the cases chunk by chunk; also count cases outside the training range."""
-    n = X.shape[0]
+    n, d = X.shape[0], len(policy.spec.names)
     costs = np.empty((n, policy.n_classes + len(policy.experts)), dtype=np.float64)
     n_outside = 0
     with _progress_bar(console, progress, n) as advance:
         for start in range(0, n, chunk_size):
             stop = min(start + chunk_size, n)
-            costs[start:stop] = _score(policy, X[start:stop])
-            n_outside += int(policy.spec.outside_range(X[start:stop]).sum())
+            costs[start:stop] = _score(policy, X[start:stop], ids[start:stop])
+            n_outside += int(policy.spec.outside_range(X[start:stop, :d]).sum())
             advance(stop - start)
     return costs, n_outside
 

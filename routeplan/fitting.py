@@ -78,6 +78,7 @@ def fit_workspace(
     routers: tuple[str, ...] | None = None,
     random_state: int = 0,
     max_epochs: int | None = None,
+    two_stage: bool | None = None,
     verbose: bool = False,
     console: Any = None,
 ) -> FitReport:
@@ -93,6 +94,11 @@ def fit_workspace(
         Seeds the split and every candidate.
     max_epochs : int, optional
         Cap on training epochs (default: the routers' own).
+    two_stage : bool, optional
+        Keep the team's own model (its probabilities from ``routeplan scores import``) and
+        learn only the routing (two-stage learning to defer: Mao, Mohri & Zhong, NeurIPS
+        2023); only plug-in candidates apply. Default: when every case with truth has
+        imported probabilities. True with some of them missing is an error.
     verbose : bool, default=False
         Show progress bars.
     console : rich.console.Console, optional
@@ -121,13 +127,14 @@ def fit_workspace(
                          "(import more with 'routeplan truth import')")
     if len(np.unique(pool.y[mask])) < 2:
         raise InputError("every case with truth has the same label; fitting needs at least two labels")
+    class_proba = _two_stage_proba(pool, mask, two_stage, routers)
     spec = fit_features(pool.X[mask], pool.feature_names)
     X = spec.transform(pool.X[mask])
     y, A = pool.y[mask], pool.answers[mask]
     weights = round_weights(pool, ws.round_details(), mask)
     best, fitted, table = fit_candidates(
         X, y, A, fees=pool.fees, cost_matrix=pool.cost_matrix(), sample_weight=weights,
-        random_state=random_state, names=routers, expert_names=list(pool.experts),
+        random_state=random_state, names=routers, expert_names=list(pool.experts), class_proba=class_proba,
         router_params={"max_epochs": max_epochs} if max_epochs else None, verbose=verbose, console=console,
     )
     ids = pool.case_ids[mask]
@@ -137,6 +144,9 @@ def fit_workspace(
     effective = {name: round(effective_sample_size(weights[:, j][A[:, j] >= 0]), 1)
                  for j, name in enumerate(pool.experts)}
     table.attrs["notes"] = list(table.attrs.get("notes", [])) + uneven_weight_notes(counts, effective)
+    if class_proba is not None:
+        table.attrs["notes"].append("two-stage: your model's imported probabilities are the classifier (temperature-"
+                                    "scaled only); the routers learned whom to defer to")
     metrics = _metrics(table, best, counts, fitted[best], pool, len(selection))
     metrics["effective_answers"] = effective
     model_ids = {}
@@ -156,6 +166,26 @@ def fit_workspace(
                        "cases": int(mask.sum()), "answers": counts})
     return FitReport(best, model_ids, table, list(table.attrs.get("notes", [])), counts,
                      len(training), len(selection), metrics.get("calibration", {}), effective)
+
+
+def _two_stage_proba(pool: Pool, mask: np.ndarray, two_stage: bool | None,
+                     routers: tuple[str, ...] | None) -> np.ndarray | None:
+    """The imported probabilities of the cases with truth when fitting two-stage, else None."""
+    from .learner import CANDIDATES, EnsembleRouter, PluginRouter
+
+    covered = pool.has_scores[mask]
+    if two_stage is None:
+        two_stage = bool(covered.all())
+    if not two_stage:
+        return None
+    if not covered.all():
+        raise InputError(f"{int((~covered).sum())} of the {int(mask.sum())} case(s) with truth have no imported "
+                         "probabilities; import them with 'routeplan scores import', or fit without --two-stage")
+    wrong = [r for r in routers or () if CANDIDATES[r][0] not in (PluginRouter, EnsembleRouter)]
+    if wrong:
+        raise InputError(f"router {wrong[0]!r} learns its own classifier; with your model's probabilities "
+                         "(two-stage) only plugin-ensemble, plugin and plugin-linear apply")
+    return pool.class_proba[mask]
 
 
 def uneven_weight_notes(counts: dict[str, int], effective: dict[str, float], *,
@@ -389,6 +419,12 @@ def held_out_predictions(ws: Workspace, pool: Pool) -> np.ndarray | None:
     trained = set(params.get("training_case_ids", []))
     scored = np.array([cid not in trained for cid in pool.case_ids], dtype=bool)
     pred = np.full(len(pool.case_ids), -1, dtype=np.int64)
+    if getattr(router, "two_stage_", False):
+        # the team's own model decides; temperature scaling keeps its arg-max (Guo et al., ICML 2017)
+        scored &= pool.has_scores
+        if scored.any():
+            pred[scored] = np.argmax(pool.class_proba[scored], axis=1)
+        return pred
     if scored.any():
         proba = router.predict_proba(spec.transform(pool.X[scored]))
         pred[scored] = np.argmax(proba, axis=1)

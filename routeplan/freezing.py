@@ -138,7 +138,8 @@ def freeze_workspace(ws: Any, out: str | os.PathLike, *, card: str | os.PathLike
     Raises
     ------
     InputError
-        No fitted model, a two-stage router, no held-out cases, feature columns changed
+        No fitted model, a two-stage router whose held-out cases lack imported
+        probabilities, no held-out cases, feature columns changed
         since the fit, or an output folder that does not exist.
     """
     from .fitting import load_router
@@ -150,14 +151,15 @@ def freeze_workspace(ws: Any, out: str | os.PathLike, *, card: str | os.PathLike
     for path in (out, card_path):
         check_out_path(path, [])
     model_id, router, params, fit_metrics = load_router(ws, model_id)
-    if getattr(router, "two_stage_", False):
-        raise InputError("the chosen router needs the team's own class probabilities (two-stage); a policy file "
-                         "cannot score new cases with it")
     pool = load_pool(ws)
     frozen = _freeze_parts(router, params, fit_metrics, pool, model_id, confidence)
     arrays, meta = router.get_arrays()
     frozen.manifest["router"] = {"kind": str(params["router"]), "hyperparameters": meta["params"],
                                  "arrays": sorted(arrays), "meta": meta}
+    if getattr(router, "two_stage_", False):
+        from .ingest import score_columns
+
+        frozen.manifest["router"]["class_proba_columns"] = score_columns(params["labels"])
     with ws.transaction():
         sha = write_policy(out, frozen.manifest, arrays)
         from .policy import read_policy
@@ -214,11 +216,12 @@ def _freeze_parts(router: Any, params: dict, fit_metrics: dict, pool: Any, model
         notes.append(f"only {pos.size} held-out cases: the intervals are wide and the normal interval of "
                      "the cost is rough; freeze again after fitting on more cases with truth")
     Xs = spec.transform(pool.X[pos])
-    ec = np.asarray(router.predict_costs(Xs), dtype=np.float64)
+    kw = _imported_proba(router, pool, pos)
+    ec = np.asarray(router.predict_costs(Xs, **kw), dtype=np.float64)
     K = len(params["labels"])
     lp = capacity_lp(ec, caps, K)
     routes = route_with_prices(ec, lp.prices, K, caps, stream_caps=True)
-    metrics, basis = _held_out_metrics(router, Xs, ec, routes, pool, pos, names, fees, confidence)
+    metrics, basis = _held_out_metrics(router, Xs, ec, routes, pool, pos, names, fees, confidence, kw)
     experts = [{"name": n, "fee": float(f), "capacity": None if not math.isfinite(c) else float(min(c, 1.0)),
                 "price": float(p)} for n, f, c, p in zip(names, fees, caps, lp.prices)]
     manifest = {
@@ -276,8 +279,19 @@ def _expert_columns(pool: Any, names: list[str]) -> np.ndarray:
     return A
 
 
+def _imported_proba(router: Any, pool: Any, pos: np.ndarray) -> dict:
+    """``{"class_proba": ...}`` of the cases ``pos`` for a two-stage router, else ``{}``."""
+    if not getattr(router, "two_stage_", False):
+        return {}
+    if not pool.has_scores[pos].all():
+        raise InputError("the chosen router keeps your own model, but some of its held-out cases have no "
+                         "imported probabilities; import them with 'routeplan scores import'")
+    return {"class_proba": pool.class_proba[pos]}
+
+
 def _held_out_metrics(router: Any, Xs: np.ndarray, ec: np.ndarray, routes: np.ndarray, pool: Any,
-                      pos: np.ndarray, names: list[str], fees: np.ndarray, confidence: float) -> tuple[dict, dict]:
+                      pos: np.ndarray, names: list[str], fees: np.ndarray, confidence: float,
+                      kw: dict) -> tuple[dict, dict]:
     """Metrics of a routing on held-out cases, realised where possible, with intervals."""
     from .costs import cost_vectors, expected_cost_vectors, impute_missing_costs
 
@@ -285,8 +299,8 @@ def _held_out_metrics(router: Any, Xs: np.ndarray, ec: np.ndarray, routes: np.nd
     y = pool.y[pos]
     A = _expert_columns(pool, names)[pos]
     C = np.asarray(router.cost_matrix_, dtype=np.float64)
-    q = np.asarray(router.predict_expert_correct(Xs), dtype=np.float64) if M else np.zeros((len(pos), 0))
-    P = np.asarray(router.predict_proba(Xs), dtype=np.float64)
+    q = np.asarray(router.predict_expert_correct(Xs, **kw), dtype=np.float64) if M else np.zeros((len(pos), 0))
+    P = np.asarray(router.predict_proba(Xs, **kw), dtype=np.float64)
     truth = y >= 0
     per_cost = ec.copy()
     right = np.hstack([P, q])

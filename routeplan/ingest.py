@@ -27,6 +27,8 @@ __all__ = [
     "ImportResult",
     "import_cases",
     "import_truth",
+    "import_scores",
+    "SCORE_PREFIX",
     "import_experts",
     "add_expert",
     "import_answers",
@@ -41,7 +43,7 @@ class ImportResult:
     Attributes
     ----------
     kind : str
-        ``cases``, ``truth``, ``experts`` or ``answers``.
+        ``cases``, ``truth``, ``experts``, ``answers`` or ``scores``.
     source : str
         The file (or ``command line``).
     rows : int
@@ -68,7 +70,8 @@ class ImportResult:
         """One line for the terminal."""
         if self.no_op:
             return f"{self.source}: already imported (same bytes); nothing changed"
-        noun = {"cases": "case(s)", "truth": "truth value(s)", "experts": "expert(s)", "answers": "answer(s)"}[self.kind]
+        noun = {"cases": "case(s)", "truth": "truth value(s)", "experts": "expert(s)", "answers": "answer(s)",
+                "scores": "case score row(s)"}[self.kind]
         text = f"{self.source}: {self.added} {noun} added"
         if self.unchanged:
             text += f", {self.unchanged} already stored"
@@ -288,6 +291,89 @@ def import_truth(ws: Workspace, path: str | Path, *, replace: bool = False) -> I
             ws.set_truth(changes)
             ws.log("truth import", {"rows": result.rows, "changed": len(changes)}, input_file=table.source, input_sha256=table.sha256)
     result.added = len(changes)
+    return result
+
+
+# --------------------------------------------------------------------------- imported scores
+
+#: Prefix of the class-probability columns: ``proba_<label>`` (scores files and route inputs).
+SCORE_PREFIX = "proba_"
+#: How far a row's probabilities may sum from 1 before the row is refused.
+_SUM_TOLERANCE = 1e-3
+
+
+def score_columns(labels: Sequence[str]) -> list[str]:
+    """The class-probability column of every label, in label order."""
+    return [SCORE_PREFIX + label for label in labels]
+
+
+def import_scores(ws: Workspace, path: str | Path, *, replace: bool = False) -> ImportResult:
+    """Import the team's own model's class probabilities (two-stage learning to defer).
+
+    The file has ``case_id`` and one column ``proba_<label>`` per label of the workspace
+    (``schemas/scores-row.schema.json``). ``routeplan fit`` then keeps that model and
+    learns only the routing (two-stage learning to defer: Mao, Mohri & Zhong, NeurIPS
+    2023) when every case with truth has scores.
+
+    Parameters
+    ----------
+    ws : Workspace
+    path : str or Path
+    replace : bool, default=False
+        Allow changing probabilities already stored (otherwise a change is an error).
+
+    Returns
+    -------
+    ImportResult
+    """
+    table = read_table(path, text_columns=("case_id",))
+    result = ImportResult("scores", table.source)
+    if ws.seen_input("scores import", table.sha256):
+        result.no_op = True
+        return result
+    wanted = score_columns(ws.labels)
+    columns = list(table.frame.columns)
+    missing = [c for c in wanted if c not in columns]
+    unknown = [c for c in columns if c != "case_id" and c not in wanted]
+    if missing or unknown:
+        problem = (f"missing column(s) {', '.join(map(repr, missing))}" if missing
+                   else f"unknown column(s) {', '.join(map(repr, unknown))}")
+        raise InputError(f"{problem}; a scores file has 'case_id' and one column per label: "
+                         f"{', '.join(map(repr, wanted))}", source=table.source, line=1)
+    parsed = check_rows(table, load_schema("scores-row"))
+    P = np.column_stack([parsed[c] for c in wanted]) if len(table.frame) else np.zeros((0, len(wanted)))
+    sums = P.sum(axis=1)
+    off = np.abs(sums - 1.0) > _SUM_TOLERANCE
+    if off.any():
+        at = int(np.argmax(off))
+        raise table.fail(f"the probabilities of case {table.frame['case_id'].iloc[at]!r} sum to {sums[at]:.6g}, "
+                         f"not 1 (within {_SUM_TOLERANCE:g})", at)
+    dup = _first_duplicate(table.frame["case_id"])
+    if dup is not None:
+        raise table.fail(f"case {table.frame['case_id'].iloc[dup[0]]!r} appears again (first on line "
+                         f"{table.line_of(dup[1])})", dup[0])
+    ids = table.frame["case_id"].tolist()
+    _check_known(table, "case_id", ws.existing_case_ids(ids), "case", "import it with 'routeplan cases import' first")
+    P = P / sums[:, None]
+    stored = ws.score_matrix(ids)
+    had = ~np.isnan(stored).any(axis=1)
+    same = had & np.all(np.abs(stored - P) <= 1e-12, axis=1)
+    changed = had & ~same
+    if changed.any() and not replace:
+        at = int(np.argmax(changed))
+        raise table.fail(f"case {ids[at]!r} already has other imported probabilities (use --replace to change "
+                         "them; the routers fitted on the old ones stay as they are)", at)
+    write = np.flatnonzero(~same)
+    result.rows = len(ids)
+    result.unchanged = int(same.sum())
+    result.notes["replaced"] = int(changed.sum())
+    if write.size:
+        with ws.transaction():
+            ws.set_scores([(ids[i], P[i].astype("<f8").tobytes()) for i in write], source_sha256=table.sha256)
+            ws.log("scores import", {"rows": result.rows, "written": int(write.size),
+                                     "replaced": int(changed.sum())},
+                   input_file=table.source, input_sha256=table.sha256)
+    result.added = int(write.size - changed.sum())
     return result
 
 

@@ -46,6 +46,9 @@ class Pool:
     capacities : ndarray of float, shape (n_experts,)
     feature_names : list of str
     error_cost : float
+    class_proba : ndarray of float, shape (n_cases, n_labels), or None
+        The team's own model's class probabilities (``routeplan scores import``), NaN rows
+        for cases without them; None when none were imported.
     """
 
     case_ids: np.ndarray
@@ -62,6 +65,7 @@ class Pool:
     capacities: np.ndarray
     feature_names: list[str]
     error_cost: float
+    class_proba: np.ndarray | None = None
 
     @property
     def n_classes(self) -> int:
@@ -72,6 +76,13 @@ class Pool:
     def has_truth(self) -> np.ndarray:
         """Boolean mask of cases with known truth."""
         return self.y >= 0
+
+    @property
+    def has_scores(self) -> np.ndarray:
+        """Boolean mask of cases with imported class probabilities."""
+        if self.class_proba is None:
+            return np.zeros(len(self.case_ids), dtype=bool)
+        return ~np.isnan(self.class_proba).any(axis=1)
 
     def answer_counts(self) -> dict[str, int]:
         """Answers per expert."""
@@ -142,4 +153,11 @@ def load_pool(ws: Workspace) -> Pool:
         capacities=np.array([e["capacity"] for e in experts], dtype=float),
         feature_names=ws.feature_columns,
         error_cost=ws.error_cost,
+        class_proba=_scores(ws, frame["case_id"].tolist()),
     )
+
+
+def _scores(ws: Workspace, case_ids: list[str]) -> np.ndarray | None:
+    """Imported class probabilities in pool order, or None when there are none."""
+    scores = ws.score_matrix(case_ids)
+    return None if np.isnan(scores).all() else scores

@@ -28,7 +28,9 @@ def render_status(info: dict) -> Group:
     head.append(f"Labels: {', '.join(info['labels'])}; one wrong decision costs {info['error_cost']:g}\n")
     head.append(
         f"Cases: {cases['total']} ({cases['with_truth']} with truth, {cases['without_truth']} without); "
-        f"{len(info['feature_columns'])} feature column(s)\n"
+        f"{len(info['feature_columns'])} feature column(s)"
+        + (f"; imported model probabilities: {cases['with_imported_scores']}" if cases.get("with_imported_scores") else "")
+        + "\n"
     )
     head.append(f"Answers: {info['answers']['total']} ({info['answers']['historical']} historical); "
                 f"models: {info['models']}; policies: {info['policies']}")

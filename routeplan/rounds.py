@@ -28,8 +28,9 @@ Choices written down here
   feature columns, ``value`` and ``uncertain`` pick only pairs where that router's estimated
   cost of asking the expert is within ``focus_margin`` of its best other option
   (:func:`routeplan.acquisition.router_focus`); the audit stays uniform. The plan names the
-  model. A router that needs imported class probabilities (two-stage) cannot score the
-  candidates here, and the round is planned without focus.
+  model. A router that keeps the team's own model (two-stage) scores the candidates with
+  their imported probabilities; if some candidate has none, the round is planned without
+  focus and says so. The planner's own ``P(y | x)`` above stays the linear model's.
 * The assignments are stored in a seeded random order, so a sheet does not reveal which rows
   are the audit.
 * Closing a round leaves its open assignments unanswered (state ``open`` in a ``closed``
@@ -271,7 +272,7 @@ def plan_round(
     pool, case_ids, experts, X = _pool(ws, include_unverified, int(n_regions), int(seed))
     _check_something_fits(pool, experts, budget)
     focus, focus_model, focus_note = (None, None, None) if focus_margin is None or strategy == "random" else \
-        _router_focus(ws, X, [e["name"] for e in experts], float(focus_margin))
+        _router_focus(ws, X, case_ids, [e["name"] for e in experts], float(focus_margin))
     rng = np.random.default_rng(int(seed))
     sel = select_assignments(pool, budget=float(budget), strategy=strategy, audit_share=float(audit_share),
                              max_per_expert=max_per_expert, focus=focus, random_state=rng)
@@ -352,12 +353,13 @@ def _plan_result(sel: Selection, experts: list[dict], strategy, seed, budget, au
     )
 
 
-def _router_focus(ws: Workspace, X: np.ndarray, experts: list[str], margin: float
+def _router_focus(ws: Workspace, X: np.ndarray, case_ids: list[str], experts: list[str], margin: float
                   ) -> tuple[np.ndarray | None, int | None, str | None]:
     """The kept router's focus on the candidates (features X) and its model id; else why not.
 
     Usable: fitted on the workspace's current labels, experts (same names, same order) and
-    feature columns. Fees and capacities may have changed since; the router's costs use the
+    feature columns, and, for a two-stage router, every candidate has imported
+    probabilities. Fees and capacities may have changed since; the router's costs use the
     fees it was fitted with.
     """
     from .features import FeatureSpec
@@ -373,9 +375,16 @@ def _router_focus(ws: Workspace, X: np.ndarray, experts: list[str], margin: floa
             or list(spec.names) != list(ws.feature_columns)):
         return None, None, (f"planned without focus: the kept model #{model_id} was fitted on other "
                             "experts, labels or features; run 'routeplan fit' again")
+    kw = {}
+    if getattr(router, "two_stage_", False):
+        kw["class_proba"] = ws.score_matrix(case_ids)
+        lacking = int(np.isnan(kw["class_proba"]).any(axis=1).sum())
+        if lacking:
+            return None, None, (f"planned without focus: the kept model #{model_id} keeps your own model, and "
+                                f"{lacking} candidate case(s) have no imported probabilities ('routeplan scores import')")
     try:
-        costs = router.predict_costs(spec.transform(X))
-    except (TypeError, ValueError):  # e.g. a two-stage router that needs imported probabilities
+        costs = router.predict_costs(spec.transform(X), **kw)
+    except (TypeError, ValueError):
         return None, None, f"planned without focus: the kept model #{model_id} cannot score these cases"
     return router_focus(costs, len(ws.labels), margin), int(model_id), None
 

@@ -156,6 +156,18 @@ def _m0001_initial(db: Database) -> None:
         )
 
 
+@migrations(name="0002_imported_scores")
+def _m0002_imported_scores(db: Database) -> None:
+    """Class probabilities of the team's own model per case (two-stage learning to defer)."""
+    db.execute(
+        """CREATE TABLE imported_scores (
+            case_id TEXT PRIMARY KEY REFERENCES cases(case_id),
+            proba BLOB NOT NULL,
+            source_sha256 TEXT NOT NULL,
+            imported_at TEXT NOT NULL)"""
+    )
+
+
 SCHEMA_VERSION = len(migrations._migrations)
 
 
@@ -375,6 +387,30 @@ class Workspace:
         )
         return cursor.rowcount
 
+    def stored_score_ids(self, case_ids: Sequence[str]) -> set[str]:
+        """The subset of ``case_ids`` that already have imported class probabilities."""
+        return self._existing("imported_scores", "case_id", case_ids)
+
+    def set_scores(self, rows: Sequence[tuple[str, bytes]], *, source_sha256: str) -> int:
+        """Store (case_id, float64 probabilities in label order) pairs, replacing earlier ones."""
+        now = _now()
+        cursor = self.db.conn.executemany(
+            "INSERT OR REPLACE INTO imported_scores (case_id, proba, source_sha256, imported_at) VALUES (?, ?, ?, ?)",
+            ((c, blob, source_sha256, now) for c, blob in rows),
+        )
+        return cursor.rowcount
+
+    def score_matrix(self, case_ids: Sequence[str]) -> np.ndarray:
+        """Imported class probabilities of ``case_ids``, shape (n, K); NaN rows where none."""
+        K = len(self.labels)
+        out = np.full((len(case_ids), K), np.nan)
+        where = {c: i for i, c in enumerate(case_ids)}
+        for case_id, blob in self.db.execute("SELECT case_id, proba FROM imported_scores").fetchall():
+            i = where.get(case_id)
+            if i is not None:
+                out[i] = np.frombuffer(blob, dtype="<f8", count=K)
+        return out
+
     def case_frame(self, *, with_features: bool = True):
         """All cases as a DataFrame (case_id, truth, group) and, optionally, the float64 feature matrix.
 
@@ -571,7 +607,8 @@ class Workspace:
             "schema_version": self.schema_version,
             "labels": self.labels,
             "error_cost": self.error_cost,
-            "cases": {"total": n_cases, "with_truth": n_truth, "without_truth": n_cases - n_truth},
+            "cases": {"total": n_cases, "with_truth": n_truth, "without_truth": n_cases - n_truth,
+                      "with_imported_scores": q("SELECT COUNT(*) FROM imported_scores")[0][0]},
             "feature_columns": self.feature_columns,
             "experts": experts,
             "answers": {"total": sum(per_expert.values()), "historical": sum(historical.values())},

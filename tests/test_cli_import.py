@@ -231,7 +231,7 @@ def test_status_json_content(stocked_ws):
     assert info["labels"] == list(LABELS)
     assert info["error_cost"] == 1.0
     assert info["schema_version"] >= 1
-    assert info["cases"] == {"total": 6, "with_truth": 3, "without_truth": 3}
+    assert info["cases"] == {"total": 6, "with_truth": 3, "without_truth": 3, "with_imported_scores": 0}
     assert info["feature_columns"] == ["f1", "f2"]
     assert info["answers"] == {"total": 2, "historical": 2}
     experts = {e["name"]: e for e in info["experts"]}

@@ -114,6 +114,22 @@ def test_fit_restores_torch_threads(small):
     assert torch.get_num_threads() == before
 
 
+def test_scoring_in_parallel_chunks_matches_one_chunk_at_a_time(small):
+    # chunks scored side by side by two threads (routeplan._routerbase._by_chunks) give the
+    # same numbers as scoring each chunk alone, and torch's thread count is restored
+    from routeplan._nets import _CHUNK
+
+    X, y, A, fees = small
+    router = EnsembleRouter(n_members=2, random_state=0, **FAST).fit(X, y, A, fees=fees)
+    big = np.resize(X, (2 * _CHUNK + 17, X.shape[1]))
+    before = torch.get_num_threads()
+    whole = router.predict_costs(big)
+    assert torch.get_num_threads() == before
+    alone = np.vstack([router.predict_costs(big[s:s + _CHUNK]) for s in range(0, len(big), _CHUNK)])
+    np.testing.assert_array_equal(whole, alone)
+    np.testing.assert_array_equal(router.predict_route(big), alone.argmin(axis=1))
+
+
 @pytest.mark.parametrize("make", [PluginRouter, lambda **kw: EnsembleRouter(n_members=2, **kw)])
 def test_two_stage_keeps_imported_model(small, make):
     # two-stage mode (Mao, Mohri & Zhong, NeurIPS 2023): the imported classifier is kept;

@@ -143,3 +143,20 @@ def test_seen_input_and_answer_frame(stocked_ws):
     assert len(answers) == 2
     assert answers["selection_prob"].isna().all()  # historical answers carry no selection probability
     assert not answers["audit"].any()
+
+
+def test_a_schema_1_workspace_is_migrated_forward(stocked_ws):
+    # a workspace written before the imported-scores table existed (schema 1) opens with it
+    # added and nothing else changed; checked through sqlite3 (the reference client)
+    conn = sqlite3.connect(stocked_ws / DB_NAME)
+    conn.execute("DROP TABLE imported_scores")
+    conn.execute("DELETE FROM _sqlite_migrations WHERE name = '0002_imported_scores'")
+    conn.commit()
+    conn.close()
+    cases_before = query(stocked_ws, "SELECT * FROM cases")
+    with Workspace.open(stocked_ws) as ws:
+        assert ws.schema_version == SCHEMA_VERSION == 2
+        assert np.isnan(ws.score_matrix(["c1"])).all()
+    tables = {r[0] for r in query(stocked_ws, "SELECT name FROM sqlite_master WHERE type = 'table'")}
+    assert "imported_scores" in tables
+    assert query(stocked_ws, "SELECT * FROM cases") == cases_before
