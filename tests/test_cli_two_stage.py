@@ -137,6 +137,14 @@ def test_freeze_and_route_need_the_proba_columns(team, tmp_path):
     # where the model decides, the label is the team's model's own prediction (scikit-learn)
     np.testing.assert_array_equal(decisions["label"][by_model].astype(int),
                                   team["own"].predict(team["X"][:300])[by_model])
+    # the pure routing function (for distributed engines) reads the same columns and, with
+    # no capacity binding (the expert's capacity is 1), decides the same
+    from routeplan.deploy import route_frame
+    from routeplan.policy import read_policy
+
+    frame_manifest, arrays = read_policy(policy)
+    by_frame = route_frame(new, frame_manifest, arrays)
+    np.testing.assert_array_equal(by_frame["route"].to_numpy(), decisions["route"].to_numpy())
     # probabilities that do not sum to 1 are refused, naming the file and the case
     new.loc[7, "proba_0"] += 0.5
     new.to_csv(cases, index=False, float_format="%.17g")
