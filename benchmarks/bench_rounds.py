@@ -33,7 +33,8 @@ medians are over 8 seeds (``--seeds``): with one fit and 5 seeds the budget a se
 jumped by a factor of 2 or 4 between runs that differed in nothing that mattered.
 
 Run: ``.venv/bin/python benchmarks/bench_rounds.py [--seeds 8] [--first-seed 0] [--jobs 2] [--fits 2]
-[--planner spread=pairs] [--no-focus]`` (about 8 minutes on a 2-core machine).
+[--planner spread=pairs] [--router n_members=3] [--no-focus]`` (about 8 minutes on a 2-core
+machine).
 """
 
 from __future__ import annotations
@@ -56,25 +57,27 @@ SCENARIOS = {
 
 
 def play(kind: str, seed: int, n_fits: int, weighting: str, planner: dict | None = None,
-         focus_margin: float | None = 0.1) -> dict:
+         focus_margin: float | None = 0.1, router: dict | None = None) -> dict:
     """One rehearsal of every strategy on one scenario and seed (runs in a worker process)."""
     import torch
 
-    from routeplan.rehearse import budget_schedule, digits_experts_scenario, rehearse
+    from routeplan.rehearse import ROUTER_SETTINGS, budget_schedule, digits_experts_scenario, rehearse
 
     torch.set_num_threads(1)
+    router_params = {**ROUTER_SETTINGS, **(router or {})}
     spec = SCENARIOS[kind]
     budgets = budget_schedule(spec["first"], spec["last"], spec["n_rounds"])
     start = time.perf_counter()
     if kind == "synthetic":
         result = rehearse(n_pool=3000, n_eval=5000, budgets=budgets, n_regions=spec["n_regions"],
                           strategies=STRATEGIES, n_router_fits=n_fits, weighting=weighting,
-                          planner_options=planner, focus_margin=focus_margin, random_state=seed)
+                          planner_options=planner, focus_margin=focus_margin, router_params=router_params,
+                          random_state=seed)
     else:
         result = rehearse(digits_experts_scenario(random_state=seed), n_pool=900, budgets=budgets,
                           n_regions=spec["n_regions"], strategies=STRATEGIES, n_router_fits=n_fits,
                           weighting=weighting, planner_options=planner, focus_margin=focus_margin,
-                          random_state=seed)
+                          router_params=router_params, random_state=seed)
     curves = result.curves.assign(budget=np.tile(budgets, len(STRATEGIES)), seed=seed)
     return {"kind": kind, "seed": seed, "curves": curves, "full": result.full_information_cost,
             "bayes": result.bayes_cost, "seconds": time.perf_counter() - start}
@@ -226,8 +229,18 @@ def main() -> None:
     parser.add_argument("--planner", action="append", default=[], metavar="KEY=VALUE",
                         help="A keyword of routeplan.acquisition.select_assignments (repeatable), "
                              "e.g. spread=pairs or min_value_per_fee=2.")
+    parser.add_argument("--router", action="append", default=[], metavar="KEY=VALUE",
+                        help="A setting of the rehearsal's router over routeplan.rehearse.ROUTER_SETTINGS "
+                             "(repeatable), e.g. n_members=3 for the average of three plug-in routers.")
     args = parser.parse_args()
     kinds = [args.only] if args.only else list(SCENARIOS)
+    router = {}
+    for item in args.router:
+        key, _, value = item.partition("=")
+        try:
+            router[key] = int(value) if value.isdigit() else float(value)
+        except ValueError:
+            parser.error(f"--router {item}: not KEY=NUMBER")
     tasks = [(k, s) for k in kinds for s in range(args.first_seed, args.first_seed + args.seeds)]
     planner = {}
     for item in args.planner:
@@ -239,9 +252,10 @@ def main() -> None:
     start = time.perf_counter()
     with ProcessPoolExecutor(max_workers=max(1, args.jobs)) as pool:
         margin = None if args.no_focus else args.focus_margin
-        futures = [pool.submit(play, k, s, args.fits, args.weighting, planner, margin) for k, s in tasks]
+        futures = [pool.submit(play, k, s, args.fits, args.weighting, planner, margin, router) for k, s in tasks]
         runs = [f.result() for f in futures]
     print(f"strategies {', '.join(STRATEGIES)}; weighting {args.weighting}; planner {planner or 'defaults'}; "
+          f"router {router or 'defaults'}; "
           f"focus {'off' if margin is None else f'margin {margin:g}'}; "
           f"{args.fits} router fit(s) per point; "
           f"{len(tasks)} rehearsals in {time.perf_counter() - start:.0f} s wall with {args.jobs} worker(s)")

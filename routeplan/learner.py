@@ -31,10 +31,10 @@ or the validation loss (``early_stopping``; the plug-in's classifier uses its lo
 by default, see :class:`PluginRouter`). Randomness comes only from ``random_state``
 (weights initialised inside ``torch.random.fork_rng``; batches shuffled by a
 ``torch.Generator``); ``fit`` uses at most two CPU threads and restores the previous
-setting afterwards. The routers live in :mod:`routeplan.plugin`, :mod:`routeplan.ensemble`
-and :mod:`routeplan.joint`,
-their shared base in :mod:`routeplan._routerbase`, the networks and the loop in
-:mod:`routeplan._nets`; this module is their public face.
+setting afterwards. The routers live in :mod:`routeplan.plugin`,
+:mod:`routeplan.ensemble` and :mod:`routeplan.joint`, their shared base in
+:mod:`routeplan._routerbase`, the networks and the loop in :mod:`routeplan._nets`; this
+module is their public face.
 
 :func:`routeplan.selection.fit_candidates` fits several routers (:data:`CANDIDATES`) and
 :func:`routeplan.selection.select_router` compares them on held-out cases by system cost

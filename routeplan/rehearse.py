@@ -342,6 +342,18 @@ def scenario_from_workspace(ws: Any, profiles: str | Path, *, random_state: int 
                          random_state=random_state)
 
 
+def _router(params: dict, seed: int) -> Any:
+    """The rehearsal's router from its settings: a plug-in router, or the average of
+    ``n_members`` of them (the ``n_members`` key, default 1)."""
+    from .learner import EnsembleRouter, PluginRouter
+
+    params = dict(params)
+    members = int(params.pop("n_members", 1))
+    if members > 1:
+        return EnsembleRouter(n_members=members, random_state=seed, **params)
+    return PluginRouter(random_state=seed, **params)
+
+
 def _crossfit_proba(X, y, X_eval, K, n_folds, seed, router_params) -> tuple[np.ndarray, np.ndarray]:
     """Out-of-fold P(y | x) on the pool, and the fold models' mean on the held-out cases."""
     from sklearn.model_selection import StratifiedKFold
@@ -352,8 +364,9 @@ def _crossfit_proba(X, y, X_eval, K, n_folds, seed, router_params) -> tuple[np.n
     P = np.zeros((len(y), K))
     P_eval = np.zeros((len(X_eval), K))
     folds = StratifiedKFold(n_splits=n_folds, shuffle=True, random_state=seed).split(X, y)
+    classifier_params = {k: v for k, v in router_params.items() if k != "n_members"}
     for k, (fit_rows, out_rows) in enumerate(folds):
-        clf = PluginRouter(random_state=seed + 1000 * (k + 1), **router_params)
+        clf = PluginRouter(random_state=seed + 1000 * (k + 1), **classifier_params)
         clf.fit(X[fit_rows], y[fit_rows], np.zeros((fit_rows.size, 0), np.int64), fees=np.zeros(0), cost_matrix=C)
         P[out_rows] = clf.predict_proba(X[out_rows])
         P_eval += clf.predict_proba(X_eval) / n_folds
@@ -375,12 +388,11 @@ class _Stage:
     router_params: dict
 
     def fit(self, answers: np.ndarray, weights: np.ndarray | None, seed: int) -> Any:
-        """A two-stage plug-in router fitted on the answers."""
+        """A two-stage plug-in router fitted on the answers (an average of ``n_members`` of
+        them, :class:`routeplan.learner.EnsembleRouter`, when the settings name more than one)."""
         import warnings
 
-        from .learner import PluginRouter
-
-        router = PluginRouter(random_state=seed, **self.router_params)
+        router = _router(self.router_params, seed)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UserWarning)  # "no known answer" early on is expected
             router.fit(self.X, self.y, answers, fees=self.fees, cost_matrix=self.C, sample_weight=weights,

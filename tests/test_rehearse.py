@@ -263,3 +263,19 @@ def test_cli_rehearse_refuses_bad_profiles(tmp_path, digits5, rows, message):
     lines = result.stderr.strip().splitlines()
     assert len(lines) == 1 and "profiles.csv" in lines[0] and message in lines[0], lines
     assert "Traceback" not in result.stderr
+
+
+@pytest.mark.slow
+def test_rehearsal_router_can_be_the_average_of_plug_in_routers():
+    # n_members in the router settings rehearses with the averaged router that `fit` prefers;
+    # its cost is the exact cost of its routes (system_cost_exact), so it cannot beat Bayes
+    # (common textbook fact), and the recorded settings say which router was rehearsed
+    from routeplan.learner import EnsembleRouter, PluginRouter
+    from routeplan.rehearse import _router
+
+    assert isinstance(_router({**TINY_ROUTER, "n_members": 2}, 0), EnsembleRouter)
+    assert isinstance(_router(TINY_ROUTER, 0), PluginRouter)
+    result = rehearse(n_pool=600, n_eval=1500, budgets=[2.0, 5.0], router_params={**TINY_ROUTER, "n_members": 2},
+                      n_folds=2, n_reference_fits=1, strategies=("random",), random_state=3)
+    assert result.settings["router"]["n_members"] == 2
+    assert (result.curves["system_cost"] >= result.bayes_cost - 1e-12).all()
