@@ -241,6 +241,13 @@ def main() -> None:
             router[key] = int(value) if value.isdigit() else float(value)
         except ValueError:
             parser.error(f"--router {item}: not KEY=NUMBER")
+    from routeplan.learner import PluginRouter
+
+    known = set(PluginRouter().get_params()) | {"n_members"}
+    unknown = sorted(set(router) - known)
+    if unknown:
+        parser.error(f"--router {unknown[0]}: not a setting of the plug-in router "
+                     f"(one of {', '.join(sorted(known))})")
     tasks = [(k, s) for k in kinds for s in range(args.first_seed, args.first_seed + args.seeds)]
     planner = {}
     for item in args.planner:

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import contextlib
 import os
+import threading
 import warnings
 from collections.abc import Callable, Iterator, Mapping
 from concurrent.futures import ThreadPoolExecutor
@@ -64,20 +65,39 @@ look strong.
 # --------------------------------------------------------------------------------------
 
 
+def _usable_cpus() -> int:
+    """CPUs this process may run on (its affinity where the platform tells it)."""
+    try:
+        return len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):
+        return os.cpu_count() or 1
+
+
 #: Worker threads that score chunks side by side (at most two: the machines routeplan is
 #: measured on have two cores).
-_SCORE_WORKERS = max(1, min(2, os.cpu_count() or 1))
+_SCORE_WORKERS = max(1, min(2, _usable_cpus()))
+
+# torch's thread count is process-wide: the first scorer in sets it to 1 and the last one out
+# restores it, so that overlapping scorers never leave it at 1.
+_THREADS_LOCK = threading.Lock()
+_threads_state = {"users": 0, "saved": 0}
 
 
 @contextlib.contextmanager
 def _one_torch_thread() -> Iterator[None]:
     """Run torch on one thread inside the block (restored after): the chunks run side by side."""
-    old = torch.get_num_threads()
-    torch.set_num_threads(1)
+    with _THREADS_LOCK:
+        if _threads_state["users"] == 0:
+            _threads_state["saved"] = torch.get_num_threads()
+            torch.set_num_threads(1)
+        _threads_state["users"] += 1
     try:
         yield
     finally:
-        torch.set_num_threads(old)
+        with _THREADS_LOCK:
+            _threads_state["users"] -= 1
+            if _threads_state["users"] == 0:
+                torch.set_num_threads(_threads_state["saved"])
 
 
 def _by_chunks(fn: Callable[[np.ndarray, Any], np.ndarray], X: np.ndarray,

@@ -285,8 +285,8 @@ def route_frame(frame: pd.DataFrame, manifest: Mapping[str, Any], arrays: Mappin
     Parameters
     ----------
     frame : pandas.DataFrame
-        One row per case: ``id_column`` and every feature column the policy names (other
-        columns are ignored).
+        One row per case: ``id_column`` and every feature column the policy names, and for
+        a two-stage policy its ``proba_<label>`` columns (other columns are ignored).
     manifest : mapping
         The policy's manifest (:func:`routeplan.policy.read_policy`).
     arrays : mapping of str to ndarray
@@ -303,7 +303,8 @@ def route_frame(frame: pd.DataFrame, manifest: Mapping[str, Any], arrays: Mappin
     Raises
     ------
     InputError
-        If a column is missing or a feature value is not a finite number.
+        If a column is missing, a feature value is not a finite number, or a case's
+        class probabilities are negative or do not sum to 1.
     """
     policy = policy if policy is not None else Policy.from_parts(manifest, arrays)
     names = policy.input_columns
@@ -314,7 +315,7 @@ def route_frame(frame: pd.DataFrame, manifest: Mapping[str, Any], arrays: Mappin
         at = int(np.argmax(frame[id_column].isna().to_numpy()))
         raise InputError(f"row {frame.index[at]!r}: column '{id_column}' is empty")
     X = _frame_features(frame, names)
-    costs = _score(policy, X, frame.index)
+    costs = _score(policy, X, frame[id_column].astype(str).to_numpy(dtype=object))
     from .routing import route_with_prices
 
     routes = route_with_prices(costs, policy.prices, policy.n_classes) if len(frame) else np.zeros(0, np.int64)

@@ -184,7 +184,8 @@ def _two_stage_proba(pool: Pool, mask: np.ndarray, two_stage: bool | None,
     wrong = [r for r in routers or () if CANDIDATES[r][0] not in (PluginRouter, EnsembleRouter)]
     if wrong:
         raise InputError(f"router {wrong[0]!r} learns its own classifier; with your model's probabilities "
-                         "(two-stage) only plugin-ensemble, plugin and plugin-linear apply")
+                         "(two-stage) only plugin-ensemble, plugin and plugin-linear apply; fit with --no-two-stage "
+                         "to learn a classifier instead")
     return pool.class_proba[mask]
 
 

@@ -328,7 +328,8 @@ def import_scores(ws: Workspace, path: str | Path, *, replace: bool = False) -> 
     """
     table = read_table(path, text_columns=("case_id",))
     result = ImportResult("scores", table.source)
-    if ws.seen_input("scores import", table.sha256):
+    if not replace and ws.seen_input("scores import", table.sha256):
+        # With replace, the same bytes may bring back a file replaced since: store them again.
         result.no_op = True
         return result
     wanted = score_columns(ws.labels)

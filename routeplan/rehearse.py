@@ -349,6 +349,8 @@ def _router(params: dict, seed: int) -> Any:
 
     params = dict(params)
     members = int(params.pop("n_members", 1))
+    if members < 1:
+        raise ValueError(f"n_members must be at least 1, got {members}")
     if members > 1:
         return EnsembleRouter(n_members=members, random_state=seed, **params)
     return PluginRouter(random_state=seed, **params)
@@ -575,7 +577,10 @@ def rehearse(
         Further keywords of :func:`routeplan.acquisition.select_assignments`.
     router_params : dict, optional
         Settings of the plug-in router (default :data:`ROUTER_SETTINGS`); also used for the
-        cross-fitted classifier.
+        cross-fitted classifier. An ``n_members`` key above 1 rehearses with the average of
+        that many plug-in routers (:class:`routeplan.ensemble.EnsembleRouter`); being
+        two-stage, they share the cross-fitted classifier and average only the correctness
+        models.
     weighting : {"none", "stabilized", "recorded"}, default="none"
         Weights of the answers when a router is fitted: none (every answer weighs 1, as
         ``routeplan fit`` weighs answers of rounds planned on predicted classes);

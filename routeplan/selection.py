@@ -233,7 +233,8 @@ def select_router(
                      "is routed to such an expert, its expected cost given the truth (from "
                      "the correctness model of " + _imputer_name(candidates, imputer) +
                      ") stands in for the realised cost; see imputed_share. These costs "
-                     "lean optimistic, most for the router whose model did the imputing")
+                     "lean optimistic, most for the router whose model did the imputing "
+                     "(and for an average of routers that counts it as a member)")
     notes.append(f"{len(cases.y)} validation cases; intervals are {confidence:.0%} normal "
                  "approximations; the winner's cost is slightly optimistic")
     if rule == "significant":

@@ -387,10 +387,6 @@ class Workspace:
         )
         return cursor.rowcount
 
-    def stored_score_ids(self, case_ids: Sequence[str]) -> set[str]:
-        """The subset of ``case_ids`` that already have imported class probabilities."""
-        return self._existing("imported_scores", "case_id", case_ids)
-
     def set_scores(self, rows: Sequence[tuple[str, bytes]], *, source_sha256: str) -> int:
         """Store (case_id, float64 probabilities in label order) pairs, replacing earlier ones."""
         now = _now()

@@ -169,3 +169,10 @@ def test_changing_stored_scores_needs_replace(team, tmp_path):
 
     with Workspace.open(ws) as opened:
         assert opened.score_matrix(["d0001"])[0, 0] == pytest.approx(0.25)
+    # going back to the first file with --replace stores its values again, although the
+    # same bytes were imported before (common practice: an explicit replace is never a no-op)
+    original = pd.read_csv(team["scores"], dtype={"case_id": str}).set_index("case_id")
+    report = json.loads(invoke(ws, "scores", "import", team["scores"], "--replace", "--json").stdout)[0]
+    assert report["notes"]["replaced"] == 1
+    with Workspace.open(ws) as opened:
+        assert opened.score_matrix(["d0001"])[0, 0] == pytest.approx(original.loc["d0001", "proba_0"])

@@ -267,7 +267,8 @@ def test_cli_rehearse_refuses_bad_profiles(tmp_path, digits5, rows, message):
 
 @pytest.mark.slow
 def test_rehearsal_router_can_be_the_average_of_plug_in_routers():
-    # n_members in the router settings rehearses with the averaged router that `fit` prefers;
+    # n_members in the router settings rehearses with an average of plug-in routers (two-stage:
+    # one cross-fitted classifier, averaged correctness models);
     # its cost is the exact cost of its routes (system_cost_exact), so it cannot beat Bayes
     # (common textbook fact), and the recorded settings say which router was rehearsed
     from routeplan.learner import EnsembleRouter, PluginRouter
