@@ -418,8 +418,8 @@ def test_synthetic_all_answers_near_bayes():
 
 @pytest.mark.slow
 def test_synthetic_all_answers_averaged_router_within_goal():
-    # As above, for the average of three plug-in routers (routeplan.ensemble; the issue's
-    # goal is 0.01 with 20,000 training cases). Measured (benchmarks/probe_ensemble.py,
+    # As above, for the average of three plug-in routers (routeplan.ensemble; the goal in the
+    # README's "Measured figures" is 0.01 with 20,000 training cases). Measured (benchmarks/probe_ensemble.py,
     # router seeds 0-5): +0.0099, +0.0085, +0.0087, +0.0090, +0.0087, +0.0094, each below
     # its best member. Seed 1 is checked here; seed 0 sits too close to 0.01 for a bound.
     sc = simulate.make_scenario(30_000, random_state=0)
