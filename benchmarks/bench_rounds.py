@@ -241,9 +241,9 @@ def main() -> None:
             router[key] = int(value) if value.isdigit() else float(value)
         except ValueError:
             parser.error(f"--router {item}: not KEY=NUMBER")
-    from routeplan.learner import PluginRouter
+    from routeplan.learner import EnsembleRouter
 
-    known = set(PluginRouter().get_params()) | {"n_members"}
+    known = set(EnsembleRouter().get_params())  # the plug-in router's settings and n_members
     unknown = sorted(set(router) - known)
     if unknown:
         parser.error(f"--router {unknown[0]}: not a setting of the plug-in router "

@@ -315,11 +315,11 @@ def route_frame(frame: pd.DataFrame, manifest: Mapping[str, Any], arrays: Mappin
         at = int(np.argmax(frame[id_column].isna().to_numpy()))
         raise InputError(f"row {frame.index[at]!r}: column '{id_column}' is empty")
     X = _frame_features(frame, names)
-    costs = _score(policy, X, frame[id_column].astype(str).to_numpy(dtype=object))
+    ids = frame[id_column].astype(str).to_numpy(dtype=object)
+    costs = _score(policy, X, ids)
     from .routing import route_with_prices
 
     routes = route_with_prices(costs, policy.prices, policy.n_classes) if len(frame) else np.zeros(0, np.int64)
-    ids = frame[id_column].astype(str).to_numpy(dtype=object) if len(frame) else np.zeros(0, dtype=object)
     return _decisions(policy, ids, costs, routes, index=frame.index)
 
 

@@ -348,12 +348,10 @@ def _router(params: dict, seed: int) -> Any:
     from .learner import EnsembleRouter, PluginRouter
 
     params = dict(params)
-    members = int(params.pop("n_members", 1))
-    if members < 1:
-        raise ValueError(f"n_members must be at least 1, got {members}")
-    if members > 1:
-        return EnsembleRouter(n_members=members, random_state=seed, **params)
-    return PluginRouter(random_state=seed, **params)
+    members = params.pop("n_members", 1)
+    if members == 1:
+        return PluginRouter(random_state=seed, **params)
+    return EnsembleRouter(n_members=members, random_state=seed, **params)  # validates n_members
 
 
 def _crossfit_proba(X, y, X_eval, K, n_folds, seed, router_params) -> tuple[np.ndarray, np.ndarray]:
