@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import contextlib
 import math
+import threading
 import warnings
 from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass
@@ -104,6 +105,17 @@ class _LoopSettings:
     patience: int
     verbose: bool
     console: Any
+    #: A rich Progress already running (two networks trained side by side share one);
+    #: None: the loop opens its own.
+    progress: Any = None
+    #: Set by the thread that waits for this loop when it fails or is interrupted: the loop
+    #: then stops after the epoch it is in (its result is thrown away).
+    cancel: threading.Event | None = None
+
+
+def _child_generator(gen: torch.Generator) -> torch.Generator:
+    """A new torch Generator seeded from ``gen``: a second, independent batch order."""
+    return torch.Generator().manual_seed(int(torch.randint(0, 2**62, (1,), generator=gen)))
 
 
 def _progress(settings: _LoopSettings) -> Any:
@@ -148,7 +160,8 @@ def _train_loop(
     batch_size = _effective_batch(n, settings.batch_size)
     history: list[tuple[float, float]] = []
     best, best_state, stale = (math.inf, math.inf), None, 0
-    with _progress(settings) as progress:
+    shared = settings.progress
+    with contextlib.nullcontext(shared) if shared is not None else _progress(settings) as progress:
         task = progress.add_task(description, total=settings.max_epochs, status="")
         for _ in range(settings.max_epochs):
             net.train()
@@ -171,8 +184,9 @@ def _train_loop(
                 best_state = {k: v.detach().clone() for k, v in net.state_dict().items()}
             else:
                 stale += 1
-            progress.update(task, advance=1, status=f"validation cost {score[0]:.4f}")
-            if stale >= settings.patience:
+            progress.update(task, advance=1, status=f"validation score {score[0]:.4f}")
+            if stale >= settings.patience or (settings.cancel is not None
+                                               and settings.cancel.is_set()):
                 break
     if best_state is not None:
         net.load_state_dict(best_state)

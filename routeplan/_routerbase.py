@@ -76,6 +76,9 @@ def _usable_cpus() -> int:
 #: Worker threads that score chunks side by side (at most two: the machines routeplan is
 #: measured on have two cores).
 _SCORE_WORKERS = max(1, min(2, _usable_cpus()))
+#: Networks a fit may train side by side, each with torch on one thread (see
+#: ``PluginRouter._fit_both``).
+_FIT_WORKERS = _SCORE_WORKERS
 
 # torch's thread count is process-wide: the first scorer in sets it to 1 and the last one out
 # restores it, so that overlapping scorers never leave it at 1.
@@ -425,11 +428,25 @@ class _BaseRouter(BaseEstimator):
 
     # ---- correctness model (shared by every router) ----------------------------------
 
-    def _fit_correctness(self, train: _Part, val: _Part, gen: torch.Generator) -> None:
-        """Fit P(expert j right | x) on the known answers, IPS-weighted; Platt on validation."""
-        M, d = self.n_experts_, self.n_features_in_
-        head = self.correctness_head or self.head
-        net = _make_net(d, M, head, self.hidden_)
+    def _correctness_net(self) -> nn.Module:
+        """A fresh correctness network (weights drawn from torch's global generator)."""
+        return _make_net(self.n_features_in_, self.n_experts_,
+                         self.correctness_head or self.head, self.hidden_)
+
+    def _fit_correctness(self, train: _Part, val: _Part, gen: torch.Generator, *,
+                         net: nn.Module | None = None, progress: Any = None,
+                         cancel: threading.Event | None = None) -> None:
+        """Fit P(expert j right | x) on the known answers, IPS-weighted; Platt on validation.
+
+        ``net`` is a network from :meth:`_correctness_net` (default: a new one),
+        ``progress`` a running rich Progress to report in (default: its own) and
+        ``cancel`` an event that stops training after the current epoch. It reads
+        ``train``, ``val`` and ``gen`` and writes only ``correctness_net_``,
+        ``expert_platt_``, ``history_["correctness"]`` and ``calibration_["experts"]``, so
+        it may run in a thread beside the classifier's training.
+        """
+        M = self.n_experts_
+        net = self._correctness_net() if net is None else net
         self.correctness_net_ = net
         self.expert_platt_ = np.tile([1.0, 0.0], (M, 1))
         if M == 0:
@@ -453,6 +470,7 @@ class _BaseRouter(BaseEstimator):
         Xv = self._std(val.X)
         v_t, v_w = torch.from_numpy(v_right), torch.from_numpy(val.weights.astype(np.float32))
         settings = self._settings()
+        settings.progress, settings.cancel = progress, cancel
         if not v_known.any():
             warnings.warn("no known answer in the validation split: the correctness model "
                           "trains for a fixed 20 epochs", stacklevel=3)
@@ -666,7 +684,7 @@ _COMMON_PARAMS_DOC = """
     early_stopping : {"cost", "loss"} or None
         Validation score that picks the epoch of the classifier / scorer: the system
         cost of the routing (ties broken by the loss), or the loss (log-loss of the
-        classifier, surrogate loss of the scorer; ties broken by the cost). The
+        classifier, surrogate loss of the scorer; the scorer's ties broken by the cost). The
         correctness model always stops on its validation log-loss. Default "loss" for
         :class:`PluginRouter` (its classifier must give calibrated probabilities, and
         the log-loss is a far less noisy signal than the routed cost: on the synthetic

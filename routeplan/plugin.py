@@ -2,7 +2,10 @@
 
 from __future__ import annotations
 
+import contextlib
+import threading
 from collections.abc import Mapping
+from concurrent.futures import ThreadPoolExecutor
 from typing import Any
 
 import numpy as np
@@ -14,8 +17,17 @@ from torch import nn
 
 from routeplan import calibration as cal
 from routeplan import costs as costs_mod
-from routeplan._nets import _forward, _load_net, _make_net, _train_loop
+from routeplan._nets import (
+    _child_generator,
+    _forward,
+    _load_net,
+    _LoopSettings,
+    _make_net,
+    _progress,
+    _train_loop,
+)
 from routeplan._routerbase import (
+    _FIT_WORKERS,
     CALIBRATION_PRIOR,
     _COMMON_PARAMS_DOC,
     _EPS,
@@ -26,6 +38,7 @@ from routeplan._routerbase import (
     _init_common,
     _logit,
     _onehot,
+    _one_torch_thread,
     _Part,
     realised_costs,
 )
@@ -95,9 +108,11 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
     has), only the routing is learned: two-stage learning to defer (Mao, Mohri & Zhong,
     "Two-Stage Learning to Defer with Multiple Experts", NeurIPS 2023).
 
-    The classifier is early-stopped on the validation system cost of the full routing
-    (correctness model fixed, temperature refitted each epoch when ``calibrate``), ties
-    broken by validation log-loss. Class probabilities are temperature-scaled and
+    The classifier is early-stopped on its validation log-loss (after temperature
+    scaling, refitted each epoch when ``calibrate``), and then trains side by side with
+    the correctness model; with ``early_stopping="cost"`` it is stopped on the validation
+    system cost of the full routing instead (correctness model fitted first and fixed),
+    ties broken by the log-loss. Class probabilities are temperature-scaled and
     correctness probabilities Platt-scaled on the validation split
     (:mod:`routeplan.calibration`).
 
@@ -160,17 +175,14 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
         Returns""")
 
     def _fit_parts(self, train: _Part, val: _Part, gen: torch.Generator) -> None:
-        """Correctness model first, then the classifier against the routed cost."""
+        """Correctness model and classifier (side by side, see below); then calibration."""
         self.calibration_ = {}
-        self._fit_correctness(train, val, gen)
-        q_val = self._correct_proba(val.X)
-        c_val = (val.costs if not np.isnan(val.costs).any() else
-                 costs_mod.impute_missing_costs(val.costs, self._imputed(val, q_val)))
         if self.two_stage_:
+            self._fit_correctness(train, val, gen)
             self.classifier_net_ = None
             Z = np.log(np.clip(val.class_proba, _EPS, 1.0))
         else:
-            self.classifier_net_ = self._train_classifier(train, val, q_val, c_val, gen)
+            self.classifier_net_ = self._fit_both(train, val, gen)
             Z = _forward(self.classifier_net_, val.X, self.x_mean_, self.x_scale_)
         self.class_temperature_ = cal.fit_temperature(Z, val.y) if self.calibrate else 1.0
         P_val = cal.apply_temperature(Z, self.class_temperature_)
@@ -203,12 +215,55 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
             rep.update({"stack": coef.tolist(), "ece_stacked": cal.expected_calibration_error(
                 cal.apply_stack(feats, coef), t)})
 
-    def _train_classifier(self, train: _Part, val: _Part, q_val: np.ndarray, c_val: np.ndarray,
-                          gen: torch.Generator) -> nn.Module:
-        """Cross-entropy classifier, early-stopped on the plug-in routing's validation cost."""
-        net = _make_net(self.n_features_in_, self.n_classes_, self.head, self.hidden_)
+    def _fit_both(self, train: _Part, val: _Part, gen: torch.Generator) -> nn.Module:
+        """Fit the correctness model and the classifier; return the classifier.
+
+        Stopped on its log-loss (``early_stopping="loss"``, the default), the classifier
+        does not depend on the correctness model, so the two train side by side in two
+        threads with torch on one thread each where two CPUs are usable. The weights are
+        drawn first and each network shuffles with its own generator, so the result is
+        the same either way (tested). If the classifier's training fails or is
+        interrupted, the correctness model's stops after its current epoch. Stopped on the
+        routed cost, the classifier needs the fitted correctness model and trains after it.
+        """
+        by_cost = self.early_stopping == "cost"
+        # with no expert there is no second network: the classifier keeps the batch order
+        # it had before networks trained side by side (rehearsals' cross-fitted classifiers)
+        clf_gen = _child_generator(gen) if self.n_experts_ > 0 else gen
+        corr_net = self._correctness_net()
+        clf_net = _make_net(self.n_features_in_, self.n_classes_, self.head, self.hidden_)
+        side_by_side = not by_cost and self.n_experts_ > 0 and _FIT_WORKERS > 1
+        settings = self._settings()
+        with contextlib.ExitStack() as stack:
+            settings.progress = stack.enter_context(_progress(settings))
+            if side_by_side:
+                stack.enter_context(_one_torch_thread())
+                pool = stack.enter_context(ThreadPoolExecutor(1))
+                cancel = threading.Event()
+                done = pool.submit(self._fit_correctness, train, val, gen, net=corr_net,
+                                   progress=settings.progress, cancel=cancel)
+                try:
+                    self._train_classifier(clf_net, train, val, None, settings, clf_gen)
+                except BaseException:
+                    cancel.set()  # do not keep the caller waiting for the other network
+                    raise
+                done.result()
+            else:
+                self._fit_correctness(train, val, gen, net=corr_net, progress=settings.progress)
+                q_val = self._correct_proba(val.X) if by_cost else None
+                self._train_classifier(clf_net, train, val, q_val, settings, clf_gen)
+        return clf_net
+
+    def _train_classifier(self, net: nn.Module, train: _Part, val: _Part,
+                          q_val: np.ndarray | None, settings: _LoopSettings,
+                          gen: torch.Generator) -> None:
+        """Cross-entropy classifier, early-stopped on its validation log-loss, or on the
+        plug-in routing's validation cost given ``q_val`` (the fitted P(expert right))."""
         tensors = (self._std(train.X), torch.from_numpy(train.y))
         Xv, rows = self._std(val.X), np.arange(val.y.shape[0])
+        if q_val is not None:
+            c_val = (val.costs if not np.isnan(val.costs).any() else
+                     costs_mod.impute_missing_costs(val.costs, self._imputed(val, q_val)))
 
         def loss_fn(m: nn.Module, xb: torch.Tensor, yb: torch.Tensor) -> torch.Tensor:
             return F.cross_entropy(m(xb), yb)
@@ -217,16 +272,15 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
             Z = m(Xv).numpy().astype(np.float64)
             T = cal.fit_temperature(Z, val.y) if self.calibrate else 1.0
             P = cal.apply_temperature(Z, T)
+            nll = float(-np.log(P[rows, val.y] + _EPS).mean())
+            if q_val is None:
+                return (nll, 0.0)
             ec = costs_mod.expected_cost_vectors(P, q_val, cost_matrix=self.cost_matrix_,
                                                  fees=self.fees_)
-            cost = realised_costs(c_val, ec.argmin(axis=1)).mean()
-            nll = float(-np.log(P[rows, val.y] + _EPS).mean())
-            return ((nll, float(cost)) if self.early_stopping in ("loss", None)
-                    else (float(cost), nll))
+            return (float(realised_costs(c_val, ec.argmin(axis=1)).mean()), nll)
 
-        self.history_["classifier"] = _train_loop(net, loss_fn, tensors, val_score,
-                                                  self._settings(), gen, "classifier")
-        return net
+        self.history_["classifier"] = _train_loop(net, loss_fn, tensors, val_score, settings,
+                                                  gen, "classifier")
 
     def _proba_kw(self, part: _Part) -> dict[str, Any]:
         """Pass the imported probabilities in two-stage mode."""

@@ -133,6 +133,64 @@ def test_scoring_in_parallel_chunks_matches_one_chunk_at_a_time(small, monkeypat
     np.testing.assert_array_equal(router.predict_route(big), whole.argmin(axis=1))
 
 
+@pytest.mark.parametrize("answers", ["full", "half_missing"])
+def test_side_by_side_fit_matches_one_network_after_the_other(small, monkeypatch, answers):
+    # the plug-in's classifier and correctness model train in two threads
+    # (PluginRouter._fit_both); each draws its weights before and shuffles with its own
+    # generator, so the fit equals the one-after-the-other fit bit for bit (common practice:
+    # parallel training must not change a seeded result), and torch's threads are restored
+    from routeplan import plugin
+
+    X, y, A, fees = small
+    if answers == "half_missing":
+        A = np.where(np.random.default_rng(1).random(A.shape) < 0.5, -1, A)
+    kw = {"random_state": 3, "max_epochs": 4, "hidden": (16,), "patience": 2}
+    before = torch.get_num_threads()
+    monkeypatch.setattr(plugin, "_FIT_WORKERS", 2)
+    together = PluginRouter(verbose=True, **kw).fit(X, y, A, fees=fees)  # one shared progress
+    assert torch.get_num_threads() == before
+    monkeypatch.setattr(plugin, "_FIT_WORKERS", 1)
+    apart = PluginRouter(**kw).fit(X, y, A, fees=fees)
+    a, b = together.get_arrays()[0], apart.get_arrays()[0]
+    assert a.keys() == b.keys()
+    for key in a:
+        np.testing.assert_array_equal(a[key], b[key], err_msg=key)
+    assert together.history_ == apart.history_
+    np.testing.assert_array_equal(together.predict_costs(X), apart.predict_costs(X))
+
+
+def test_side_by_side_fit_stops_the_other_network_when_one_fails(small, monkeypatch):
+    # if the classifier's training fails (or Ctrl-C), fit raises at once and the correctness
+    # network stops after the epoch it is in, instead of training on to max_epochs
+    # (common practice: an interrupted command must not keep working in the background)
+    from routeplan import plugin
+
+    def broken(self, *args, **kwargs):
+        raise RuntimeError("classifier failed")
+
+    monkeypatch.setattr(plugin, "_FIT_WORKERS", 2)
+    monkeypatch.setattr(PluginRouter, "_train_classifier", broken)
+    X, y, A, fees = small
+    router = PluginRouter(random_state=0, max_epochs=500, patience=10**6, hidden=(16,))
+    with pytest.raises(RuntimeError, match="classifier failed"):
+        router.fit(X, y, A, fees=fees)
+    assert 1 <= len(router.history_["correctness"]) <= 3
+
+
+def test_plugin_stopped_on_cost_fits_the_correctness_model_first(small):
+    # early_stopping="cost": the classifier's epoch is chosen by the validation cost of the
+    # routing, which needs the fitted correctness model (project design); the score per
+    # epoch is (cost, log-loss), and the cost is a mean of costs in [0, 1 + max fee]
+    X, y, A, fees = small
+    router = PluginRouter(early_stopping="cost", random_state=0, **FAST).fit(X, y, A, fees=fees)
+    primary = np.array([h[0] for h in router.history_["classifier"]])
+    tie = np.array([h[1] for h in router.history_["classifier"]])
+    assert np.all((primary >= 0) & (primary <= 1 + max(fees)))
+    assert np.all(tie > 0)  # a log-loss, not the 0.0 of the "loss" mode
+    loss_mode = PluginRouter(random_state=0, **FAST).fit(X, y, A, fees=fees)
+    assert all(h[1] == 0.0 for h in loss_mode.history_["classifier"])
+
+
 def test_overlapping_scorers_restore_torch_threads():
     # torch's thread count is process-wide: overlapping one-thread blocks (two scorers at once)
     # must restore it when the last one leaves, whatever order they leave in (common practice)
