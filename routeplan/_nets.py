@@ -108,8 +108,8 @@ class _LoopSettings:
     #: A rich Progress already running (two networks trained side by side share one);
     #: None: the loop opens its own.
     progress: Any = None
-    #: Set by the thread that waits for this loop when it fails or is interrupted: the loop
-    #: then stops after the epoch it is in (its result is thrown away).
+    #: Set when the network trained beside this one fails or is interrupted: the loop then
+    #: stops after the epoch it is in (and ``fit`` raises the other side's error).
     cancel: threading.Event | None = None
 
 

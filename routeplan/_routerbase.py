@@ -435,12 +435,13 @@ class _BaseRouter(BaseEstimator):
 
     def _fit_correctness(self, train: _Part, val: _Part, gen: torch.Generator, *,
                          net: nn.Module | None = None, progress: Any = None,
-                         cancel: threading.Event | None = None) -> None:
+                         cancel: threading.Event | None = None, warn: bool = True) -> None:
         """Fit P(expert j right | x) on the known answers, IPS-weighted; Platt on validation.
 
         ``net`` is a network from :meth:`_correctness_net` (default: a new one),
         ``progress`` a running rich Progress to report in (default: its own) and
-        ``cancel`` an event that stops training after the current epoch. It reads
+        ``cancel`` an event that stops training after the current epoch; ``warn=False``
+        when the caller gave :meth:`_correctness_warnings` already. It reads
         ``train``, ``val`` and ``gen`` and writes only ``correctness_net_``,
         ``expert_platt_``, ``history_["correctness"]`` and ``calibration_["experts"]``, so
         it may run in a thread beside the classifier's training.
@@ -457,9 +458,8 @@ class _BaseRouter(BaseEstimator):
         prior = (right.sum(0) + 1.0) / (known.sum(0) + 2.0)
         with torch.no_grad():
             net[-1].bias.copy_(torch.from_numpy(_logit(prior).astype(np.float32)))
-        if np.any(known.sum(0) == 0):
-            warnings.warn("some expert has no known answer in the training split; its "
-                          "correctness stays at the prior 0.5", stacklevel=3)
+        if warn:
+            self._correctness_warnings(train, val)
         rows = known.any(axis=1)
         if not rows.any():
             return
@@ -472,8 +472,6 @@ class _BaseRouter(BaseEstimator):
         settings = self._settings()
         settings.progress, settings.cancel = progress, cancel
         if not v_known.any():
-            warnings.warn("no known answer in the validation split: the correctness model "
-                          "trains for a fixed 20 epochs", stacklevel=3)
             settings.max_epochs, settings.patience = min(20, settings.max_epochs), 10**9
 
         def loss_fn(m: nn.Module, xb: torch.Tensor, tb: torch.Tensor, wb: torch.Tensor):
@@ -490,6 +488,16 @@ class _BaseRouter(BaseEstimator):
                                                    gen, "expert correctness")
         if self.calibrate:
             self._calibrate_correctness(val)
+
+    def _correctness_warnings(self, train: _Part, val: _Part) -> None:
+        """Warn where the answers leave the correctness model without data."""
+        known = train.known
+        if np.any(known.sum(0) == 0):
+            warnings.warn("some expert has no known answer in the training split; its "
+                          "correctness stays at the prior 0.5", stacklevel=4)
+        if known.any() and not val.known.any():
+            warnings.warn("no known answer in the validation split: the correctness model "
+                          "trains for a fixed 20 epochs", stacklevel=4)
 
     def _calibrate_correctness(self, val: _Part) -> None:
         """Platt scaling per expert on the validation answers that are known."""

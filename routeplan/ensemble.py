@@ -10,6 +10,7 @@ from numpy.typing import ArrayLike
 from sklearn.base import BaseEstimator
 from sklearn.utils.validation import check_is_fitted
 
+from routeplan import calibration as cal
 from routeplan._routerbase import (
     ARRAYS_FORMAT,
     CALIBRATION_PRIOR,
@@ -164,8 +165,12 @@ class EnsembleRouter(ExpectedCostRouting, BaseEstimator):
         class_proba : array-like of shape (n, K), optional
             Required in two-stage mode.
         """
-        return _by_chunks(lambda xs, ps: self._proba_and_correct(xs, ps)[0], self._check_X(X),
-                          class_proba)
+        def proba(xs: np.ndarray, ps: np.ndarray | None) -> np.ndarray:
+            # the class probabilities alone: no correctness network to run
+            return sum(cal.apply_temperature(m._class_logits(xs, ps), m.class_temperature_)
+                       for m in self.members_) / len(self.members_)
+
+        return _by_chunks(proba, self._check_X(X), class_proba)
 
     def predict_expert_correct(self, X: ArrayLike, *, class_proba: ArrayLike | None = None
                                ) -> np.ndarray:

@@ -109,8 +109,9 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
     "Two-Stage Learning to Defer with Multiple Experts", NeurIPS 2023).
 
     The classifier is early-stopped on its validation log-loss (after temperature
-    scaling, refitted each epoch when ``calibrate``), and then trains side by side with
-    the correctness model; with ``early_stopping="cost"`` it is stopped on the validation
+    scaling, refitted each epoch when ``calibrate``); it then does not depend on the
+    correctness model, and the two train at the same time in two threads. With
+    ``early_stopping="cost"`` it is stopped on the validation
     system cost of the full routing instead (correctness model fitted first and fixed),
     ties broken by the log-loss. Class probabilities are temperature-scaled and
     correctness probabilities Platt-scaled on the validation split
@@ -166,7 +167,7 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
                          answers_val=answers_val, sample_weight_val=sample_weight_val,
                          class_proba=class_proba, class_proba_val=class_proba_val)
 
-    fit.__doc__ = """Fit the correctness model, then the classifier (unless two-stage).
+    fit.__doc__ = """Fit the correctness model and the classifier (unless two-stage); calibrate.
 """ + _FIT_DOC.replace("        Returns", """\
         class_proba, class_proba_val : array-like of shape (n, K), optional
             Two-stage mode: probabilities of the team's own model; only routing is learned
@@ -222,9 +223,9 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
         does not depend on the correctness model, so the two train side by side in two
         threads with torch on one thread each where two CPUs are usable. The weights are
         drawn first and each network shuffles with its own generator, so the result is
-        the same either way (tested). If the classifier's training fails or is
-        interrupted, the correctness model's stops after its current epoch. Stopped on the
-        routed cost, the classifier needs the fitted correctness model and trains after it.
+        the same either way (tested). If either training fails or is interrupted, the
+        other stops after its current epoch and ``fit`` raises. Stopped on the routed
+        cost, the classifier needs the fitted correctness model and trains after it.
         """
         by_cost = self.early_stopping == "cost"
         # with no expert there is no second network: the classifier keeps the batch order
@@ -232,26 +233,35 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
         clf_gen = _child_generator(gen) if self.n_experts_ > 0 else gen
         corr_net = self._correctness_net()
         clf_net = _make_net(self.n_features_in_, self.n_classes_, self.head, self.hidden_)
-        side_by_side = not by_cost and self.n_experts_ > 0 and _FIT_WORKERS > 1
         settings = self._settings()
+        self.history_.update(correctness=[], classifier=[])  # the same key order either way
         with contextlib.ExitStack() as stack:
             settings.progress = stack.enter_context(_progress(settings))
-            if side_by_side:
-                stack.enter_context(_one_torch_thread())
-                pool = stack.enter_context(ThreadPoolExecutor(1))
-                cancel = threading.Event()
-                done = pool.submit(self._fit_correctness, train, val, gen, net=corr_net,
-                                   progress=settings.progress, cancel=cancel)
-                try:
-                    self._train_classifier(clf_net, train, val, None, settings, clf_gen)
-                except BaseException:
-                    cancel.set()  # do not keep the caller waiting for the other network
-                    raise
-                done.result()
-            else:
+            if by_cost or self.n_experts_ == 0:
                 self._fit_correctness(train, val, gen, net=corr_net, progress=settings.progress)
                 q_val = self._correct_proba(val.X) if by_cost else None
                 self._train_classifier(clf_net, train, val, q_val, settings, clf_gen)
+                return clf_net
+            # one torch thread per network whether or not they overlap: same arithmetic
+            stack.enter_context(_one_torch_thread())
+            self._correctness_warnings(train, val)  # from this thread, not the worker
+            if _FIT_WORKERS < 2:
+                self._fit_correctness(train, val, gen, net=corr_net, progress=settings.progress,
+                                      warn=False)
+                self._train_classifier(clf_net, train, val, None, settings, clf_gen)
+                return clf_net
+            pool = stack.enter_context(ThreadPoolExecutor(1))
+            stop_correctness, settings.cancel = threading.Event(), threading.Event()
+            done = pool.submit(self._fit_correctness, train, val, gen, net=corr_net,
+                               progress=settings.progress, cancel=stop_correctness, warn=False)
+            # a failing correctness fit stops the classifier after its current epoch
+            done.add_done_callback(lambda f: f.exception() is not None and settings.cancel.set())
+            try:
+                self._train_classifier(clf_net, train, val, None, settings, clf_gen)
+                done.result()
+            except BaseException:  # including Ctrl-C while waiting for the other network
+                stop_correctness.set()
+                raise
         return clf_net
 
     def _train_classifier(self, net: nn.Module, train: _Part, val: _Part,

@@ -159,25 +159,70 @@ def test_side_by_side_fit_matches_one_network_after_the_other(small, monkeypatch
     np.testing.assert_array_equal(together.predict_costs(X), apart.predict_costs(X))
 
 
-def test_side_by_side_fit_stops_the_other_network_when_one_fails(small, monkeypatch):
-    # if the classifier's training fails (or Ctrl-C), fit raises at once and the correctness
-    # network stops after the epoch it is in, instead of training on to max_epochs
-    # (common practice: an interrupted command must not keep working in the background)
+@pytest.mark.parametrize("failing,other", [("classifier", "correctness"),
+                                            ("correctness", "classifier")])
+def test_side_by_side_fit_stops_the_other_network_when_one_fails(small, monkeypatch, failing,
+                                                                 other):
+    # if one network's training fails, fit raises and the other network stops after the
+    # epoch it is in, instead of training on to max_epochs (common practice: a failed
+    # command must not keep working in the background)
     from routeplan import plugin
+    from routeplan._routerbase import _BaseRouter
 
     def broken(self, *args, **kwargs):
-        raise RuntimeError("classifier failed")
+        raise RuntimeError(f"{failing} failed")
 
     monkeypatch.setattr(plugin, "_FIT_WORKERS", 2)
-    monkeypatch.setattr(PluginRouter, "_train_classifier", broken)
+    if failing == "classifier":
+        monkeypatch.setattr(PluginRouter, "_train_classifier", broken)
+    else:
+        monkeypatch.setattr(_BaseRouter, "_fit_correctness", broken)
     X, y, A, fees = small
     router = PluginRouter(random_state=0, max_epochs=500, patience=10**6, hidden=(16,))
-    with pytest.raises(RuntimeError, match="classifier failed"):
+    with pytest.raises(RuntimeError, match=f"{failing} failed"):
         router.fit(X, y, A, fees=fees)
-    assert 1 <= len(router.history_["correctness"]) <= 3
+    assert 1 <= len(router.history_[other]) <= 3
 
 
-def test_plugin_stopped_on_cost_fits_the_correctness_model_first(small):
+def test_ctrl_c_while_waiting_for_the_correctness_fit_stops_it(small, monkeypatch):
+    # Ctrl-C (SIGINT) while fit waits for the other network: the interrupt reaches the
+    # caller and the correctness network stops after its epoch instead of running to
+    # max_epochs (common practice: an interrupted command stops its work)
+    import os
+    import signal
+    import threading
+
+    from routeplan import plugin
+
+    monkeypatch.setattr(plugin, "_FIT_WORKERS", 2)
+    monkeypatch.setattr(PluginRouter, "_train_classifier", lambda self, *a, **k: None)
+    X, y, A, fees = small
+    router = PluginRouter(random_state=0, max_epochs=20_000, patience=10**9, hidden=(16,))
+    timer = threading.Timer(1.0, os.kill, (os.getpid(), signal.SIGINT))
+    timer.start()
+    try:
+        with pytest.raises(KeyboardInterrupt):
+            router.fit(X, y, A, fees=fees)
+    finally:
+        timer.cancel()
+    assert 1 <= len(router.history_["correctness"]) < 20_000
+
+
+def test_side_by_side_fit_warns_from_the_callers_thread(small, monkeypatch):
+    # the data warnings come from the fit, not from the worker thread, so that filters by
+    # module keep working (Python's warnings module attributes a warning to a frame)
+    from routeplan import plugin
+
+    monkeypatch.setattr(plugin, "_FIT_WORKERS", 2)
+    X, y, A, fees = small
+    A = A.copy()
+    A[:, 0] = -1  # expert 0 never answered
+    with pytest.warns(UserWarning, match="no known answer in the training split") as caught:
+        PluginRouter(random_state=0, **FAST).fit(X, y, A, fees=fees)
+    assert all("concurrent" not in w.filename for w in caught)
+
+
+def test_plugin_stopped_on_cost_scores_epochs_by_the_routed_cost(small):
     # early_stopping="cost": the classifier's epoch is chosen by the validation cost of the
     # routing, which needs the fitted correctness model (project design); the score per
     # epoch is (cost, log-loss), and the cost is a mean of costs in [0, 1 + max fee]
