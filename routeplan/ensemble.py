@@ -10,7 +10,6 @@ from numpy.typing import ArrayLike
 from sklearn.base import BaseEstimator
 from sklearn.utils.validation import check_is_fitted
 
-from routeplan import calibration as cal
 from routeplan._routerbase import (
     ARRAYS_FORMAT,
     CALIBRATION_PRIOR,
@@ -167,8 +166,7 @@ class EnsembleRouter(ExpectedCostRouting, BaseEstimator):
         """
         def proba(xs: np.ndarray, ps: np.ndarray | None) -> np.ndarray:
             # the class probabilities alone: no correctness network to run
-            return sum(cal.apply_temperature(m._class_logits(xs, ps), m.class_temperature_)
-                       for m in self.members_) / len(self.members_)
+            return sum(m._calibrated_proba(xs, ps) for m in self.members_) / len(self.members_)
 
         return _by_chunks(proba, self._check_X(X), class_proba)
 

@@ -235,21 +235,17 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
         clf_net = _make_net(self.n_features_in_, self.n_classes_, self.head, self.hidden_)
         settings = self._settings()
         self.history_.update(correctness=[], classifier=[])  # the same key order either way
+        independent = not by_cost and self.n_experts_ > 0
         with contextlib.ExitStack() as stack:
             settings.progress = stack.enter_context(_progress(settings))
-            if by_cost or self.n_experts_ == 0:
+            if independent:  # one torch thread per network whether or not they overlap
+                stack.enter_context(_one_torch_thread())
+            if not independent or _FIT_WORKERS < 2:
                 self._fit_correctness(train, val, gen, net=corr_net, progress=settings.progress)
                 q_val = self._correct_proba(val.X) if by_cost else None
                 self._train_classifier(clf_net, train, val, q_val, settings, clf_gen)
                 return clf_net
-            # one torch thread per network whether or not they overlap: same arithmetic
-            stack.enter_context(_one_torch_thread())
             self._correctness_warnings(train, val)  # from this thread, not the worker
-            if _FIT_WORKERS < 2:
-                self._fit_correctness(train, val, gen, net=corr_net, progress=settings.progress,
-                                      warn=False)
-                self._train_classifier(clf_net, train, val, None, settings, clf_gen)
-                return clf_net
             pool = stack.enter_context(ThreadPoolExecutor(1))
             stop_correctness, settings.cancel = threading.Event(), threading.Event()
             done = pool.submit(self._fit_correctness, train, val, gen, net=corr_net,
@@ -300,8 +296,7 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
         """P(expert right) for a split, with the imported probabilities if two-stage."""
         if not hasattr(self, "expert_stack_"):
             return self._correct_proba(part.X)
-        P = cal.apply_temperature(self._class_logits(part.X, part.class_proba),
-                                  self.class_temperature_)
+        P = self._calibrated_proba(part.X, part.class_proba)
         return self._stacked_correct(part.X, P)
 
     def _stacked_correct(self, X: np.ndarray, P: np.ndarray) -> np.ndarray:
@@ -317,8 +312,12 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
     def _proba_and_correct(self, X: np.ndarray, class_proba: ArrayLike | None
                            ) -> tuple[np.ndarray, np.ndarray]:
         """Calibrated class probabilities and P(expert right), both (n, .)."""
-        P = cal.apply_temperature(self._class_logits(X, class_proba), self.class_temperature_)
+        P = self._calibrated_proba(X, class_proba)
         return P, self._stacked_correct(X, P)
+
+    def _calibrated_proba(self, X: np.ndarray, class_proba: ArrayLike | None) -> np.ndarray:
+        """Temperature-scaled class probabilities of validated rows, (n, K)."""
+        return cal.apply_temperature(self._class_logits(X, class_proba), self.class_temperature_)
 
     def _class_logits(self, X: np.ndarray, class_proba: ArrayLike | None) -> np.ndarray:
         """Class scores from the classifier, or log of the imported probabilities."""
@@ -341,7 +340,7 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
             Required in two-stage mode (the imported model's probabilities).
         """
         X = self._check_X(X)
-        return cal.apply_temperature(self._class_logits(X, class_proba), self.class_temperature_)
+        return self._calibrated_proba(X, class_proba)
 
     def predict_expert_correct(self, X: ArrayLike, *, class_proba: ArrayLike | None = None
                                ) -> np.ndarray:
