@@ -153,7 +153,9 @@ def _train_loop(
     """Adam over shuffled mini-batches; keep the weights of the best validation score.
 
     ``val_score`` returns ``(primary, tie_break)``, both lower-is-better; training stops
-    after ``patience`` epochs without improvement. Returns the per-epoch scores.
+    after ``patience`` epochs without improvement. An epoch whose primary score is not
+    finite (a diverged network) is never kept; if no epoch gave a finite score the loop
+    raises ``FloatingPointError``. Returns the per-epoch scores.
     """
     opt = _adam(net, settings)
     n = tensors[0].shape[0]
@@ -179,7 +181,7 @@ def _train_loop(
             with torch.no_grad():
                 score = val_score(net)
             history.append(score)
-            if score < best:
+            if math.isfinite(score[0]) and score < best:
                 best, stale = score, 0
                 best_state = {k: v.detach().clone() for k, v in net.state_dict().items()}
             else:
@@ -188,6 +190,10 @@ def _train_loop(
             if stale >= settings.patience or (settings.cancel is not None
                                                and settings.cancel.is_set()):
                 break
+    if best_state is None and history:
+        raise FloatingPointError(
+            f"training of the {description} diverged: no epoch gave a finite validation "
+            "score; try a smaller learning_rate or check the features for extreme values")
     if best_state is not None:
         net.load_state_dict(best_state)
     net.eval()

@@ -740,6 +740,11 @@ _FIT_DOC = """
         Returns
         -------
         self
+
+        Raises
+        ------
+        FloatingPointError
+            If a network diverged: no epoch gave a finite validation score.
 """
 
 

@@ -90,6 +90,11 @@ def fit_temperature(logits: ArrayLike, y: ArrayLike) -> float:
     -------
     float
         ``T`` in about [0.02, 50]; 1.0 when ``n = 0``.
+
+    Raises
+    ------
+    ValueError
+        If a row holds NaN or +inf, or no finite score.
     """
     Z = np.asarray(logits, dtype=np.float64)
     y = np.asarray(y).astype(np.int64).reshape(-1)
@@ -97,6 +102,8 @@ def fit_temperature(logits: ArrayLike, y: ArrayLike) -> float:
         raise ValueError(f"logits and y disagree in shape: {Z.shape} and {y.shape}")
     if y.size == 0:
         return 1.0
+    if not np.isfinite(Z.max(axis=1)).all():  # NaN, +inf, or a row of -inf only
+        raise ValueError("logits must be finite (-inf is allowed beside a finite score)")
     # shift each row by its maximum once (softmax is unchanged by it); then each step
     # is one exp and one log, not a full log_softmax: 1.7 x faster on 20,000 x 10 logits
     Z = Z - Z.max(axis=1, keepdims=True)

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import contextlib
+import math
 import threading
 from collections.abc import Mapping
 from concurrent.futures import ThreadPoolExecutor
@@ -276,6 +277,8 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
 
         def val_score(m: nn.Module) -> tuple[float, float]:
             Z = m(Xv).numpy().astype(np.float64)
+            if not np.isfinite(Z).all():  # diverged: never the epoch to keep
+                return (math.inf, math.inf)
             T = cal.fit_temperature(Z, val.y) if self.calibrate else 1.0
             P = cal.apply_temperature(Z, T)
             nll = float(-np.log(P[rows, val.y] + _EPS).mean())

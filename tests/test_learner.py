@@ -552,3 +552,56 @@ def test_synthetic_few_random_answers_beat_model_and_experts():
     best_expert = ec[:, sc.n_classes:].mean(axis=0).min()
     assert 200 < asked.sum() < 400
     assert cost < model and cost < best_expert
+
+
+def test_temperature_refuses_non_finite_scores(digits_scores):
+    # common practice: a NaN or +inf score (a diverged network) has no temperature; -inf
+    # beside a finite score is the log of a zero probability and weighs nothing
+    Z, y = digits_scores
+    for bad in (np.nan, np.inf):
+        Zb = Z.copy()
+        Zb[3, 1] = bad
+        with pytest.raises(ValueError, match="finite"):
+            cal.fit_temperature(Zb, y)
+    Zb = Z.copy()
+    Zb[3, :] = -np.inf
+    with pytest.raises(ValueError, match="finite"):
+        cal.fit_temperature(Zb, y)
+    wrong = (np.arange(y.size), (y + 1) % Z.shape[1])
+    Zm, Zi = Z.copy(), Z.copy()
+    Zm[wrong], Zi[wrong] = -1e30, -np.inf
+    assert cal.fit_temperature(Zi, y) == pytest.approx(cal.fit_temperature(Zm, y), rel=1e-9)
+
+
+def test_train_loop_never_keeps_a_diverged_epoch():
+    # an epoch with a non-finite validation score is never "best" (common practice of early
+    # stopping: keep the best finite epoch); the kept weights are those of epoch 2
+    from routeplan._nets import _LoopSettings, _make_net, _train_loop
+
+    torch.manual_seed(0)
+    net = _make_net(3, 2, "mlp", (4,))
+    X = torch.randn(64, 3)
+    t = torch.randint(0, 2, (64,))
+    scores = iter([(float("nan"), 0.0), (2.0, 0.0), (float("inf"), 0.0), (float("nan"), 0.0)])
+    snapshots = []
+
+    def val_score(m):
+        snapshots.append({k: v.clone() for k, v in m.state_dict().items()})
+        return next(scores)
+
+    settings = _LoopSettings(4, 16, 1e-2, 0.0, 10, False, None)
+    history = _train_loop(net, lambda m, xb, tb: torch.nn.functional.cross_entropy(m(xb), tb),
+                          (X, t), val_score, settings, torch.Generator().manual_seed(0), "test")
+    assert len(history) == 4
+    for k, v in net.state_dict().items():
+        assert torch.equal(v, snapshots[1][k])
+        assert not torch.equal(v, snapshots[3][k])
+
+
+def test_fit_that_diverges_says_so():
+    # a learning rate far too large drives float32 weights to overflow (common practice:
+    # Adam's step is about lr per weight); fit must fail clearly, not route on NaN
+    sc = simulate.make_scenario(600, random_state=0)
+    with pytest.raises(FloatingPointError, match="diverged"):
+        PluginRouter(learning_rate=1e37, max_epochs=3, random_state=0).fit(
+            sc.X, sc.y, sc.answers(0), fees=sc.fees)
