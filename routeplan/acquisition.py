@@ -783,7 +783,10 @@ def select_assignments(
                 picks.append(_draw_cells(pool, rest, k, rng))
                 eligible = unfocused  # the design: chances averaged over focused and other pairs
     case, expert, prob, audit = (np.concatenate(parts) for parts in zip(*picks))
-    sel = _finish(pool, costs, case, expert, prob, audit, alpha, beta, ledger, budget, notes)
+    sel = _finish(pool, costs, case, expert, prob, audit, alpha, beta, ledger, budget, notes,
+                  why_left="caps, capacities or eligible cases ran out" if strategy == "random" else
+                  "no other pair was worth its fee to the strategy, or caps, capacities or eligible "
+                  "cases ran out")
     design = _design(pool, before, eligible, counts, strategy, sel)
     return Selection(**{**sel.__dict__, "design": design})
 
@@ -823,7 +826,7 @@ def _spread_rate(k: int, sizes: NDArray[np.int64]) -> NDArray[np.float64]:
     return np.where(present, per / np.maximum(sizes, 1), 0.0)
 
 
-def _finish(pool, costs, case, expert, prob, audit, alpha, beta, ledger, budget, notes) -> Selection:
+def _finish(pool, costs, case, expert, prob, audit, alpha, beta, ledger, budget, notes, why_left) -> Selection:
     """Assemble the Selection: per-cell counts, gains, spend and notes."""
     m, r = pool.n_experts, pool.n_regions
     cell = np.zeros((m, r), dtype=np.int64)
@@ -832,7 +835,7 @@ def _finish(pool, costs, case, expert, prob, audit, alpha, beta, ledger, budget,
     spend = np.bincount(expert, weights=fees[expert], minlength=m)
     used = budget - ledger.left
     if ledger.left >= _cheapest_fee(ledger) and len(case):
-        notes.append(f"{ledger.left:.6g} of the budget is left: caps, capacities or eligible cases ran out")
+        notes.append(f"{ledger.left:.6g} of the budget is left: {why_left}")
     gain = _gains(pool, costs, cell, alpha, beta)
     return Selection(
         case=case.astype(np.int64), expert=expert.astype(np.int64), selection_prob=prob,

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import traceback
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -32,7 +33,10 @@ class _Group(click.Group):
         from .errors import InputError  # light: no numpy
 
         try:
-            return super().invoke(ctx)
+            with warnings.catch_warnings():
+                if not _debug(ctx):  # one line on stderr, not the source line behind it
+                    warnings.showwarning = _one_line_warning
+                return super().invoke(ctx)
         except InputError as exc:
             if _debug(ctx):
                 traceback.print_exc()
@@ -51,9 +55,15 @@ class _Group(click.Group):
             ctx.exit(EXIT_FAULT)
 
 
+def _one_line_warning(message: Warning | str, category: type[Warning], filename: str, lineno: int,
+                      file: Any = None, line: str | None = None) -> None:
+    """Show a warning as ``warning: TEXT`` on stderr (``--debug`` shows Python's own form)."""
+    click.echo(f"warning: {str(message).splitlines()[0] if str(message) else category.__name__}", err=True)
+
+
 def _debug(ctx: click.Context) -> bool:
     root = ctx.find_root()
-    return bool(root.obj and root.obj.debug)
+    return bool(root.params.get("debug")) or bool(root.obj and root.obj.debug)
 
 
 @dataclass
@@ -276,20 +286,24 @@ def experts() -> None:
 
 @experts.command("add")
 @click.argument("name")
-@click.option("--fee", type=float, required=True, help="Fee per case, in the unit of budgets and --error-cost.")
-@click.option("--capacity", type=float, default=1.0, show_default=True,
-              help="Largest share of routed cases this expert may take, in [0, 1].")
+@click.option("--fee", type=float, default=None,
+              help="Fee per case, in the unit of budgets and --error-cost. Needed for a new expert.")
+@click.option("--capacity", type=float, default=None,
+              help="Largest share of routed cases this expert may take, in [0, 1]. A new expert "
+                   "gets 1 without it.")
 @json_option
 @pass_app
 def experts_add(app, name, fee, capacity, as_json):
-    """Add an expert, or change the fee and capacity of one already there.
+    """Add an expert, or change the fee and/or capacity of one already there.
 
     NAME must be safe as a file name (letters, digits, '_', '.', '-') and not 'model'.
+    For an expert already there, what you leave out stays as it was.
 
     Example:
 
     \b
         routeplan experts add kiln_master --fee 0.08 --capacity 0.2
+        routeplan experts add kiln_master --capacity 0.3    # the fee stays 0.08
     """
     from .ingest import add_expert
 
@@ -304,6 +318,9 @@ def experts_add(app, name, fee, capacity, as_json):
 @pass_app
 def experts_import(app, file, as_json):
     """Import several experts: a CSV or Parquet file with columns name, fee[, capacity].
+
+    Experts already there get the file's fee; they keep their capacity where the file
+    has no capacity column or leaves the cell empty (a new expert then gets 1).
 
     Example:
 
@@ -330,8 +347,9 @@ def answers() -> None:
 def answers_import(app, files, strict, as_json):
     """Import answer files (columns case_id, expert, answer), all files or none.
 
-    Answers to a round's assignments are linked to them; answers nobody asked for (a team's
-    historical answers) are kept as historical, outside the unbiased audit estimates.
+    Answers to a round's assignments are linked to them, also after the round was closed
+    (they are counted as late, and the assignment as answered); answers nobody asked for (a
+    team's historical answers) are kept as historical, outside the unbiased audit estimates.
 
     Example:
 
@@ -388,6 +406,8 @@ def fit(app, seed, routers, max_epochs, two_stage, as_json):
     if as_json:
         app.emit_json(report.to_dict())
         return
+    if app.quiet:
+        return
     from .report import render_fit
 
     app.console.print(render_fit(report))
@@ -402,9 +422,10 @@ def fit(app, seed, routers, max_epochs, two_stage, as_json):
 @click.option("--card", "card_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
               help="The Markdown policy card (default: the --out name with .md).")
 @click.option("--model", "model_id", type=int, default=None, help="A stored model id (default: the chosen one).")
+@click.option("--overwrite", is_flag=True, help="Replace a policy file or card already there.")
 @json_option
 @pass_app
-def freeze(app, out_path, card_path, model_id, as_json):
+def freeze(app, out_path, card_path, model_id, overwrite, as_json):
     """Freeze the fitted router as a routing policy file, with a policy card beside it.
 
     Solves the capacity LP on the fit's held-out cases for each expert's dual price, and
@@ -417,8 +438,10 @@ def freeze(app, out_path, card_path, model_id, as_json):
     \b
         routeplan freeze --out tiles-policy.json --card tiles-policy.md
     """
+    from .files import check_new_files
     from .freezing import freeze_workspace
 
+    check_new_files([out_path, card_path or out_path.with_suffix(".md")], overwrite)
     with app.workspace() as ws:
         result = freeze_workspace(ws, out_path, card=card_path, model_id=model_id)
     if as_json:
@@ -497,10 +520,11 @@ def route(app, policy_path, cases_path, out_path, exact, id_column, chunk_size, 
 @click.option("--seed", type=int, default=0, show_default=True, help="Seeds the scenario, the rounds and the routers.")
 @click.option("--plot", "plot_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
               help="Write the curves to this PNG.")
+@click.option("--overwrite", is_flag=True, help="Replace a --plot file already there.")
 @json_option
 @pass_app
 def rehearse(app, n_rounds, budget_per_round, n_pool, profiles_path, strategies, audit_share, weighting,
-             focus_margin, no_focus, seed, plot_path, as_json):
+             focus_margin, no_focus, seed, plot_path, overwrite, as_json):
     """Rehearse a budget before spending money: on a simulated scenario, or on your own cases.
 
     Plays the rounds for each strategy, fits a router after each round, and shows how the
@@ -518,8 +542,11 @@ def rehearse(app, n_rounds, budget_per_round, n_pool, profiles_path, strategies,
         routeplan rehearse --profiles assumed.csv --rounds 4 --budget 25
     """
     from .errors import InputError
+    from .files import check_new_files
     from .rehearse import STRATEGIES, budget_to_reach, scenario_from_workspace
     from .rehearse import rehearse as run
+
+    check_new_files([plot_path], overwrite)
 
     chosen = [s.strip() for s in strategies.split(",") if s.strip()]
     unknown = [s for s in chosen if s not in STRATEGIES]
@@ -574,9 +601,10 @@ def rehearse(app, n_rounds, budget_per_round, n_pool, profiles_path, strategies,
               help="Write the table (broken down with --by, if given) to this CSV file.")
 @click.option("--plot", "plot_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
               help="Write a heatmap of accuracy per expert x class (or x region with --by region) to this PNG.")
+@click.option("--overwrite", is_flag=True, help="Replace a --csv or --plot file already there.")
 @json_option
 @pass_app
-def competence(app, by, basis, n_regions, seed, csv_path, plot_path, as_json):
+def competence(app, by, basis, n_regions, seed, csv_path, plot_path, overwrite, as_json):
     """Show where each expert, and the model, can be trusted.
 
     For each expert and the model: answers, accuracy against truth with a 95% Wilson interval
@@ -591,9 +619,11 @@ def competence(app, by, basis, n_regions, seed, csv_path, plot_path, as_json):
         routeplan competence --by region --plot competence.png
     """
     from .competence import pool_competence
+    from .files import check_new_files
     from .fitting import held_out_predictions
     from .pool import load_pool
 
+    check_new_files([csv_path, plot_path], overwrite)
     with app.workspace() as ws:
         pool = load_pool(ws)
         model_pred = held_out_predictions(ws, pool)
@@ -654,8 +684,10 @@ def round_plan(app, budget, strategy, seed, audit_share, max_per_expert, include
                focus_margin, no_focus, dry_run, as_json):
     """Choose which cases go to which expert in a new round.
 
-    The fees of the round's assignments add up to at most --budget. Each expert takes at most --max-per-expert cases and at most its capacity share of the
-    round's assignments (rounded up); no expert is asked twice about a case. Every
+    The fees of the round's assignments add up to at most --budget. Each expert is asked
+    about at most --max-per-expert cases and at most its capacity share of the round's
+    candidate cases (those the round may ask about; rounded up); no expert is asked twice
+    about a case. Every
     assignment records its selection probability. After 'fit', the kept router's open
     decisions steer the default strategy (see --focus-margin); fit again after each round.
 
@@ -680,7 +712,9 @@ def round_plan(app, budget, strategy, seed, audit_share, max_per_expert, include
 @round_group.command("export")
 @click.argument("round_id", metavar="ROUND", type=int)
 @click.option("--out", "out_dir", required=True, type=click.Path(path_type=Path), help="Folder for the sheets (DIR/<expert>.csv).")
-@click.option("--columns", default=None, help="Comma-separated feature or display columns to show on the sheets.")
+@click.option("--columns", default=None,
+              help="Comma-separated feature or display columns to show on the sheets; 'group' shows "
+                   "each case's group (the --group-column of cases import).")
 @click.option("--overwrite", is_flag=True, help="Replace sheets already in the folder.")
 @json_option
 @pass_app
@@ -690,7 +724,7 @@ def round_export(app, round_id, out_dir, columns, overwrite, as_json):
     Example:
 
     \b
-        routeplan round export 1 --out sheets --columns kiln,glaze
+        routeplan round export 1 --out sheets --columns group,glaze_um
     """
     from .rounds import export_round
 

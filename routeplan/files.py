@@ -643,6 +643,20 @@ def write_atomically(path: str | Path, write: Callable[[str], Any]) -> None:
         raise
 
 
+def check_new_files(paths: list[Path | None], overwrite: bool) -> None:
+    """Refuse to replace an existing file unless ``overwrite`` (the ``--overwrite`` flag).
+
+    Raises
+    ------
+    InputError
+    """
+    if overwrite:
+        return
+    for path in paths:
+        if path is not None and Path(path).exists():
+            raise InputError("already exists; pass --overwrite to replace it", source=str(path))
+
+
 def check_out_path(out: Path, inputs: list[Path]) -> None:
     """Refuse an output that would overwrite an input or land in a missing folder.
 

@@ -9,6 +9,8 @@ arrays plus JSON (never pickled), marking the chosen one.
 
 from __future__ import annotations
 
+import warnings
+
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -132,18 +134,24 @@ def fit_workspace(
     X = spec.transform(pool.X[mask])
     y, A = pool.y[mask], pool.answers[mask]
     weights = round_weights(pool, ws.round_details(), mask)
-    best, fitted, table = fit_candidates(
-        X, y, A, fees=pool.fees, cost_matrix=pool.cost_matrix(), sample_weight=weights,
-        random_state=random_state, names=routers, expert_names=list(pool.experts), class_proba=class_proba,
-        router_params={"max_epochs": max_epochs} if max_epochs else None, verbose=verbose, console=console,
-    )
+    with warnings.catch_warnings(record=True) as caught:  # the routers' data warnings become notes
+        warnings.simplefilter("always", UserWarning)
+        best, fitted, table = fit_candidates(
+            X, y, A, fees=pool.fees, cost_matrix=pool.cost_matrix(), sample_weight=weights,
+            random_state=random_state, names=routers, expert_names=list(pool.experts), class_proba=class_proba,
+            router_params={"max_epochs": max_epochs} if max_epochs else None, verbose=verbose, console=console,
+        )
+    for w in caught:
+        if not issubclass(w.category, UserWarning):
+            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
     ids = pool.case_ids[mask]
     selection = np.asarray(table.attrs.get("selection_index", []), dtype=np.int64)
     training = np.setdiff1d(np.arange(len(ids)), selection)
     counts = {name: int((A[:, j] >= 0).sum()) for j, name in enumerate(pool.experts)}
     effective = {name: round(effective_sample_size(weights[:, j][A[:, j] >= 0]), 1)
                  for j, name in enumerate(pool.experts)}
-    table.attrs["notes"] = list(table.attrs.get("notes", [])) + uneven_weight_notes(counts, effective)
+    table.attrs["notes"] = (list(table.attrs.get("notes", [])) + uneven_weight_notes(counts, effective)
+                            + _data_notes(caught, counts))
     if class_proba is not None:
         table.attrs["notes"].append("two-stage: your model's imported probabilities are the classifier (temperature-"
                                     "scaled only); the routers learned whom to defer to")
@@ -379,6 +387,23 @@ def _plain(value: Any) -> Any:
     if isinstance(value, np.ndarray):
         return _plain(value.tolist())
     return value
+
+
+def _data_notes(caught: list[warnings.WarningMessage], counts: dict[str, int]) -> list[str]:
+    """The routers' data warnings as notes, once each, naming experts with no answer."""
+    notes = []
+    silent = [name for name, n in counts.items() if n == 0]
+    if silent:
+        notes.append(f"no answer yet from {', '.join(silent)} on cases with truth: the routers take "
+                     "their correctness to be the prior 0.5 and route on that")
+    for w in caught:
+        text = str(w.message)
+        if not issubclass(w.category, UserWarning) or text in notes:
+            continue
+        if silent and text.startswith("some expert has no known answer"):
+            continue  # said above, with the names
+        notes.append(text)
+    return notes
 
 
 def load_router(ws: Workspace, model_id: int | None = None) -> tuple[int, Any, dict, dict]:

@@ -149,12 +149,16 @@ def import_cases(
     """
     table = read_table(path, text_columns=tuple(c for c in (id_column, truth_column or "truth", group_column) if c))
     result = ImportResult("cases", table.source)
-    if ws.seen_input("cases import", table.sha256):
-        result.no_op = True
-        return result
     columns = list(table.frame.columns)
     if truth_column is None and "truth" in columns:
         truth_column = "truth"
+    options = {"id_column": id_column, "truth_column": truth_column, "group_column": group_column,
+               "feature_columns": None if feature_columns is None else list(feature_columns)}
+    prior = ws.input_detail("cases import", table.sha256)
+    if prior is not None:
+        _check_same_options(table, options, prior.get("options"))
+        result.no_op = True
+        return result
     mapping = {id_column: "case_id"}
     for option, name, target in (("--truth-column", truth_column, "truth"), ("--group-column", group_column, "group")):
         if name is not None:
@@ -190,13 +194,38 @@ def import_cases(
         if not ws.feature_columns:
             ws.set_feature_columns(features)
         ws.add_cases(_case_rows(frame, X, features, ws.next_batch()))
-        ws.log("cases import", {"rows": len(frame), "features": features}, input_file=table.source, input_sha256=table.sha256)
+        ws.log("cases import", {"rows": len(frame), "features": features, "options": options},
+               input_file=table.source, input_sha256=table.sha256)
     result.rows = result.added = len(frame)
     result.notes = {
         "feature_columns": features,
         "with_truth": int(frame["truth"].notna().sum()) if "truth" in frame.columns else 0,
     }
     return result
+
+
+_CASE_OPTIONS = {"id_column": "--id-column", "truth_column": "--truth-column",
+                 "group_column": "--group-column", "feature_columns": "--feature-columns"}
+
+
+def _check_same_options(table: Table, options: dict, before: dict | None) -> None:
+    """A file imported again with the same bytes must name real columns and, where the
+    first import recorded its options, the same ones: a second import changes nothing,
+    so other options would be silently ignored."""
+    columns = set(table.frame.columns)
+    named = [options["id_column"], options["truth_column"], options["group_column"],
+             *(options["feature_columns"] or [])]
+    missing = [c for c in named if c is not None and c not in columns]
+    if missing:
+        raise InputError(f"'{missing[0]}' is not in the header", source=table.source, line=1)
+    if before is None:
+        return
+    changed = [flag for key, flag in _CASE_OPTIONS.items() if options.get(key) != before.get(key)]
+    if changed:
+        raise InputError(
+            f"this file was already imported (same bytes) with other {', '.join(changed)}; importing "
+            "it again changes nothing, so its cases keep the columns of the first import (to read "
+            "them differently, start a new workspace with 'routeplan init')", source=table.source)
 
 
 def _choose_features(ws: Workspace, table: Table, requested: Sequence[str] | None) -> list[str]:
@@ -403,7 +432,8 @@ def _check_pair_conflicts(table: Table, keys: list[str], value: str) -> None:
 def import_experts(ws: Workspace, path: str | Path) -> ImportResult:
     """Import several experts from a CSV or Parquet file (columns ``name``, ``fee``, ``capacity``).
 
-    Existing experts get the file's fee and capacity.
+    Existing experts get the file's fee, and its capacity where the file gives one (with
+    no ``capacity`` column or an empty cell they keep their own; a new expert gets 1).
 
     Returns
     -------
@@ -421,33 +451,43 @@ def import_experts(ws: Workspace, path: str | Path) -> ImportResult:
         raise table.fail(f"expert {table.frame['name'].iloc[at]!r} appears twice (first on line {table.line_of(first)})", at)
     capacity = parsed.get("capacity", np.full(len(table.frame), np.nan))
     rows = [
-        (name, float(fee), 1.0 if np.isnan(cap) else float(cap))
+        (name, float(fee), None if np.isnan(cap) else float(cap))
         for name, fee, cap in zip(table.frame["name"], parsed["fee"], capacity)
     ]
     return _store_experts(ws, rows, result, "experts import", table.source, table.sha256)
 
 
-def add_expert(ws: Workspace, name: str, *, fee: float, capacity: float = 1.0) -> ImportResult:
-    """Add one expert, or change the fee and capacity of one already there.
+def add_expert(ws: Workspace, name: str, *, fee: float | None = None,
+               capacity: float | None = None) -> ImportResult:
+    """Add one expert, or change the fee and/or capacity of one already there.
 
     Parameters
     ----------
     ws : Workspace
     name : str
         Safe as a file name (letters, digits, ``_ . -``; no ``..``), not ``model``.
-    fee : float
-        Fee per case, >= 0, in the unit of budgets.
-    capacity : float, default=1.0
-        Largest share of routed cases the expert may take, in [0, 1].
+    fee : float, optional
+        Fee per case, >= 0, in the unit of budgets. Needed for a new expert; None keeps
+        an existing expert's fee.
+    capacity : float, optional
+        Largest share of routed cases the expert may take, in [0, 1]. None keeps an
+        existing expert's capacity (a new expert gets 1).
     """
-    frame = pd.DataFrame({"name": [name], "fee": [repr(float(fee))], "capacity": [repr(float(capacity))]}, dtype=object)
+    shown_fee = 0.0 if fee is None else float(fee)  # placeholders only for the checks
+    shown_cap = 1.0 if capacity is None else float(capacity)
+    frame = pd.DataFrame({"name": [name], "fee": [repr(shown_fee)], "capacity": [repr(shown_cap)]}, dtype=object)
     table = Table(frame, "command line", "", False, {}, {})
     try:
         check_rows(table, load_schema("experts-row"))
     except InputError as exc:
         raise InputError(_option_words(exc.message)) from None
+    if fee is None and capacity is None:
+        raise InputError("give --fee, --capacity or both")
+    if fee is None and name not in {e["name"] for e in ws.experts()}:
+        raise InputError(f"expert {name!r} is new: give its --fee")
     result = ImportResult("experts", "command line")
-    return _store_experts(ws, [(name, float(fee), float(capacity))], result, "experts add", None, None)
+    row = (name, None if fee is None else float(fee), None if capacity is None else float(capacity))
+    return _store_experts(ws, [row], result, "experts add", None, None)
 
 
 def _option_words(message: str) -> str:
@@ -474,9 +514,11 @@ def _store_experts(ws, rows, result, command, source, sha) -> ImportResult:
 def import_answers(ws: Workspace, paths: Sequence[str | Path], *, strict: bool = False) -> list[ImportResult]:
     """Import answer files (columns ``case_id``, ``expert``, ``answer``), all or nothing.
 
-    An answer to an assignment is linked to it (its round and selection probability).
-    Answers that no round asked for are stored as historical: no selection probability,
-    kept out of the unbiased audit estimates.
+    An answer to an assignment is linked to it (its round and selection probability),
+    also when its round was closed since: the assignment then counts as answered, not
+    expired, and the import counts the answer as late. Answers that no round asked for
+    are stored as historical: no selection probability, kept out of the unbiased audit
+    estimates.
 
     Parameters
     ----------
@@ -520,7 +562,7 @@ def _sheet_as_answers(ws: Workspace, table: Table) -> tuple[Table, int]:
     formula-looking cells is removed. Returns the table and the number of blank rows.
     """
     frame = table.frame
-    known = set(ws.feature_columns) | set(ws.display_column_names())
+    known = set(ws.feature_columns) | set(ws.display_column_names()) | ({"group"} if ws.has_groups() else set())
     keep = [c for c in frame.columns if c not in known or c in ("case_id", "expert", "answer")]
     blank = table.empty["answer"] if "answer" in table.empty else np.zeros(len(frame), dtype=bool)
     if len(keep) < len(frame.columns) or blank.any():
@@ -548,8 +590,9 @@ def _plan_answers(ws, table, labels, experts, claimed, strict, result) -> list[t
     keys = list(zip(unique["case_id"], unique["expert"]))
     stored = ws.stored_answers(keys)
     asked = ws.open_assignments(keys)
+    closed = ws.closed_round_ids() if asked else set()
     rows = []
-    historical = 0
+    historical = late = 0
     for position, key, answer in zip(unique.index, keys, unique["answer"]):
         if key in stored:
             if stored[key] != answer:
@@ -570,10 +613,12 @@ def _plan_answers(ws, table, labels, experts, claimed, strict, result) -> list[t
             historical += 1
             rows.append((key[0], key[1], answer, None, None))
         else:
+            late += link[1] in closed
             rows.append((key[0], key[1], answer, link[1], link[0]))
     result.rows = len(frame)
     result.added = len(rows)
     result.notes = {"historical": historical, "linked_to_assignments": len(rows) - historical,
+                    "late_for_closed_rounds": late,
                     "repeated_rows": len(frame) - len(unique), "left_blank": blank}
     return rows
 

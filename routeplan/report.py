@@ -64,11 +64,55 @@ def _interval(value: float, low: float, high: float, fmt: str = "{:.2f}") -> str
     return f"{fmt.format(value)} [{fmt.format(low)}, {fmt.format(high)}]"
 
 
+_NO_INTERVAL = "\u2020"  # dagger: a value whose interval could not be formed
+
+
+def _estimate_cell(value: float, low: float, high: float, fmt: str) -> tuple[str, bool]:
+    """A competence figure with its interval; True when the value stands without one.
+
+    "-" where there is no value; the value and a dagger where there is a value but no
+    interval (the caption explains it), so that a bare figure is never shown silently.
+    """
+    if value != value:  # nan
+        return "-", False
+    if low != low or high != high:
+        return f"{fmt.format(value)} {_NO_INTERVAL}", True
+    return f"{fmt.format(value)} [{fmt.format(low)}, {fmt.format(high)}]", False
+
+
+def _n_cell(row: dict, prefix: str) -> tuple[str, bool]:
+    """``scored/answered``, with Kish's effective size where weighted answers are worth fewer."""
+    n_scored = row.get(prefix + "n_scored", 0)
+    n_scored = int(n_scored) if n_scored == n_scored else 0
+    text = f"{n_scored}/{int(row['n_answered'])}"
+    n_eff = row.get(prefix + "n_effective", float("nan"))
+    weighted = bool(prefix and row.get("audit_weighted")) and n_eff == n_eff and n_scored > 0
+    if weighted and n_eff < 0.95 * n_scored:
+        return f"{text} (~{n_eff:.0f})", True
+    return text, False
+
+
 def _accuracy_table(frame, title: str, level: str | None, basis: str) -> Table:
+    """One accuracy table of a competence report, with a legend for every mark it uses.
+
+    Parameters
+    ----------
+    frame : DataFrame
+        A table of :func:`routeplan.competence.expert_accuracy_table`.
+    title : str
+        Table title.
+    level : str or None
+        The breakdown column (``"class"``, ``"group"``, ``"region"``), if any.
+    basis : {"truth", "audit"}
+        Which columns to show: unprefixed or ``audit_``.
+
+    Returns
+    -------
+    rich.table.Table
+    """
     prefix = "audit_" if basis == "audit" else ""
     table = Table(title=title, title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False,
-                  caption="n: scored/answered (scored = answers on cases with truth); "
-                          "*: interval too wide to act on", caption_justify="left")
+                  caption_justify="left")
     table.add_column("expert", overflow="fold", min_width=6)
     if level:
         table.add_column(level, overflow="fold", max_width=12)
@@ -76,19 +120,34 @@ def _accuracy_table(frame, title: str, level: str | None, basis: str) -> Table:
     table.add_column("accuracy [95% CI]", justify="right", no_wrap=True)
     table.add_column("kappa", justify="right", no_wrap=True)
     table.add_column("saved/fee [95% CI]", justify="right", no_wrap=True)
+    any_bare = any_effective = False
     for row in frame.to_dict(orient="records"):
         wide = bool(row.get(prefix + "too_wide"))
-        n_scored = row.get(prefix + "n_scored", 0)
-        n_scored = int(n_scored) if n_scored == n_scored else 0
-        accuracy = _interval(row[prefix + "accuracy"], row[prefix + "accuracy_low"], row[prefix + "accuracy_high"])
+        n_text, effective = _n_cell(row, prefix)
+        accuracy, bare_a = _estimate_cell(row[prefix + "accuracy"], row[prefix + "accuracy_low"],
+                                          row[prefix + "accuracy_high"], "{:.2f}")
+        value, bare_v = _estimate_cell(row[prefix + "value_per_fee"], row[prefix + "value_low"],
+                                       row[prefix + "value_high"], "{:.1f}")
+        any_bare |= bare_a or bare_v
+        any_effective |= effective
         cells = [str(row["expert"])] + ([str(row[level])] if level else [])
         cells += [
-            f"{n_scored}/{int(row['n_answered'])}",
+            n_text,
             accuracy + ("*" if wide else " "),
             "-" if row[prefix + "kappa"] != row[prefix + "kappa"] else f"{row[prefix + 'kappa']:.2f}",
-            _interval(row[prefix + "value_per_fee"], row[prefix + "value_low"], row[prefix + "value_high"], "{:.1f}"),
+            value,
         ]
         table.add_row(*cells, style="dim" if wide else None)
+    legend = ["n: scored/answered (scored: on cases with truth)"]
+    if any_effective:
+        legend.append("(~k): weighted audit answers, worth about k unweighted ones "
+                      "(Kish's effective size), which the rate and interval rest on")
+    legend.append("*: accuracy interval too wide to act on")
+    legend.append("intervals: Wilson (accuracy), Agresti-Min paired (saved/fee); kappa has none")
+    legend.append("-: none (no scored answers; kappa undefined; saved/fee: no fee, or the model's own row)")
+    if any_bare:
+        legend.append(f"{_NO_INTERVAL}: too few answers for an interval")
+    table.caption = "; ".join(legend)
     return table
 
 

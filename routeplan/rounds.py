@@ -583,7 +583,7 @@ def _check_columns(ws: Workspace, columns: Sequence[str]) -> list[str]:
         raise InputError(f"--columns: {clash[0]!r} is always on the sheet; name feature or display columns only")
     if len(set(columns)) != len(columns):
         raise InputError("--columns repeats a column")
-    known = set(ws.feature_columns) | set(ws.display_column_names())
+    known = set(ws.feature_columns) | set(ws.display_column_names()) | ({"group"} if ws.has_groups() else set())
     unknown = [c for c in columns if c not in known]
     if unknown:
         available = ", ".join(sorted(known)) or "none"
@@ -599,9 +599,10 @@ def _display_columns(ws: Workspace, case_ids: list[str], columns: list[str]) -> 
     details = ws.case_details(case_ids)
     out: dict[str, dict] = {}
     for case_id in case_ids:
-        blob, display = details[case_id]
+        blob, display, group = details[case_id]
         values = dict(zip(features, np.frombuffer(blob, dtype="<f8").tolist()))
         values.update(json.loads(display) if display else {})
+        values.setdefault("group", group)  # the --group-column of cases import
         out[case_id] = {name: values.get(name) for name in columns}
     return out
 

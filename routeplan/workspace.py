@@ -319,6 +319,14 @@ class Workspace:
         ).fetchone()
         return row is not None
 
+    def input_detail(self, command: str, sha256: str) -> dict | None:
+        """The journal detail of ``command``'s first import of these bytes (None: never)."""
+        row = self.db.execute(
+            "SELECT detail FROM journal WHERE command = ? AND input_sha256 = ? ORDER BY entry_id LIMIT 1",
+            (command, sha256),
+        ).fetchone()
+        return None if row is None else json.loads(row[0] or "{}")
+
     def journal(self, limit: int | None = None) -> list[dict]:
         """Journal entries, newest first."""
         sql = "SELECT * FROM journal ORDER BY entry_id DESC" + (f" LIMIT {int(limit)}" if limit else "")
@@ -432,18 +440,27 @@ class Workspace:
         """Experts as dicts (name, fee, capacity, added_at), in the order they were added."""
         return [dict(r) for r in self._rows("SELECT name, fee, capacity, added_at FROM experts ORDER BY rowid")]
 
-    def upsert_experts(self, rows: Sequence[tuple[str, float, float]]) -> tuple[int, int]:
-        """Add experts or update fee and capacity; returns (added, updated)."""
+    def upsert_experts(self, rows: Sequence[tuple[str, float | None, float | None]]) -> tuple[int, int]:
+        """Add experts or update fee and capacity; returns (added, updated).
+
+        A fee or capacity of None keeps the expert's own (a new expert's capacity is then
+        1; a new expert needs a fee).
+        """
         known = {e["name"]: e for e in self.experts()}
         added = updated = 0
         for name, fee, capacity in rows:
+            if name not in known and fee is None:
+                raise InputError(f"expert {name!r} is new: give its fee")
             if name in known:
+                fee = known[name]["fee"] if fee is None else fee
+                capacity = known[name]["capacity"] if capacity is None else capacity
                 if (known[name]["fee"], known[name]["capacity"]) != (fee, capacity):
                     self.db.conn.execute(
                         "UPDATE experts SET fee = ?, capacity = ? WHERE name = ?", (fee, capacity, name)
                     )
                     updated += 1
             else:
+                capacity = 1.0 if capacity is None else capacity
                 self.db.conn.execute("INSERT INTO experts VALUES (?, ?, ?, ?)", (name, fee, capacity, _now()))
                 added += 1
         return added, updated
@@ -536,7 +553,12 @@ class Workspace:
             "model_id = ?" if model_id is not None else "chosen = 1 ORDER BY model_id DESC LIMIT 1")
         row = self.db.execute(sql, (model_id,) if model_id is not None else ()).fetchone()
         if row is None:
-            raise NotFitted("no fitted model in this workspace; run 'routeplan fit' first")
+            stored = self.db.execute("SELECT model_id, kind FROM models ORDER BY model_id").fetchall()
+            if model_id is None or not stored:
+                raise NotFitted("no fitted model in this workspace; run 'routeplan fit' first")
+            shown = (", ".join(f"{i} ({kind})" for i, kind in stored[-8:])
+                     + (f"; older: {stored[0][0]} to {stored[-9][0]}" if len(stored) > 8 else ""))
+            raise NotFitted(f"no model {model_id} in this workspace; its models are {shown}")
         arrays = {
             name: np.frombuffer(data, dtype=np.dtype(dtype)).reshape(json.loads(shape)).copy()
             for name, dtype, shape, data in self.db.execute(
@@ -578,7 +600,7 @@ class Workspace:
                     "capacity": e["capacity"],
                     "answers": per_expert.get(name, 0),
                     "historical_answers": historical.get(name, 0),
-                    "spent": float(spent.get(name, 0.0) or 0.0),
+                    "spent": round(float(spent.get(name, 0.0) or 0.0), 9),  # sums of fees: no float noise
                 }
             )
         now = _now()
@@ -593,7 +615,7 @@ class Workspace:
             overdue = not closed and r[5] is not None and r[5] < now
             rounds.append({
                 "round": r[0], "created_at": r[1], "strategy": r[2], "budget": r[3], "state": r[4],
-                "due_at": r[5], "assignments": r[6], "answered": r[7], "spent": float(r[8]),
+                "due_at": r[5], "assignments": r[6], "answered": r[7], "spent": round(float(r[8]), 9),
                 "open": 0 if closed else still_open,
                 "overdue": still_open if overdue else 0,
                 "expired": still_open if closed else 0,
@@ -664,6 +686,10 @@ class Workspace:
         record["detail"] = json.loads(record["detail"]) if record["detail"] else {}
         return record
 
+    def closed_round_ids(self) -> set[int]:
+        """Ids of the rounds that are closed."""
+        return {int(r[0]) for r in self.db.execute("SELECT round_id FROM rounds WHERE state != 'open'")}
+
     def round_details(self) -> list[dict]:
         """Every round's id and parsed detail, oldest first."""
         return [{"round_id": int(r["round_id"]), "detail": json.loads(r["detail"]) if r["detail"] else {}}
@@ -681,18 +707,22 @@ class Workspace:
             )
         ]
 
-    def case_details(self, case_ids: Sequence[str]) -> dict[str, tuple[bytes, str | None]]:
-        """Feature bytes (float64) and display JSON of the given cases, keyed by case_id."""
-        out: dict[str, tuple[bytes, str | None]] = {}
+    def case_details(self, case_ids: Sequence[str]) -> dict[str, tuple[bytes, str | None, str | None]]:
+        """Feature bytes (float64), display JSON and group of the given cases, keyed by case_id."""
+        out: dict[str, tuple[bytes, str | None, str | None]] = {}
         keys = list(case_ids)
         for start in range(0, len(keys), 900):
             chunk = keys[start : start + 900]
             marks = ",".join("?" * len(chunk))
-            for case_id, blob, display in self.db.execute(
-                f"SELECT case_id, features, display FROM cases WHERE case_id IN ({marks})", chunk
+            for case_id, blob, display, group in self.db.execute(
+                f"SELECT case_id, features, display, grp FROM cases WHERE case_id IN ({marks})", chunk
             ):
-                out[case_id] = (blob, display)
+                out[case_id] = (blob, display, group)
         return out
+
+    def has_groups(self) -> bool:
+        """True if some case has a group."""
+        return self.db.execute("SELECT 1 FROM cases WHERE grp IS NOT NULL LIMIT 1").fetchone() is not None
 
     def set_round_state(self, round_id: int, state: str) -> None:
         """Set a round's state (``open`` or ``closed``; call inside :meth:`transaction`)."""

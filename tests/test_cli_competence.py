@@ -83,6 +83,15 @@ def test_group_breakdown_table_csv_and_plot(iris_workspace, tmp_path):
     assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert "Competence by group" in result.stdout
     assert "Confusion of ann" in result.stdout
+    # a second run does not replace the files unless told to (common practice)
+    out.write_text("keep me\n")
+    from click.testing import CliRunner
+    from routeplan.cli import cli
+
+    again = CliRunner().invoke(cli, ["--workspace", str(folder), "competence", "--csv", str(out)])
+    assert again.exit_code == 2 and "--overwrite" in again.stderr and out.read_text() == "keep me\n"
+    assert invoke(folder, "competence", "--csv", str(out), "--overwrite").exit_code == 0
+    assert out.read_text() != "keep me\n"
 
 
 def test_narrow_terminal_without_colour(iris_workspace):

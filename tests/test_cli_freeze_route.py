@@ -241,6 +241,19 @@ def test_freeze_without_a_model_is_refused(empty_ws, tmp_path):
     assert not (tmp_path / "p.json").exists()
 
 
+def test_freeze_keeps_existing_files_unless_told_and_names_stored_models(built, tmp_path):
+    # common practice: a command does not silently replace a file it did not write this run
+    ws = shutil.copytree(built["ws"], tmp_path / "ws")
+    policy = tmp_path / "p.json"
+    policy.write_text("keep me\n")
+    one_line_error(invoke(ws, "freeze", "--out", policy), "already exists", "--overwrite")
+    assert policy.read_text() == "keep me\n" and not policy.with_suffix(".md").exists()
+    ok(invoke(ws, "freeze", "--out", policy, "--overwrite"))
+    assert json.loads(policy.read_text())["sha256"]
+    one_line_error(invoke(ws, "freeze", "--out", tmp_path / "q.json", "--model", 999),
+                   "no model 999", f"{built['model_id']} (")
+
+
 def test_freeze_after_the_real_fit(built, tmp_path):
     from routeplan.fitting import fit_workspace
     from routeplan.workspace import Workspace

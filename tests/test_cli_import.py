@@ -91,8 +91,26 @@ def test_experts_add_and_import(stocked_ws, write_file):
     assert result.exit_code == 0, result.stderr
     assert "2 expert(s) added" in result.stdout and "updated: 1" in result.stdout
     got = {r[0]: r[1:] for r in query(stocked_ws, "SELECT name, fee, capacity FROM experts")}
-    # an empty capacity means "no limit" (1.0), as documented in ingest.import_experts
+    # a new expert's empty capacity means "no limit" (1.0), as documented in ingest.import_experts
     assert got == {"alice": (0.75, 0.5), "bob": (0.25, 1.0), "carol": (1.5, 0.25), "dave": (0.0, 1.0), "erin": (2.0, 1.0)}
+
+
+def test_changing_a_fee_keeps_the_capacity(stocked_ws, write_file):
+    # what the user leaves out stays as it was (documented in `experts add --help`)
+    assert run_cli(stocked_ws, "experts", "add", "carol", "--fee", "1.5", "--capacity", "0.25").exit_code == 0
+    assert run_cli(stocked_ws, "experts", "add", "carol", "--fee", "2").exit_code == 0
+    assert run_cli(stocked_ws, "experts", "add", "alice", "--capacity", "0.4").exit_code == 0
+    path = write_file("fees.csv", "name,fee\ncarol,3\n")
+    assert run_cli(stocked_ws, "experts", "import", path).exit_code == 0
+    path = write_file("caps.csv", "name,fee,capacity\ncarol,3,\n")
+    assert run_cli(stocked_ws, "experts", "import", path).exit_code == 0
+    got = {r[0]: r[1:] for r in query(stocked_ws, "SELECT name, fee, capacity FROM experts")}
+    assert got["carol"] == (3.0, 0.25)
+    assert got["alice"] == (0.5, 0.4)  # the fee set in conftest stays
+    before = db_dump(stocked_ws)
+    assert_one_line_error(run_cli(stocked_ws, "experts", "add", "zoe", "--capacity", "0.5"), "new", "--fee")
+    assert_one_line_error(run_cli(stocked_ws, "experts", "add", "carol"), "--fee", "--capacity")
+    assert db_dump(stocked_ws) == before
 
 
 def test_answers_import_counts_historical_answers_in_the_message(stocked_ws, write_file):
@@ -166,6 +184,26 @@ def test_reimporting_an_identical_file_is_a_no_op(command, kind, content, templa
     second = run_cli(ws, command, "import", path)
     assert second.exit_code == 0, second.stderr
     assert "already imported" in second.stdout
+    assert db_dump(ws) == after_first
+
+
+def test_reimporting_cases_with_other_options_is_refused(template_dirs, tmp_path, write_file):
+    # a second import of the same bytes changes nothing, so options that would read the
+    # file differently (or name no column) must not be accepted silently (common practice:
+    # refuse rather than ignore an option)
+    from conftest import copy_workspace
+
+    ws = copy_workspace(template_dirs["empty"], tmp_path / "ws")
+    path = write_file("cases.csv", "case_id,f1,f2,site\nn1,1,2,north\nn2,3,4,south\n")
+    assert run_cli(ws, "cases", "import", path).exit_code == 0
+    after_first = db_dump(ws)
+    for extra, fragments in ((["--group-column", "site"], ["already imported", "--group-column"]),
+                             (["--group-column", "oven"], ["'oven'", "not in the header"]),
+                             (["--feature-columns", "f1,nope"], ["'nope'", "not in the header"]),
+                             (["--feature-columns", "f1"], ["already imported", "--feature-columns"])):
+        assert_one_line_error(run_cli(ws, "cases", "import", path, *extra), *fragments)
+    again = run_cli(ws, "cases", "import", path)
+    assert again.exit_code == 0 and "already imported" in again.stdout
     assert db_dump(ws) == after_first
 
 

@@ -286,6 +286,38 @@ def test_export_refuses_unknown_round_and_column(ws, tmp_path):
     info = plan(ws, "--budget", 2)
     one_line_error(invoke(ws, "round", "export", info["round"], "--out", tmp_path / "s", "--columns", "nope"),
                    "unknown column 'nope'", "x0")
+    # no case has a group here, so 'group' is not a column either
+    one_line_error(invoke(ws, "round", "export", info["round"], "--out", tmp_path / "s", "--columns", "group"),
+                   "unknown column 'group'")
+
+
+def test_export_shows_the_group_and_the_filled_sheet_imports_back(tmp_path):
+    # the group column of `cases import --group-column` can be shown on a sheet, and a
+    # filled sheet carrying it imports as answers (display columns are dropped on import)
+    rng = np.random.default_rng(5)
+    cases = tmp_path / "cases.csv"
+    with open(cases, "w", newline="", encoding="utf-8") as handle:
+        writer = csv.writer(handle)
+        writer.writerow(["case_id", "x0", "site", "truth"])
+        for i in range(60):
+            writer.writerow([f"c{i}", f"{rng.normal():.4f}", ("north", "south")[i % 2], "ab"[i % 3 == 0]])
+    ws = tmp_path / "ws"
+    ok(invoke(ws, "init", "--labels", "a,b"))
+    one_line_error(invoke(ws, "cases", "import", cases, "--group-column", "nope"), "'nope'")
+    ok(invoke(ws, "cases", "import", cases, "--group-column", "site"))
+    ok(invoke(ws, "experts", "add", "ann", "--fee", 0.05))
+    info = plan(ws, "--budget", 0.3, "--strategy", "random")
+    ok(invoke(ws, "round", "export", info["round"], "--out", tmp_path / "s", "--columns", "group,x0"))
+    header, records = _read_sheet(tmp_path / "s" / "ann.csv")
+    assert header == ["case_id", "group", "x0", "expert", "answer"] and len(records) == 6
+    assert all(r["group"] == ("north", "south")[int(r["case_id"][1:]) % 2] for r in records)
+    with open(tmp_path / "s" / "ann.csv", "w", newline="", encoding="utf-8") as handle:
+        writer = csv.writer(handle)
+        writer.writerow(header)
+        for r in records:
+            writer.writerow([r["case_id"], r["group"], r["x0"], "ann", "a"])
+    done = json.loads(ok(invoke(ws, "answers", "import", tmp_path / "s" / "ann.csv", "--json")).stdout)
+    assert done[0]["added"] == 6 and done[0]["notes"]["linked_to_assignments"] == 6
 
 
 def test_export_keeps_filled_sheets_unless_told(ws, tmp_path):
@@ -351,6 +383,15 @@ def test_close_counts_answered_and_expired(ws, tmp_path):
     again = json.loads(ok(invoke(ws, "round", "close", info["round"], "--json")).stdout)
     assert again["already_closed"] is True
     one_line_error(invoke(ws, "round", "close", 99), "no round 99")
+    # an answer that arrives after the close is kept and linked (nothing lost), and the
+    # import says it was late (common practice: tell, don't drop)
+    case_id, expert, *_ = got[5]
+    answers.write_text(f"case_id,expert,answer\n{case_id},{expert},{truth[case_id]}\n", encoding="utf-8")
+    late = json.loads(ok(invoke(ws, "answers", "import", answers, "--json")).stdout)
+    assert late[0]["notes"]["late_for_closed_rounds"] == 1
+    assert late[0]["notes"]["linked_to_assignments"] == 1
+    status = json.loads(ok(invoke(ws, "status", "--json")).stdout)
+    assert (status["rounds"][0]["answered"], status["rounds"][0]["expired"]) == (6, len(got) - 6)
 
 
 # --------------------------------------------------------------------------- weights for fit

@@ -23,14 +23,26 @@ from routeplan.competence import (
     expert_accuracy_table,
     per_class_table,
 )
-from routeplan.stats import mean_interval
-
 DATA = Path(__file__).parent / "data"
 
 
 def _wilson(k, n):
-    """statsmodels' Wilson interval, the reference for every interval below."""
+    """statsmodels' Wilson interval, the reference for every accuracy interval below."""
     return proportion_confint(k, n, method="wilson")
+
+
+def _agresti_min(b, c, n, z=1.959964):
+    """Agresti & Min (Statistics in Medicine 24(5):729-740, 2005), written out from the paper.
+
+    Paired 2x2 table with b pairs "model wrong, expert right" and c "model right, expert
+    wrong" out of n: add 1/2 to each of the four cells, then the Wald interval for
+    p_b - p_c, truncated to [-1, 1]. Checked against PropCIs' worked example in
+    test_saving_interval_matches_propcis_worked_example.
+    """
+    bt, ct, nt = b + 0.5, c + 0.5, n + 2.0
+    p_b, p_c = bt / nt, ct / nt
+    half = z * np.sqrt((p_b + p_c - (p_b - p_c) ** 2) / nt)
+    return max(p_b - p_c - half, -1.0), min(p_b - p_c + half, 1.0)
 
 
 # --------------------------------------------------------------------------- fixtures
@@ -90,13 +102,56 @@ def test_accuracy_table_kappa_and_value_interval(tiny):
         t, a = truth[part["case"]], part["answer"].to_numpy()
         # Cohen's kappa against sklearn.metrics.cohen_kappa_score
         assert table.loc[name, "kappa"] == pytest.approx(cohen_kappa_score(t, a))
-    part = scored[scored["expert"] == "a"]
-    t = truth[part["case"]]
-    d = (model[part["case"]] != t).astype(float) - (part["answer"].to_numpy() != t)
-    _, low, high = mean_interval(d)  # normal interval of the paired difference (common practice)
+    # a on cases 0..3: the model (always 0) is wrong on 1 and 3 where a is right (b = 2), right
+    # on 2 where a is wrong (c = 1): the Agresti-Min interval of the paired difference
+    low, high = _agresti_min(2, 1, 4)
     assert table.loc["a", "cost_saved_low"] == pytest.approx(low)
+    assert table.loc["a", "cost_saved_high"] == pytest.approx(high)
     assert table.loc["a", "value_high"] == pytest.approx(high / 0.5)
     assert np.isnan(table.loc["b", "value_per_fee"])  # no fee for b
+    # the model against itself has nothing to save: no figure rather than 0 [0, 0]
+    assert table.loc[MODEL, ["cost_saved_per_case", "cost_saved_low", "cost_saved_high",
+                             "audit_cost_saved_per_case", "value_low"]].isna().all()
+
+
+def _paired_answers(n_b, n_c, n_both_right, n_both_wrong):
+    """One expert and the model on two classes; truth is 0 everywhere.
+
+    n_b cases: model wrong, expert right; n_c: model right, expert wrong; then concordant ones.
+    """
+    model = np.concatenate([np.ones(n_b), np.zeros(n_c), np.zeros(n_both_right), np.ones(n_both_wrong)])
+    expert = np.concatenate([np.zeros(n_b), np.ones(n_c), np.zeros(n_both_right), np.ones(n_both_wrong)])
+    n = model.size
+    answers = pd.DataFrame({"case": np.arange(n), "expert": "e", "answer": expert.astype(int)})
+    return answers, np.zeros(n, dtype=int), model.astype(int)
+
+
+def test_saving_interval_matches_propcis_worked_example():
+    # PropCIs::diffpropci.mp(b = 40, c = 20, n = 160): 95% CI -0.21601726 -0.03089632 for c - b
+    # (example output, rdrr.io/cran/PropCIs/man/diffpropci.mp.html); here b - c, so the sign flips
+    answers, truth, model = _paired_answers(40, 20, 70, 30)
+    row = expert_accuracy_table(answers, truth, model_pred=model, n_classes=2,
+                                fees={"e": 0.5}, error_cost=2.0).set_index("expert").loc["e"]
+    assert row["cost_saved_per_case"] == pytest.approx(2.0 * 20 / 160)  # plain difference
+    assert row["cost_saved_low"] == pytest.approx(2.0 * 0.03089632, abs=1e-8)
+    assert row["cost_saved_high"] == pytest.approx(2.0 * 0.21601726, abs=1e-8)
+    assert row["value_low"] == pytest.approx(2.0 * 0.03089632 / 0.5, abs=1e-7)
+    assert _agresti_min(40, 20, 160) == pytest.approx((0.03089632, 0.21601726), abs=5e-9)
+
+
+@pytest.mark.parametrize("cells", [(0, 0, 3, 0), (0, 0, 2, 2), (2, 0, 0, 0), (0, 3, 0, 0), (1, 0, 0, 0)])
+def test_saving_interval_never_zero_width_from_few_answers(cells):
+    # the reviewer's "50.0 [50.0, 50.0]" and "0.0 [0.0, 0.0]": a handful of answers that all
+    # agree with the model, or all differ one way, gave a normal interval of variance 0
+    answers, truth, model = _paired_answers(*cells)
+    row = expert_accuracy_table(answers, truth, model_pred=model, n_classes=2,
+                                fees={"e": 0.02}).set_index("expert").loc["e"]
+    n_b, n_c = cells[0], cells[1]
+    low, high = _agresti_min(n_b, n_c, sum(cells))  # Agresti & Min (2005)
+    assert row["cost_saved_per_case"] == pytest.approx((n_b - n_c) / sum(cells))
+    assert (row["cost_saved_low"], row["cost_saved_high"]) == pytest.approx((low, high))
+    assert row["value_high"] - row["value_low"] > 0.1 / 0.02
+    assert row["cost_saved_low"] <= row["cost_saved_per_case"] <= row["cost_saved_high"]
 
 
 def test_audit_basis_hand_example(tiny):
@@ -137,6 +192,36 @@ def test_weighted_audit_is_hajek_with_kish_size():
     assert row["audit_accuracy_low"] == pytest.approx(low)
     # the truth basis stays unweighted
     assert row["accuracy"] == pytest.approx(right.mean())
+    # counts stay counts (documented rule): the right answers on the scale of n_scored, not the
+    # sum of their inverse selection probabilities (the reviewer saw 1972.67 beside 3 scored)
+    assert row["audit_n_scored"] == n and row["audit_n_correct"] == int(right.sum())
+    assert isinstance(row["audit_n_correct"], (int, np.integer))
+
+
+def test_weighted_saving_interval_on_kish_effective_counts():
+    rng = np.random.default_rng(22)
+    n = 60
+    truth = rng.integers(2, size=n)
+    expert = np.where(rng.random(n) < 0.85, truth, 1 - truth)
+    model = np.where(rng.random(n) < 0.7, truth, 1 - truth)
+    weight = rng.choice([1.0, 4.0, 9.0], size=n)
+    answers = pd.DataFrame({"case": np.arange(n), "expert": "a", "answer": expert,
+                            "audit": True, "weight": weight})
+    row = expert_accuracy_table(answers, truth, model_pred=model).set_index("expert").loc["a"]
+    share_b = np.average((model != truth) & (expert == truth), weights=weight)
+    share_c = np.average((model == truth) & (expert != truth), weights=weight)
+    n_eff = weight.sum() ** 2 / (weight**2).sum()  # Kish (Survey Sampling, 1965)
+    assert row["audit_cost_saved_per_case"] == pytest.approx(share_b - share_c)  # Hajek difference
+    low, high = _agresti_min(share_b * n_eff, share_c * n_eff, n_eff)  # Agresti & Min (2005)
+    assert row["audit_cost_saved_low"] == pytest.approx(low)
+    assert row["audit_cost_saved_high"] == pytest.approx(high)
+    # equal weights change nothing: the unweighted interval on plain counts
+    flat = expert_accuracy_table(answers.assign(weight=5.0), truth, model_pred=model)
+    pd.testing.assert_series_equal(
+        flat.filter(like="audit_cost_saved").iloc[0],
+        expert_accuracy_table(answers.drop(columns="weight"), truth, model_pred=model)
+        .filter(like="audit_cost_saved").iloc[0],
+    )
 
 
 def test_audit_sample_is_unbiased_where_acquisition_is_not():
