@@ -27,10 +27,12 @@ from sklearn.model_selection import train_test_split
 from sklearn.utils.validation import check_array, check_is_fitted
 from torch import nn
 
+from routeplan import blend
 from routeplan import calibration as cal
 from routeplan import costs as costs_mod
 from routeplan._nets import (
     _CHUNK,
+    _CLIP,
     _fit_threads,
     _forward,
     _load_net,
@@ -41,8 +43,10 @@ from routeplan._nets import (
     _train_loop,
 )
 
-#: Version of the layout written by ``get_arrays``.
-ARRAYS_FORMAT = 1
+#: Version of the layout written by ``get_arrays`` (2 added the logistic blend's arrays;
+#: version 1, without them, is still read: the network alone).
+ARRAYS_FORMAT = 2
+READABLE_FORMATS = (1, 2)
 _EPS = 1e-12
 
 CALIBRATION_PRIOR = 5.0
@@ -444,12 +448,14 @@ class _BaseRouter(BaseEstimator):
         when the caller gave :meth:`_correctness_warnings` already. It reads
         ``train``, ``val`` and ``gen`` and writes only ``correctness_net_``,
         ``expert_platt_``, ``history_["correctness"]`` and ``calibration_["experts"]``, so
-        it may run in a thread beside the classifier's training.
+        it may run in a thread beside the classifier's training (and, with
+        ``logistic_blend``, the ``correctness_linear_*`` and ``correctness_mix_`` arrays).
         """
         M = self.n_experts_
         net = self._correctness_net() if net is None else net
         self.correctness_net_ = net
         self.expert_platt_ = np.tile([1.0, 0.0], (M, 1))
+        self._no_blend()
         if M == 0:
             return
         known = train.known
@@ -486,8 +492,52 @@ class _BaseRouter(BaseEstimator):
 
         self.history_["correctness"] = _train_loop(net, loss_fn, tensors, val_score, settings,
                                                    gen, "expert correctness")
+        if self.logistic_blend:
+            self._fit_blend(train, val)
         if self.calibrate:
             self._calibrate_correctness(val)
+
+    def _no_blend(self) -> None:
+        """The network alone: zero logistic coefficients, network weight 1 per expert."""
+        M, d = self.n_experts_, self.n_features_in_
+        self.correctness_linear_coef_ = np.zeros((M, d))
+        self.correctness_linear_intercept_ = np.zeros(M)
+        self.correctness_mix_ = np.ones(M)
+
+    def _fit_blend(self, train: _Part, val: _Part) -> None:
+        """Per expert with fewer than ``BLEND_BELOW`` training answers: a logistic
+        regression, mixed with the network by validation log-loss (:mod:`routeplan.blend`)."""
+        counts = train.known.sum(axis=0)
+        todo = [j for j in range(self.n_experts_) if 0 < counts[j] < blend.BLEND_BELOW]
+        if not todo:
+            return
+        Xs, Xs_val = self._std_numpy(train.X), self._std_numpy(val.X)
+        z_net = _forward(self.correctness_net_, val.X, self.x_mean_, self.x_scale_).astype(np.float64)
+        for j in todo:
+            k, v = train.known[:, j], val.known[:, j]
+            coef, icpt = blend.fit_logistic(Xs[k], train.answers[k, j] == train.y[k], train.weights[k, j])
+            self.correctness_linear_coef_[j], self.correctness_linear_intercept_[j] = coef, icpt
+            self.correctness_mix_[j] = blend.choose_mix(
+                z_net[v, j], Xs_val[v] @ coef + icpt, val.answers[v, j] == val.y[v], val.weights[v, j])
+        self.history_["correctness_mix"] = self.correctness_mix_.tolist()
+
+    def _std_numpy(self, X: np.ndarray) -> np.ndarray:
+        """Standardised features (clipped as when scoring), float64."""
+        Z = (np.asarray(X, dtype=np.float64) - self.x_mean_) / self.x_scale_
+        return np.clip(Z, -_CLIP, _CLIP)
+
+    def _correctness_logits(self, X: np.ndarray) -> np.ndarray:
+        """Each expert's correctness logit before calibration, (n, M) float64: the network's,
+        blended with the logistic regression where ``correctness_mix_`` is below 1."""
+        Z = _forward(self.correctness_net_, X, self.x_mean_, self.x_scale_).astype(np.float64)
+        mix = getattr(self, "correctness_mix_", None)
+        if mix is None or np.all(mix == 1.0):
+            return Z
+        for s in range(0, X.shape[0], _CHUNK):
+            part = blend.linear_logits(self._std_numpy(X[s:s + _CHUNK]), self.correctness_linear_coef_,
+                                       self.correctness_linear_intercept_)
+            Z[s:s + _CHUNK] = mix * Z[s:s + _CHUNK] + (1.0 - mix) * part
+        return Z
 
     def _correctness_warnings(self, train: _Part, val: _Part) -> None:
         """Warn where the answers leave the correctness model without data."""
@@ -501,7 +551,7 @@ class _BaseRouter(BaseEstimator):
 
     def _calibrate_correctness(self, val: _Part) -> None:
         """Platt scaling per expert on the validation answers that are known."""
-        Z = _forward(self.correctness_net_, val.X, self.x_mean_, self.x_scale_)
+        Z = self._correctness_logits(val.X)
         report = self.calibration_.setdefault("experts", [])
         for j in range(self.n_experts_):
             k = val.known[:, j]
@@ -518,7 +568,7 @@ class _BaseRouter(BaseEstimator):
         """Calibrated P(expert j right | x), (n, M) float64."""
         if self.n_experts_ == 0:
             return np.zeros((X.shape[0], 0))
-        Z = _forward(self.correctness_net_, X, self.x_mean_, self.x_scale_).astype(np.float64)
+        Z = self._correctness_logits(X)
         return cal.apply_platt(Z, self.expert_platt_[:, 0], self.expert_platt_[:, 1])
 
     def _imputed(self, part: _Part, q: np.ndarray) -> np.ndarray:
@@ -586,7 +636,10 @@ class _BaseRouter(BaseEstimator):
         """
         check_is_fitted(self)
         arrays = {"x_mean": self.x_mean_, "x_scale": self.x_scale_, "fees": self.fees_,
-                  "cost_matrix": self.cost_matrix_, "expert_platt": self.expert_platt_}
+                  "cost_matrix": self.cost_matrix_, "expert_platt": self.expert_platt_,
+                  "correctness_linear.coef": self.correctness_linear_coef_,
+                  "correctness_linear.intercept": self.correctness_linear_intercept_,
+                  "correctness_mix": self.correctness_mix_}
         for name in self._net_names:
             net = getattr(self, f"{name}_net_", None)
             if net is not None:
@@ -641,6 +694,12 @@ class _BaseRouter(BaseEstimator):
         head = self.correctness_head or self.head
         self.correctness_net_ = _load_net(_make_net(d, M, head, self.hidden_),
                                           "correctness", arrays)
+        self._no_blend()  # format 1 (no blend arrays): the network alone
+        if "correctness_mix" in arrays:
+            self.correctness_linear_coef_ = np.asarray(arrays["correctness_linear.coef"], np.float64).reshape(M, d)
+            self.correctness_linear_intercept_ = np.asarray(
+                arrays["correctness_linear.intercept"], np.float64).reshape(M)
+            self.correctness_mix_ = np.asarray(arrays["correctness_mix"], np.float64).reshape(M)
 
 
 def _jsonable(obj: Any) -> Any:
@@ -676,7 +735,15 @@ _COMMON_PARAMS_DOC = """
         (about 1,000 training cases) they made the plug-in under-defer (k = 8: cost
         0.022 against 0.015 with two layers).
     correctness_head : {"mlp", "linear"}, optional
-        Form of the correctness model; defaults to ``head``.
+        Form of the correctness network; defaults to ``head``.
+    logistic_blend : bool, default=False
+        For each expert with fewer than 5,000 known training answers
+        (:data:`routeplan.blend.BLEND_BELOW`), also fit an L2-penalised logistic
+        regression of "answer right" on the features, and mix its logit with the
+        network's by a weight chosen on the validation answers. The weights chosen are
+        ``correctness_mix_`` (1: the network alone). Off by default: measured in
+        :mod:`routeplan.blend`, it helped a little on a few hundred random answers of the
+        synthetic scenario and not on digits or in rehearsal.
     max_epochs : int, default=200
         Upper bound on passes over the training split (per network).
     batch_size : int, default=512

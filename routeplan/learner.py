@@ -51,7 +51,7 @@ from typing import Any
 
 import numpy as np
 
-from routeplan._routerbase import ARRAYS_FORMAT, CALIBRATION_PRIOR, _BaseRouter, realised_costs
+from routeplan._routerbase import CALIBRATION_PRIOR, READABLE_FORMATS, _BaseRouter, realised_costs
 from routeplan.ensemble import EnsembleRouter
 from routeplan.joint import SurrogateRouter
 from routeplan.plugin import PluginRouter
@@ -91,7 +91,7 @@ def router_from_arrays(arrays: Mapping[str, np.ndarray], meta: Mapping[str, Any]
     -------
     PluginRouter, SurrogateRouter or EnsembleRouter
     """
-    if int(meta.get("format_version", -1)) != ARRAYS_FORMAT:
+    if int(meta.get("format_version", -1)) not in READABLE_FORMATS:
         raise ValueError(f"unknown router format {meta.get('format_version')!r}")
     cls = _ROUTERS.get(str(meta.get("router")))
     if cls is None:

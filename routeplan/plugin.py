@@ -149,7 +149,7 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
 
     def __init__(self, *, n_classes: int | None = None, head: str = "mlp",
                  hidden: tuple[int, ...] | None = None, correctness_head: str | None = None,
-                 max_epochs: int = 200, batch_size: int = 512, learning_rate: float = 1e-3,
+                 logistic_blend: bool = False, max_epochs: int = 200, batch_size: int = 512, learning_rate: float = 1e-3,
                  weight_decay: float = 1e-4, patience: int = 15,
                  early_stopping: str = "loss", validation_fraction: float = 0.2,
                  calibrate: bool = True, calibration_prior: float = CALIBRATION_PRIOR,
@@ -203,7 +203,7 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
         self.expert_stack_[:, 2] = self.expert_platt_[:, 1]
         if M == 0 or not self.calibrate:
             return
-        z_x = _forward(self.correctness_net_, val.X, self.x_mean_, self.x_scale_)
+        z_x = self._correctness_logits(val.X)
         z_c = _logit(P_val @ self.class_accuracy_.T)
         reports = self.calibration_.get("experts", [{} for _ in range(M)])
         for j, rep in enumerate(reports):
@@ -307,7 +307,7 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
         M = self.n_experts_
         if M == 0:
             return np.zeros((X.shape[0], 0))
-        z_x = _forward(self.correctness_net_, X, self.x_mean_, self.x_scale_).astype(np.float64)
+        z_x = self._correctness_logits(X)
         z_c = _logit(P @ self.class_accuracy_.T)
         S = self.expert_stack_
         return expit(S[:, 0] * z_x + S[:, 1] * z_c + S[:, 2])
