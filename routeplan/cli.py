@@ -687,9 +687,9 @@ def round_plan(app, budget, strategy, seed, audit_share, max_per_expert, include
     The fees of the round's assignments add up to at most --budget. Each expert is asked
     about at most --max-per-expert cases and at most its capacity share of the round's
     candidate cases (those the round may ask about; rounded up); no expert is asked twice
-    about a case. Every
-    assignment records its selection probability. After 'fit', the kept router's open
-    decisions steer the default strategy (see --focus-margin); fit again after each round.
+    about a case. Every assignment records its selection probability. After 'fit', the
+    kept router's open decisions steer the default strategy (see --focus-margin); fit
+    again after each round.
 
     Example:
 

@@ -249,6 +249,9 @@ def render_fit(report) -> Group:
     shares = [c for c in report.table.columns if c.startswith("share_")]
     for column in shares:
         table.add_column(column[len("share_"):], justify="right")
+    imputed = "imputed_share" in report.table.columns and bool((report.table["imputed_share"] > 0).any())
+    if imputed:
+        table.add_column("imputed", justify="right")
     for row in report.table.to_dict(orient="records"):
         name = row["router"] + (" (kept)" if row["router"] == report.chosen else "")
         table.add_row(
@@ -257,8 +260,14 @@ def render_fit(report) -> Group:
             f"{row['accuracy']:.3f}",
             f"{row['coverage']:.0%}",
             *[f"{row[c]:.0%}" for c in shares],
+            *([f"{row['imputed_share']:.0%}"] if imputed else []),
             style="bold" if row["router"] == report.chosen else ("dim" if row.get("kind") != "router" else None),
         )
+    if imputed:
+        table.caption = ("imputed: share of the held-out cases whose cost is an estimate (the expert "
+                         "sent to had not answered it), not an observed outcome; the interval does "
+                         "not include that estimate's error")
+        table.caption_justify = "left"
     text = Text()
     eff = report.effective_answers or {}
 

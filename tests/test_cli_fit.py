@@ -77,3 +77,37 @@ def test_uneven_weights_get_a_note():
     # Kish (1965): effective size well under the count means a few answers carry the weight
     notes = uneven_weight_notes({"e1": 300, "e2": 300, "e3": 10}, {"e1": 290.0, "e2": 60.0, "e3": 1.0})
     assert len(notes) == 1 and notes[0].startswith("e2's 300 answers count as about 60")
+
+
+def test_fit_names_silent_experts_marks_imputed_costs_and_honours_quiet(tmp_path):
+    # scikit-learn's iris; expert "ann" answers a third of the cases (right on most), "bo" none.
+    # The routers' data warning must reach the user as a note naming "bo" (not as a Python
+    # warning with its source line), rows resting on estimated costs must say so, and
+    # --quiet must print nothing on success (common practice of command-line tools).
+    from click.testing import CliRunner
+    from sklearn.datasets import load_iris
+
+    from routeplan.cli import cli
+
+    X, y = load_iris(return_X_y=True)
+    names = ["setosa", "versicolor", "virginica"]
+    cases = tmp_path / "cases.csv"
+    cases.write_text("case_id,a,b,c,d,truth\n" + "".join(
+        f"i{i},{','.join(f'{v:g}' for v in row)},{names[t]}\n" for i, (row, t) in enumerate(zip(X, y))))
+    answers = tmp_path / "answers.csv"
+    answers.write_text("case_id,expert,answer\n" + "".join(
+        f"i{i},ann,{names[y[i]] if i % 5 else names[(y[i] + 1) % 3]}\n" for i in range(0, 150, 3)))
+    ws = tmp_path / "ws"
+    invoke(ws, "init", "--labels", ",".join(names))
+    invoke(ws, "cases", "import", cases)
+    invoke(ws, "experts", "add", "ann", "--fee", "0.05")
+    invoke(ws, "experts", "add", "bo", "--fee", "0.1")
+    invoke(ws, "answers", "import", answers)
+    runner = CliRunner()
+    result = runner.invoke(cli, ["--workspace", str(ws), "fit", "--router", "plugin", "--max-epochs", "3"])
+    assert result.exit_code == 0, result.stderr
+    assert "no answer yet from bo" in " ".join(result.stdout.split())
+    assert "imputed" in result.stdout
+    assert "UserWarning" not in result.stderr and "warnings.warn" not in result.stderr
+    quiet = runner.invoke(cli, ["--workspace", str(ws), "--quiet", "fit", "--router", "plugin", "--max-epochs", "3"])
+    assert quiet.exit_code == 0 and quiet.stdout == ""
