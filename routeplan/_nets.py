@@ -153,8 +153,8 @@ def _train_loop(
     """Adam over shuffled mini-batches; keep the weights of the best validation score.
 
     ``val_score`` returns ``(primary, tie_break)``, both lower-is-better; training stops
-    after ``patience`` epochs without improvement. An epoch whose primary score is not
-    finite (a diverged network) is never kept; if no epoch gave a finite score the loop
+    after ``patience`` epochs without improvement. An epoch whose score is not finite
+    (a diverged network) is never kept; if no epoch gave a finite score the loop
     raises ``FloatingPointError``. Returns the per-epoch scores.
     """
     opt = _adam(net, settings)
@@ -181,7 +181,7 @@ def _train_loop(
             with torch.no_grad():
                 score = val_score(net)
             history.append(score)
-            if math.isfinite(score[0]) and score < best:
+            if all(math.isfinite(v) for v in score) and score < best:
                 best, stale = score, 0
                 best_state = {k: v.detach().clone() for k, v in net.state_dict().items()}
             else:

@@ -30,6 +30,7 @@ from torch import nn
 from routeplan import blend
 from routeplan import calibration as cal
 from routeplan import costs as costs_mod
+from routeplan.errors import ExpertsWithoutAnswers
 from routeplan._nets import (
     _CHUNK,
     _CLIP,
@@ -449,7 +450,8 @@ class _BaseRouter(BaseEstimator):
         ``train``, ``val`` and ``gen`` and writes only ``correctness_net_``,
         ``expert_platt_``, ``history_["correctness"]`` and ``calibration_["experts"]``, so
         it may run in a thread beside the classifier's training (and, with
-        ``logistic_blend``, the ``correctness_linear_*`` and ``correctness_mix_`` arrays).
+        ``logistic_blend``, the ``correctness_linear_*`` and ``correctness_mix_`` arrays
+        and ``history_["correctness_mix"]``).
         """
         M = self.n_experts_
         net = self._correctness_net() if net is None else net
@@ -485,8 +487,8 @@ class _BaseRouter(BaseEstimator):
             return (wb * bce).sum() / (wb > 0).sum().clamp(min=1)
 
         def val_score(m: nn.Module) -> tuple[float, float]:
-            if not v_known.any():
-                return (0.0, 0.0)
+            if not v_known.any():  # nothing to score: any finite network will do
+                return (0.0, 0.0) if bool(torch.isfinite(m(Xv)).all()) else (np.inf, np.inf)
             bce = F.binary_cross_entropy_with_logits(m(Xv), v_t, reduction="none")
             return (float((v_w * bce).sum() / v_w.sum()), 0.0)
 
@@ -542,9 +544,12 @@ class _BaseRouter(BaseEstimator):
     def _correctness_warnings(self, train: _Part, val: _Part) -> None:
         """Warn where the answers leave the correctness model without data."""
         known = train.known
-        if np.any(known.sum(0) == 0):
-            warnings.warn("some expert has no known answer in the training split; its "
-                          "correctness stays at the prior 0.5", stacklevel=4)
+        silent = np.flatnonzero(known.sum(0) == 0)
+        if silent.size:
+            warnings.warn(ExpertsWithoutAnswers(
+                f"expert column(s) {', '.join(map(str, silent))} have no known answer in the "
+                "training split; their correctness stays at the prior 0.5", silent.tolist()),
+                stacklevel=4)
         if known.any() and not val.known.any():
             warnings.warn("no known answer in the validation split: the correctness model "
                           "trains for a fixed 20 epochs", stacklevel=4)

@@ -15,16 +15,15 @@ per expert on a grid. Logistic regression: Cox, "The regression analysis of bina
 sequences", JRSS B 20(2), 1958; fitted by scikit-learn's lbfgs solver.
 
 The routers use it with ``logistic_blend=True``; it is off by default. Measured on
-12-04 with the blend on by default (gap to the full-information cost; the network alone
-in brackets): ``benchmarks/probe_few_answers.py --router logistic_blend=false`` on the
-synthetic scenario, 6 seeds, 150 random answers per expert +0.0492 (+0.0516, better on 4
-of 6), 600 per expert +0.0073 (+0.0070); on digits, 60 per expert, +0.0189 (+0.0179,
-worse on 4 of 6). ``benchmarks/bench_rounds.py`` (seeds 0-7): synthetic ``value`` 96.6 fee
-units against ``random``'s 273 (the network alone: 80 against 273), mean median gap
-``value`` 0.0233 (0.0210); digits 4 against 12 (3.4 against 10.8), ``random``'s mean
-median gap 0.0152 (0.0112). With 30 or so validation answers per expert the chosen weight
-is noisy: at 150 answers per expert a fixed weight of 0.25 would have done better than the
-chosen one, at 600 the network alone (a throwaway check, not in the repo).
+12-04 while the blend was briefly the default (gap to the full-information cost; the
+network alone in brackets; to repeat now, run with ``--router logistic_blend=true``):
+``benchmarks/probe_few_answers.py`` on the synthetic scenario, 6 seeds, 150 random answers
+per expert +0.0492 (+0.0516, better on 4 of 6), 600 per expert +0.0073 (+0.0070); on
+digits, 60 per expert, +0.0189 (+0.0179, worse on 4 of 6). ``benchmarks/bench_rounds.py``
+(seeds 0-7): synthetic ``value`` 96.6 fee units against ``random``'s 273 (the network
+alone: 80 against 273), mean median gap ``value`` 0.0233 (0.0210); digits 4 against 12
+(3.4 against 10.8), ``random``'s mean median gap 0.0152 (0.0112). With 30 or so
+validation answers per expert the chosen weight is noisy.
 """
 
 from __future__ import annotations
@@ -42,7 +41,7 @@ BLEND_BELOW = 5000
 #: Weights ``a`` of the network tried on the validation answers.
 MIX_GRID = np.linspace(0.0, 1.0, 21)
 #: Inverse L2 strength of the logistic regression on standardised features (scikit-learn's
-#: ``C``; its default). Not tuned: 0.1 and 10 routed alike in a throwaway check.
+#: ``C``; its default). Not tuned.
 _C = 1.0
 
 

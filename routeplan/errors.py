@@ -55,3 +55,18 @@ class WorkspaceExists(InputError):
 
 class NotFitted(InputError):
     """A command needs a fitted model and there is none yet."""
+
+
+class ExpertsWithoutAnswers(UserWarning):
+    """Some experts have no known answer in a router's training split.
+
+    Parameters
+    ----------
+    message : str
+    experts : list of int
+        Their answer columns, so that a caller that knows the names can say them.
+    """
+
+    def __init__(self, message: str, experts: list[int]) -> None:
+        super().__init__(message)
+        self.experts = list(experts)

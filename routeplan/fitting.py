@@ -10,14 +10,13 @@ arrays plus JSON (never pickled), marking the chosen one.
 from __future__ import annotations
 
 import warnings
-
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 import pandas as pd
 
-from .errors import InputError, NotFitted
+from .errors import ExpertsWithoutAnswers, InputError, NotFitted
 from .features import FeatureSpec, fit_features
 from .pool import Pool, load_pool
 from .stats import effective_sample_size
@@ -390,19 +389,26 @@ def _plain(value: Any) -> Any:
 
 
 def _data_notes(caught: list[warnings.WarningMessage], counts: dict[str, int]) -> list[str]:
-    """The routers' data warnings as notes, once each, naming experts with no answer."""
+    """The routers' data warnings as notes, once each, naming the experts they concern."""
+    names = list(counts)
     notes = []
     silent = [name for name, n in counts.items() if n == 0]
     if silent:
         notes.append(f"no answer yet from {', '.join(silent)} on cases with truth: the routers take "
                      "their correctness to be the prior 0.5 and route on that")
     for w in caught:
-        text = str(w.message)
-        if not issubclass(w.category, UserWarning) or text in notes:
+        if not issubclass(w.category, UserWarning):
             continue
-        if silent and text.startswith("some expert has no known answer"):
-            continue  # said above, with the names
-        notes.append(text)
+        text = str(w.message)
+        columns = getattr(w.message, "experts", None)
+        if isinstance(w.message, ExpertsWithoutAnswers) and columns is not None:
+            named = [names[j] for j in columns if 0 <= j < len(names) and names[j] not in silent]
+            if not named:
+                continue  # said above
+            text = (f"{', '.join(named)} had no answer in a router's training split (all fell in its "
+                    "validation split): that router takes their correctness to be the prior 0.5")
+        if text not in notes:
+            notes.append(text)
     return notes
 
 

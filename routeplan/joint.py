@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping
 from typing import Any
 
@@ -121,6 +122,10 @@ class SurrogateRouter(_BaseRouter):
     Attributes
     ----------
     scorer_net_, correctness_net_ : torch.nn.Module
+    correctness_mix_ : ndarray of shape (M,)
+        The network's weight in each expert's correctness logit (1 unless ``logistic_blend``).
+    correctness_linear_coef_, correctness_linear_intercept_ : ndarray of shape (M, d), (M,)
+        The blended logistic regressions (zeros unless ``logistic_blend``).
     cost_scale_ : float
         Bound ``B`` on option costs (largest error cost plus largest fee), used by OvA.
     class_temperature_ : float
@@ -187,6 +192,8 @@ class SurrogateRouter(_BaseRouter):
 
         def val_score(m: nn.Module) -> tuple[float, float]:
             G = m(Xv)
+            if not torch.isfinite(G).all():  # diverged: never the epoch to keep
+                return (math.inf, math.inf)
             cost = realised_costs(c_val, self._raw_routes(G.numpy())).mean()
             loss = float(self._loss(G, *v_targets))
             return (loss, float(cost)) if self._stop_on() == "loss" else (float(cost), loss)

@@ -130,6 +130,10 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
     classifier_net_ : torch.nn.Module or None
         None in two-stage mode.
     correctness_net_ : torch.nn.Module
+    correctness_mix_ : ndarray of shape (M,)
+        The network's weight in each expert's correctness logit (1 unless ``logistic_blend``).
+    correctness_linear_coef_, correctness_linear_intercept_ : ndarray of shape (M, d), (M,)
+        The blended logistic regressions (zeros unless ``logistic_blend``).
     class_temperature_ : float
     expert_platt_ : ndarray of shape (M, 2)
         Platt ``(a, b)`` per expert.

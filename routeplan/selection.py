@@ -316,7 +316,8 @@ def fit_candidates(
     The cases are split (stratified by label, seeded) into a fitting part and a
     selection part of share ``selection_fraction``. Each candidate is fitted on the
     fitting part (which it splits again for early stopping and calibration) and all are
-    compared on the selection part by :func:`select_router`, with the baselines.
+    compared on the selection part by :func:`select_router`, with the baselines. A
+    candidate whose training diverges is left out (a note says so).
 
     Parameters
     ----------
@@ -349,6 +350,11 @@ def fit_candidates(
     table : pandas.DataFrame
         See :class:`SelectionResult`; ``table.attrs["notes"]`` holds the caveats and
         ``table.attrs["selection_index"]`` the rows of ``X`` used for selection.
+
+    Raises
+    ------
+    FloatingPointError
+        If every candidate diverged.
     """
     names = tuple(names) if names is not None else (
         TWO_STAGE_CANDIDATES if class_proba is not None else DEFAULT_CANDIDATES)
@@ -370,6 +376,7 @@ def fit_candidates(
     rng = _as_generator(random_state)
     fit_idx, sel_idx = _split_indices(y, selection_fraction, int(rng.integers(0, 2**31 - 1)))
     fitted: dict[str, Any] = {}
+    diverged: list[str] = []
     share_member = _ENSEMBLE in names and "plugin" in names
     for name in names:
         cls, kw = CANDIDATES[name]
@@ -378,15 +385,28 @@ def fit_candidates(
         if share_member and name == "plugin":
             continue  # the ensemble's first member (below)
         extra = {} if P is None else {"class_proba": P[fit_idx]}
-        fitted[name] = cls(**params).fit(X[fit_idx], y[fit_idx], A[fit_idx], fees=fees,
-                                         cost_matrix=cost_matrix, sample_weight=W[fit_idx],
-                                         **extra)
-    if share_member:
+        try:
+            fitted[name] = cls(**params).fit(X[fit_idx], y[fit_idx], A[fit_idx], fees=fees,
+                                             cost_matrix=cost_matrix, sample_weight=W[fit_idx],
+                                             **extra)
+        except FloatingPointError:  # one unstable candidate does not sink the others
+            diverged.append(name)
+    if share_member and _ENSEMBLE in fitted:
         fitted["plugin"] = fitted[_ENSEMBLE].members_[0]
-    fitted = {name: fitted[name] for name in names}  # the order of preference
+    elif share_member:
+        diverged.append("plugin")
+    names = [name for name in names if name in fitted]  # the order of preference
+    if not names:
+        raise FloatingPointError("every candidate router diverged in training (no epoch gave a "
+                                 "finite validation score); check the features for extreme values")
+    fitted = {name: fitted[name] for name in names}
     result = select_router(fitted, X[sel_idx], y[sel_idx], A[sel_idx], fees=fees,
                            cost_matrix=fitted[names[0]].cost_matrix_,
                            expert_names=expert_names,
                            class_proba_val=None if P is None else P[sel_idx], rule=rule)
     result.table.attrs["selection_index"] = sel_idx
+    if diverged:
+        result.table.attrs["notes"] = list(result.table.attrs.get("notes", [])) + [
+            f"left out, because training diverged (no epoch gave a finite validation score): "
+            f"{', '.join(diverged)}"]
     return result.best_name, fitted, result.table

@@ -85,7 +85,8 @@ def _linear_expert(n: int, seed: int):
 
 def test_router_blends_where_answers_are_few_and_gains_on_held_out_cases():
     # with 150 answers and a competence that is linear in x, the blend leans on the regression
-    # and its P(right) is closer to the truth (expected log-loss against the known q, held out)
+    # and its P(right) is closer to the truth (expected log-loss against the known q, held out;
+    # common practice: a correctly specified model wins with few data)
     X, y, A, _ = _linear_expert(1500, 0)
     A = A.copy()
     A[150:] = -1  # 150 answers
@@ -105,6 +106,7 @@ def test_router_blends_where_answers_are_few_and_gains_on_held_out_cases():
 
 
 def test_blend_is_off_by_default():
+    # the documented default (measured in routeplan.blend: not a gain in rehearsal)
     X, y, A, _ = _linear_expert(300, 4)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", UserWarning)
@@ -113,6 +115,8 @@ def test_blend_is_off_by_default():
 
 
 def test_blend_skips_experts_with_many_answers_and_old_arrays_load(monkeypatch):
+    # documented behaviour (BLEND_BELOW; arrays format 1 still read), common practice for
+    # stored models: old versions keep loading, unknown ones are refused
     X, y, A, _ = _linear_expert(600, 2)
     A = np.column_stack([A[:, 0], np.where(np.arange(600) < 100, A[:, 0], -1)])
     monkeypatch.setattr(blend, "BLEND_BELOW", 200)  # expert 0 has about 480 training answers

@@ -111,3 +111,19 @@ def test_fit_names_silent_experts_marks_imputed_costs_and_honours_quiet(tmp_path
     assert "UserWarning" not in result.stderr and "warnings.warn" not in result.stderr
     quiet = runner.invoke(cli, ["--workspace", str(ws), "--quiet", "fit", "--router", "plugin", "--max-epochs", "3"])
     assert quiet.exit_code == 0 and quiet.stdout == ""
+
+
+def test_data_notes_name_every_expert_a_router_saw_no_answer_from():
+    # an expert with answers that all fell in a router's validation split is named too, not
+    # hidden behind the note about experts with no answer at all (common practice: name names)
+    import warnings
+
+    from routeplan.errors import ExpertsWithoutAnswers
+    from routeplan.fitting import _data_notes
+
+    caught = [warnings.WarningMessage(ExpertsWithoutAnswers("columns 0, 1", [0, 1]), ExpertsWithoutAnswers,
+                                      "x.py", 1)] * 2
+    notes = _data_notes(caught, {"ann": 0, "bo": 4, "cy": 9})
+    assert len(notes) == 2 and "no answer yet from ann" in notes[0]
+    assert notes[1].startswith("bo had no answer in a router's training split")
+    assert _data_notes(caught[:1], {"ann": 0, "bo": 0, "cy": 9}) == [notes[0].replace("ann", "ann, bo")]

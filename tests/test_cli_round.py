@@ -293,7 +293,8 @@ def test_export_refuses_unknown_round_and_column(ws, tmp_path):
 
 def test_export_shows_the_group_and_the_filled_sheet_imports_back(tmp_path):
     # the group column of `cases import --group-column` can be shown on a sheet, and a
-    # filled sheet carrying it imports as answers (display columns are dropped on import)
+    # filled sheet carrying it imports as answers (display columns are dropped on import;
+    # common practice: what a tool exports, it reads back)
     rng = np.random.default_rng(5)
     cases = tmp_path / "cases.csv"
     with open(cases, "w", newline="", encoding="utf-8") as handle:

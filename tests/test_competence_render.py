@@ -56,6 +56,7 @@ def test_no_zero_width_interval_and_no_bare_nan(few_per_region, basis):
 
 
 def test_legend_explains_dashes_and_methods(few_per_region):
+    # common practice: a table explains every mark it uses and names its interval methods
     text = _text(render_competence(few_per_region, by="region"))
     assert "-: none (no scored answers; kappa undefined; saved/fee: no fee, or the model's own row)" in text
     assert "Wilson (accuracy), Agresti-Min paired (saved/fee)" in text
@@ -73,6 +74,7 @@ def test_weighted_audit_shows_kish_effective_size(few_per_region):
 
 
 def test_value_without_interval_is_marked_and_explained():
+    # common practice: a figure shown without its interval says why
     row = {"expert": "e", "n_answered": 1, "n_scored": 1, "n_effective": 1.0, "accuracy": 1.0,
            "accuracy_low": 0.2, "accuracy_high": 1.0, "too_wide": True, "kappa": np.nan,
            "value_per_fee": 12.5, "value_low": np.nan, "value_high": np.nan}

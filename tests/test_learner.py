@@ -582,7 +582,9 @@ def test_train_loop_never_keeps_a_diverged_epoch():
     net = _make_net(3, 2, "mlp", (4,))
     X = torch.randn(64, 3)
     t = torch.randint(0, 2, (64,))
-    scores = iter([(float("nan"), 0.0), (2.0, 0.0), (float("inf"), 0.0), (float("nan"), 0.0)])
+    # (inf, 0) would beat the starting (inf, inf) and (1, nan) would beat (2, 0) in a plain
+    # tuple comparison: both must be refused as not finite
+    scores = iter([(float("inf"), 0.0), (2.0, 0.0), (1.0, float("nan")), (float("nan"), 0.0)])
     snapshots = []
 
     def val_score(m):
@@ -596,6 +598,32 @@ def test_train_loop_never_keeps_a_diverged_epoch():
     for k, v in net.state_dict().items():
         assert torch.equal(v, snapshots[1][k])
         assert not torch.equal(v, snapshots[3][k])
+
+
+@pytest.mark.parametrize("loss", ["softmax", "ova", "asymmetric"])
+def test_joint_fit_that_diverges_says_so(loss):
+    # as below, for the joint surrogate routers (common practice: fail clearly, never keep NaN)
+    sc = simulate.make_scenario(600, random_state=0)
+    with pytest.raises(FloatingPointError, match="diverged"):
+        SurrogateRouter(loss=loss, learning_rate=1e37, max_epochs=3, random_state=0).fit(
+            sc.X, sc.y, sc.answers(0), fees=sc.fees)
+
+
+def test_fit_candidates_leaves_out_a_diverged_candidate(monkeypatch):
+    # one unstable candidate does not sink the others; it is named in a note (common practice)
+    from routeplan import selection
+    from routeplan.learner import CANDIDATES
+
+    monkeypatch.setitem(CANDIDATES, "unstable", (PluginRouter, {"head": "mlp", "learning_rate": 1e37}))
+    sc = simulate.make_scenario(800, random_state=1)
+    best, fitted, table = selection.fit_candidates(
+        sc.X, sc.y, sc.answers(1), fees=sc.fees, names=("plugin", "unstable"),
+        router_params={"max_epochs": 3}, random_state=0)
+    assert best == "plugin" and list(fitted) == ["plugin"]
+    assert any("unstable" in note and "diverged" in note for note in table.attrs["notes"])
+    with pytest.raises(FloatingPointError, match="every candidate"):
+        selection.fit_candidates(sc.X, sc.y, sc.answers(1), fees=sc.fees, names=("unstable",),
+                                 router_params={"max_epochs": 3}, random_state=0)
 
 
 def test_fit_that_diverges_says_so():
