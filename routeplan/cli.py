@@ -462,15 +462,22 @@ def freeze(app, out_path, card_path, model_id, overwrite, as_json):
 @click.option("--id-column", default="case_id", show_default=True, help="Column with each case's unique id.")
 @click.option("--chunk-size", type=click.IntRange(min=1), default=65536, show_default=True,
               help="Cases scored at once (bounds memory; does not change the decisions).")
+@click.option("--outside-range", type=click.Choice(["expert", "model"]), default="expert", show_default=True,
+              help="Where a case with a feature outside the range seen in training goes: to an expert while "
+                   "one has room (the model's estimates there are extrapolations), or like any other case.")
+@click.option("--overwrite", is_flag=True, help="Replace a decisions file already there.")
 @json_option
 @pass_app
-def route(app, policy_path, cases_path, out_path, exact, id_column, chunk_size, as_json):
+def route(app, policy_path, cases_path, out_path, exact, id_column, chunk_size, outside_range, overwrite,
+          as_json):
     """Route new cases (CSV or Parquet) with a frozen policy; no workspace needed.
 
     Writes one row per case, in input order: case_id, route (model or an expert's name),
-    label (the model's class where route is model, else empty), expected_cost and the
-    expected cost of every option. Each expert's capacity share is held. Refuses a policy
-    whose sha256, format version or manifest does not check out.
+    label (the model's class where route is model, else empty), expected_cost, the expected
+    cost of every option, and outside_range (1 where a feature lies outside the training
+    range). Each expert's capacity share is held within the file (the running count starts
+    with it), so route cases in batches rather than one at a time. Refuses a policy whose
+    sha256, format version or manifest does not check out.
 
     Example:
 
@@ -480,7 +487,8 @@ def route(app, policy_path, cases_path, out_path, exact, id_column, chunk_size, 
     from .deploy import route_file
 
     result = route_file(policy_path, cases_path, out_path, exact=exact, id_column=id_column,
-                        chunk_size=chunk_size, console=app.console, progress=not (app.quiet or as_json))
+                        chunk_size=chunk_size, outside_range=outside_range, overwrite=overwrite,
+                        console=app.console, progress=not (app.quiet or as_json))
     if result.outside_warning:
         click.echo(result.outside_warning, err=True)
     if as_json:
@@ -542,11 +550,13 @@ def rehearse(app, n_rounds, budget_per_round, n_pool, profiles_path, strategies,
         routeplan rehearse --profiles assumed.csv --rounds 4 --budget 25
     """
     from .errors import InputError
-    from .files import check_new_files
+    from .files import check_new_files, check_out_path
     from .rehearse import STRATEGIES, budget_to_reach, scenario_from_workspace
     from .rehearse import rehearse as run
 
     check_new_files([plot_path], overwrite)
+    if plot_path is not None:  # before the rehearsal, not after it
+        check_out_path(plot_path, [])
 
     chosen = [s.strip() for s in strategies.split(",") if s.strip()]
     unknown = [s for s in chosen if s not in STRATEGIES]
@@ -619,11 +629,14 @@ def competence(app, by, basis, n_regions, seed, csv_path, plot_path, overwrite, 
         routeplan competence --by region --plot competence.png
     """
     from .competence import pool_competence
-    from .files import check_new_files
+    from .files import check_new_files, check_out_path
     from .fitting import held_out_predictions
     from .pool import load_pool
 
     check_new_files([csv_path, plot_path], overwrite)
+    for path in (csv_path, plot_path):
+        if path is not None:
+            check_out_path(path, [])
     with app.workspace() as ws:
         pool = load_pool(ws)
         model_pred = held_out_predictions(ws, pool)
@@ -667,11 +680,12 @@ def round_group() -> None:
 @click.option("--seed", type=int, default=0, show_default=True, help="The same seed on the same workspace gives the same plan.")
 @click.option("--audit-share", type=click.FloatRange(0, 1), default=0.1, show_default=True,
               help="Share of the budget drawn uniformly at random (audit), for unbiased accuracy estimates.")
-@click.option("--max-per-expert", type=click.IntRange(min=0), default=None, help="Most assignments per expert in this round.")
+@click.option("--max-per-expert", type=int, default=None, help="Most assignments per expert in this round.")
 @click.option("--include-unverified", is_flag=True, help="Also send cases without truth.")
 @click.option("--regions", type=click.IntRange(min=1), default=6, show_default=True,
               help="Regions of the feature space for the accuracy estimates.")
-@click.option("--due-days", type=float, default=None, help="Answers are due this many days from now.")
+@click.option("--due-days", type=float, default=None,
+              help="Answers are due this many days from now (at most 3650).")
 @click.option("--focus-margin", type=click.FloatRange(min=0), default=0.1, show_default=True,
               help="Once 'fit' has kept a router, value and uncertain ask only where that router could send "
                    "the case to the expert: its estimated cost within this margin (in errors) of the best "

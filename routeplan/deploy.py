@@ -37,7 +37,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import InputError
-from .files import FORMULA_LEAD, check_out_path, write_atomically
+from .files import FORMULA_LEAD, check_new_files, check_out_path, write_atomically
 
 __all__ = [
     "DEFAULT_SCORE_CHUNK",
@@ -199,7 +199,8 @@ def decision_columns(manifest: Mapping[str, Any]) -> pd.DataFrame:
     """An empty decisions frame with the right columns and dtypes (Dask's ``meta``).
 
     Columns: ``case_id``, ``route``, ``label``, ``expected_cost``, then
-    ``cost_model:<label>`` per label and ``cost_<expert>`` per expert
+    ``cost_model:<label>`` per label and ``cost_<expert>`` per expert, and last
+    ``outside_range`` (1 where a feature lies outside the range seen in training)
     (``schemas/decisions-row.schema.json``).
 
     Parameters
@@ -215,6 +216,7 @@ def decision_columns(manifest: Mapping[str, Any]) -> pd.DataFrame:
                           "expected_cost": pd.Series([], dtype=np.float64)})
     for name in _cost_columns(manifest["labels"], [e["name"] for e in manifest["experts"]]):
         frame[name] = pd.Series([], dtype=np.float64)
+    frame["outside_range"] = pd.Series([], dtype=np.int8)
     return frame
 
 
@@ -254,8 +256,30 @@ def _score(policy: Policy, Z: np.ndarray, ids: Any = None) -> np.ndarray:
     return np.asarray(policy.router.predict_costs(X, class_proba=P / sums[:, None]), dtype=np.float64)
 
 
+#: Where a case lies outside the training range, the ways ``route`` may treat it.
+OUTSIDE_RANGE = ("expert", "model")
+
+
+def _check_outside_option(how: str) -> None:
+    if how not in OUTSIDE_RANGE:
+        raise InputError(f"--outside-range must be one of {', '.join(OUTSIDE_RANGE)}, not {how!r}")
+
+
+def _steer_outside(costs: np.ndarray, outside: np.ndarray, n_classes: int, how: str) -> np.ndarray:
+    """Costs to route on: with ``how="expert"`` the model's options of cases outside the
+    training range are surcharged, so those cases go to an expert while one has room (the
+    model's estimates there are extrapolations; common practice: a person looks at what the
+    model never saw). The reported expected costs are not changed."""
+    _check_outside_option(how)
+    if how == "model" or not outside.any() or costs.shape[1] == n_classes:
+        return costs
+    steered = costs.copy()
+    steered[np.ix_(outside, np.arange(n_classes))] += 10.0 * (float(np.abs(costs).max()) + 1.0)
+    return steered
+
+
 def _decisions(policy: Policy, case_ids: Any, costs: np.ndarray, routes: np.ndarray,
-               index: Any = None) -> pd.DataFrame:
+               index: Any = None, outside: np.ndarray | None = None) -> pd.DataFrame:
     """The decisions frame from expected costs and chosen options."""
     names = np.asarray(policy.option_names, dtype=object)
     labels = np.asarray(list(policy.labels) + [""] * len(policy.experts), dtype=object)
@@ -269,15 +293,19 @@ def _decisions(policy: Policy, case_ids: Any, costs: np.ndarray, routes: np.ndar
     }
     for j, name in enumerate(_cost_columns(policy.labels, policy.experts)):
         columns[name] = costs[:, j]
+    columns["outside_range"] = (np.zeros(routes.shape[0], np.int8) if outside is None
+                                else np.asarray(outside, dtype=np.int8))
     return pd.DataFrame(columns, index=index)
 
 
 def route_frame(frame: pd.DataFrame, manifest: Mapping[str, Any], arrays: Mapping[str, np.ndarray], *,
-                id_column: str = "case_id", policy: Policy | None = None) -> pd.DataFrame:
+                id_column: str = "case_id", policy: Policy | None = None,
+                outside_range: str = "expert") -> pd.DataFrame:
     """Route the cases of a DataFrame with a frozen policy (no capacity caps).
 
     Each case goes to the option of least ``expected cost + price`` (the experts' dual
-    prices from the manifest); ties go to the model. This is a pure function of its inputs,
+    prices from the manifest); ties go to the model. A case with a feature outside the
+    range seen in training goes to an expert unless ``outside_range="model"``. This is a pure function of its inputs,
     row by row, so any partition of the rows gives the same decisions: it is the function
     to map over the partitions of a Dask (or similar) DataFrame. Caps are a property of a
     batch; :func:`route_file` holds them.
@@ -294,6 +322,8 @@ def route_frame(frame: pd.DataFrame, manifest: Mapping[str, Any], arrays: Mappin
     id_column : str, default="case_id"
     policy : Policy, optional
         The same policy already rebuilt (skips rebuilding the router on every call).
+    outside_range : {"expert", "model"}, default="expert"
+        How to route cases outside the training range (see :func:`route_file`).
 
     Returns
     -------
@@ -317,10 +347,12 @@ def route_frame(frame: pd.DataFrame, manifest: Mapping[str, Any], arrays: Mappin
     X = _frame_features(frame, names)
     ids = frame[id_column].astype(str).to_numpy(dtype=object)
     costs = _score(policy, X, ids)
+    outside = policy.spec.outside_range(X[:, :len(policy.spec.names)])
+    steered = _steer_outside(costs, outside, policy.n_classes, outside_range)
     from .routing import route_with_prices
 
-    routes = route_with_prices(costs, policy.prices, policy.n_classes) if len(frame) else np.zeros(0, np.int64)
-    return _decisions(policy, ids, costs, routes, index=frame.index)
+    routes = route_with_prices(steered, policy.prices, policy.n_classes) if len(frame) else np.zeros(0, np.int64)
+    return _decisions(policy, ids, costs, routes, index=frame.index, outside=outside)
 
 
 def _frame_features(frame: pd.DataFrame, names: list[str]) -> np.ndarray:
@@ -380,7 +412,8 @@ class RouteResult:
             return None
         share = self.n_outside_range / max(self.n_cases, 1)
         return (f"Warning: {self.n_outside_range} of {self.n_cases} case(s) ({share:.1%}) have a feature "
-                "outside the range seen in training; the policy's estimates may not hold for them")
+                "outside the range seen in training; the policy's estimates may not hold for them "
+                "(column outside_range marks them)")
 
     def __rich__(self):
         from rich.console import Group
@@ -410,6 +443,8 @@ def route_file(
     exact: bool = False,
     id_column: str = "case_id",
     chunk_size: int = DEFAULT_SCORE_CHUNK,
+    outside_range: str = "expert",
+    overwrite: bool = True,
     console: Any = None,
     progress: bool = False,
 ) -> RouteResult:
@@ -422,7 +457,11 @@ def route_file(
     with the manifest's dual prices and a running count in arrival order
     (:func:`routeplan.routing.route_with_prices`), or, with ``exact``, by the least-cost
     integral assignment of the whole batch (:func:`routeplan.routing.route_exact`). The
-    decisions go to ``out_path`` (Parquet if it ends in ``.parquet`` or ``.pq``, else CSV),
+    caps hold within the file (the running count starts with it), so a file of a few
+    cases may leave an expert no room: the result's notes say so. A case with a feature
+    outside the range seen in training goes to an expert while one has room (the model's
+    estimates there are extrapolations), unless ``outside_range="model"``; the
+    ``outside_range`` column marks such cases. The decisions go to ``out_path`` (Parquet if it ends in ``.parquet`` or ``.pq``, else CSV),
     written to a temporary file and renamed, so a reader never sees half of it.
 
     Parameters
@@ -434,6 +473,10 @@ def route_file(
     id_column : str, default="case_id"
     chunk_size : int, default=65536
         Cases scored at once; the decisions do not depend on it.
+    outside_range : {"expert", "model"}, default="expert"
+        Route cases outside the training range to an expert, or like any other case.
+    overwrite : bool, default=True
+        Replace an existing ``out_path`` (the command line's default is to refuse).
     console : rich.console.Console, optional
         Where the progress bar goes.
     progress : bool, default=False
@@ -454,21 +497,41 @@ def route_file(
         raise InputError(f"--chunk-size must be a positive integer, not {chunk_size!r}")
     out = Path(out_path)
     check_out_path(out, [Path(policy_path), Path(cases_path)])
+    check_new_files([out], overwrite)
+    _check_outside_option(outside_range)
     policy = load_policy(policy_path)
     ids, X = _read_cases(cases_path, id_column, policy.input_columns)
     try:
-        costs, n_outside = _score_chunks(policy, X, ids, int(chunk_size), console, progress)
+        costs, outside = _score_chunks(policy, X, ids, int(chunk_size), console, progress)
     except InputError as exc:
         raise InputError(exc.message, source=str(cases_path)) from None
     del X
+    steered = _steer_outside(costs, outside, policy.n_classes, outside_range)
     if exact:
-        routes = route_exact(costs, policy.capacities, policy.n_classes)
+        routes = route_exact(steered, policy.capacities, policy.n_classes)
     else:
-        routes = route_with_prices(costs, policy.prices, policy.n_classes, policy.capacities, stream_caps=True)
-    frame = _decisions(policy, ids, costs, routes)
-    notes = _write_decisions(frame, out)
+        routes = route_with_prices(steered, policy.prices, policy.n_classes, policy.capacities, stream_caps=True)
+    frame = _decisions(policy, ids, costs, routes, outside=outside)
+    notes = _write_decisions(frame, out) + _batch_notes(policy, routes, outside, exact)
     return RouteResult(str(out), len(ids), "exact" if exact else "priced", _workload(policy, routes),
-                       float(frame["expected_cost"].mean()) if len(frame) else 0.0, n_outside, notes)
+                       float(frame["expected_cost"].mean()) if len(frame) else 0.0, int(outside.sum()), notes)
+
+
+def _batch_notes(policy: Policy, routes: np.ndarray, outside: np.ndarray, exact: bool) -> list[str]:
+    """Notes on caps that a small file leaves no room under, and on cases outside the range."""
+    notes = []
+    n = routes.shape[0]
+    if not exact and n:
+        shut = [e for e, c in zip(policy.experts, policy.capacities)
+                if 0 < c < 1 and math.floor(c * n + 1e-9) == 0]
+        if shut:
+            notes.append(f"with {n} case(s) in this file, the capacity share of {', '.join(shut)} allows none "
+                         "(the caps hold within each file): route cases in larger batches")
+    kept = int((outside & (routes < policy.n_classes)).sum())
+    if kept:
+        notes.append(f"{kept} case(s) outside the training range stayed with the model: every expert "
+                     "was at its cap (or --outside-range model was given)")
+    return notes
 
 
 def _read_cases(path: str | os.PathLike, id_column: str, names: list[str]) -> tuple[Any, np.ndarray]:
@@ -596,18 +659,18 @@ def _arrow_csv(path: Path, keep: list[str], id_column: str) -> Any:
 
 
 def _score_chunks(policy: Policy, X: np.ndarray, ids: Any, chunk_size: int, console: Any,
-                  progress: bool) -> tuple[np.ndarray, int]:
-    """Score the cases chunk by chunk; also count cases outside the training range."""
+                  progress: bool) -> tuple[np.ndarray, np.ndarray]:
+    """Score the cases chunk by chunk; also mark the cases outside the training range."""
     n, d = X.shape[0], len(policy.spec.names)
     costs = np.empty((n, policy.n_classes + len(policy.experts)), dtype=np.float64)
-    n_outside = 0
+    outside = np.zeros(n, dtype=bool)
     with _progress_bar(console, progress, n) as advance:
         for start in range(0, n, chunk_size):
             stop = min(start + chunk_size, n)
             costs[start:stop] = _score(policy, X[start:stop], ids[start:stop])
-            n_outside += int(policy.spec.outside_range(X[start:stop, :d]).sum())
+            outside[start:stop] = policy.spec.outside_range(X[start:stop, :d])
             advance(stop - start)
-    return costs, n_outside
+    return costs, outside
 
 
 @contextlib.contextmanager

@@ -154,6 +154,12 @@ def fit_workspace(
     if class_proba is not None:
         table.attrs["notes"].append("two-stage: your model's imported probabilities are the classifier (temperature-"
                                     "scaled only); the routers learned whom to defer to")
+    elif two_stage is None and pool.has_scores[mask].any():
+        missing = int((~pool.has_scores[mask]).sum())
+        table.attrs["notes"].append(
+            f"not two-stage: {missing} of the {int(mask.sum())} case(s) with truth have no imported "
+            "probabilities, so the routers learned their own classifier (import the rest with "
+            "'routeplan scores import', or pass --two-stage to be told which)")
     metrics = _metrics(table, best, counts, fitted[best], pool, len(selection))
     metrics["effective_answers"] = effective
     model_ids = {}

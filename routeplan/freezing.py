@@ -324,11 +324,19 @@ def _held_out_metrics(router: Any, Xs: np.ndarray, ec: np.ndarray, routes: np.nd
     return metrics, {"shares": shares, "summary": _basis_summary(shares)}
 
 
+def _percent(x: float) -> str:
+    """A share as a percentage, with the decimals it needs not to read as 0% or 100%."""
+    if x <= 0.0 or x >= 1.0 or 0.005 <= x <= 0.995:
+        return f"{x:.0%}"
+    gap = 100.0 * min(x, 1.0 - x)  # in percent, below 0.5
+    return f"{100.0 * x:.{max(1, math.ceil(-math.log10(gap)) + 1)}f}%"
+
+
 def _basis_summary(shares: dict) -> str:
     """One sentence on how much of the metrics is realised."""
     if shares["realised"] == 1.0:
         return "realised: every routed case has known truth and, where deferred, the expert's answer"
-    parts = [f"{shares[k]:.0%} {k}" for k in ("realised", "imputed", "expected") if shares[k] > 0]
+    parts = [f"{_percent(shares[k])} {k}" for k in ("realised", "imputed", "expected") if shares[k] > 0]
     return ("mixed: " + ", ".join(parts) + " (imputed: truth known, the routed expert's answer not, so its "
             "expected cost given the truth stands in; expected: no truth, the router's own estimate)")
 

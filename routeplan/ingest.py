@@ -421,9 +421,15 @@ def _check_pair_conflicts(table: Table, keys: list[str], value: str) -> None:
             mask &= (frame[k] == row[k]).to_numpy()
         first = int(np.argmax(mask))
         raise table.fail(
-            f"conflicting {value} for {key_text}: {row[value]!r} here, {frame[value].iloc[first]!r} on line {table.line_of(first)}",
+            f"conflicting {value} for {key_text}: {_shown(row[value])} here, {_shown(frame[value].iloc[first])} "
+            f"on line {table.line_of(first)}",
             int(at),
         )
+
+
+def _shown(value: object) -> str:
+    """A cell for a message: text quoted, numbers plain (not numpy's ``np.float64(0.8)``)."""
+    return repr(value) if isinstance(value, str) else f"{value:g}" if isinstance(value, (int, float, np.number)) else repr(value)
 
 
 # --------------------------------------------------------------------------- experts

@@ -614,6 +614,11 @@ def rehearse(
         raise ValueError(f"focus_margin must be a number >= 0 or None, got {focus_margin!r}")
     steps = _schedule(budgets, n_rounds, budget_per_round)
     scn = scenario if scenario is not None else make_scenario(n_pool + n_eval, random_state=random_state)
+    if steps[-1] < float(np.min(scn.fees)):
+        from .errors import InputError
+
+        raise InputError(f"the rounds' whole budget ({steps[-1]:g}) buys no answer: the cheapest fee is "
+                         f"{float(np.min(scn.fees)):g}; raise --budget or --rounds")
     n_pool = min(n_pool, scn.X.shape[0] // 2) if scenario is not None else n_pool
     params = dict(ROUTER_SETTINGS if router_params is None else router_params)
     stage, answers_all = _stage(scn, n_pool, params, n_folds, random_state)

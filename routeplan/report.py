@@ -328,6 +328,6 @@ def render_rehearsal(result, reach: dict, target: float) -> Group:
                 f"(those answers would cost {result.full_information_spend:.0f}).\n")
     for s in strategies:
         spent = reach.get(s, float("inf"))
-        text.append(f"{s}: within 0.01 of the all-answers cost ({target:.3f}) "
+        text.append(f"{s}: within 0.01 of the all-answers cost (a cost of at most {target:.3f}) "
                     + (f"after spending {spent:.1f}\n" if spent != float("inf") else "not reached in these rounds\n"))
     return Group(table, text)

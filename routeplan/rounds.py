@@ -196,6 +196,10 @@ class RoundClosed:
 # --------------------------------------------------------------------------- plan
 
 
+#: Longest answer deadline a round may set, in days (ten years; dates further out overflow).
+_MAX_DUE_DAYS = 3650
+
+
 def _check_plan_options(budget, strategy, audit_share, max_per_expert, due_days, n_regions) -> None:
     """Refuse option values that make no sense, with a hint."""
     if not (np.isfinite(budget) and budget > 0):
@@ -204,10 +208,11 @@ def _check_plan_options(budget, strategy, audit_share, max_per_expert, due_days,
         raise InputError(f"--strategy must be one of {', '.join(STRATEGIES)}, not {strategy!r}")
     if not (0.0 <= audit_share <= 1.0):
         raise InputError(f"--audit-share must lie in [0, 1], not {audit_share!r}")
-    if max_per_expert is not None and max_per_expert < 0:
-        raise InputError(f"--max-per-expert must be >= 0, not {max_per_expert!r}")
-    if due_days is not None and not (np.isfinite(due_days) and due_days > 0):
-        raise InputError(f"--due-days must be a positive number, not {due_days!r}")
+    if max_per_expert is not None and max_per_expert < 1:
+        raise InputError(f"--max-per-expert must be at least 1 (a round with no assignment is no round), "
+                         f"not {max_per_expert!r}")
+    if due_days is not None and not (np.isfinite(due_days) and 0 < due_days <= _MAX_DUE_DAYS):
+        raise InputError(f"--due-days must be a number of days in (0, {_MAX_DUE_DAYS}], not {due_days!r}")
     if int(n_regions) != n_regions or n_regions < 1:
         raise InputError(f"--regions must be a positive integer, not {n_regions!r}")
 
@@ -270,7 +275,7 @@ def plan_round(
     if focus_margin is not None and not (np.isfinite(focus_margin) and focus_margin >= 0):
         raise InputError(f"--focus-margin must be a number >= 0, got {focus_margin!r}")
     pool, case_ids, experts, X = _pool(ws, include_unverified, int(n_regions), int(seed))
-    _check_something_fits(pool, experts, budget)
+    _check_something_fits(pool, experts, budget, include_unverified)
     focus, focus_model, focus_note = (None, None, None) if focus_margin is None or strategy == "random" else \
         _router_focus(ws, X, case_ids, [e["name"] for e in experts], float(focus_margin))
     rng = np.random.default_rng(int(seed))
@@ -389,19 +394,24 @@ def _router_focus(ws: Workspace, X: np.ndarray, case_ids: list[str], experts: li
     return router_focus(costs, len(ws.labels), margin), int(model_id), None
 
 
-def _check_something_fits(pool: PlannerInput, experts: list[dict], budget: float) -> None:
+def _check_something_fits(pool: PlannerInput, experts: list[dict], budget: float,
+                          include_unverified: bool = False) -> None:
     """Refuse a plan that cannot hold a single assignment, saying why."""
     open_experts = pool.capacities > 0
     if not open_experts.any():
         raise InputError("every expert has capacity 0; raise one with "
-                         "'routeplan experts add NAME --fee F --capacity C'")
-    usable = pool.eligible[:, open_experts].any(axis=0)
+                         "'routeplan experts add NAME --capacity C'")
+    usable = open_experts & pool.eligible.any(axis=0)
     if not usable.any():
-        raise InputError("no eligible (case, expert) pair: every candidate case was already asked of every expert "
-                         "(import more cases or truth, or pass --include-unverified)")
-    cheapest = float(pool.fees[open_experts][usable].min())
-    if budget < cheapest:
-        raise InputError(f"--budget {budget:g} buys no assignment: the cheapest fee is {cheapest:g}")
+        hint = "import more cases" if include_unverified else "import more cases or truth, or pass --include-unverified"
+        raise InputError("no eligible (case, expert) pair: every candidate case was already asked of every "
+                         f"expert ({hint})")
+    cheapest = int(np.flatnonzero(usable)[np.argmin(pool.fees[usable])])
+    if budget < pool.fees[cheapest]:
+        done = [e["name"] for j, e in enumerate(experts) if open_experts[j] and not usable[j]]
+        also = f"; {', '.join(done)} already answered or hold every candidate case" if done else ""
+        raise InputError(f"--budget {budget:g} buys no assignment: the cheapest expert with cases left to ask "
+                         f"is {experts[cheapest]['name']} at {pool.fees[cheapest]:g}{also}")
 
 
 def _pool(ws: Workspace, include_unverified: bool, n_regions: int, seed: int

@@ -126,7 +126,8 @@ def read_decisions(path: Path) -> list[dict]:
     for row in rows:
         item = {}
         for key, value in row.items():
-            item[key] = float(value) if key == "expected_cost" or key.startswith("cost_") else value
+            item[key] = (float(value) if key == "expected_cost" or key.startswith("cost_")
+                         else int(value) if key == "outside_range" else value)
         out.append(item)
     return out
 
@@ -284,7 +285,7 @@ def test_route_writes_one_valid_row_per_case_in_order(built, tmp_path):
     for row in rows:
         check.validate(row)
         assert list(row)[:4] == ["case_id", "route", "label", "expected_cost"]
-        assert list(row)[4:] == option_columns
+        assert list(row)[4:] == [*option_columns, "outside_range"]
         chosen = f"cost_model:{row['label']}" if row["route"] == "model" else f"cost_{row['route']}"
         assert row["expected_cost"] == row[chosen]  # the schema's definition of expected_cost
 
@@ -321,19 +322,52 @@ def test_caps_are_never_exceeded_and_exact_is_lp_optimal(built, tmp_path, n):
     pd.read_csv(built["new"], dtype={"case_id": str}).iloc[:n].to_csv(cases, index=False)
     for mode in ("exact", "priced"):
         out = tmp_path / f"{mode}.csv"
+        # --outside-range model: every case on its estimated costs, the LP's own contract
         ok(invoke(tmp_path, "route", "--policy", built["policy"], cases, "--out", out,
-                  *(["--exact"] if mode == "exact" else []), "--json"))
+                  *(["--exact"] if mode == "exact" else []), "--outside-range", "model", "--json"))
         rows = read_decisions(out)
         counts = {name: sum(r["route"] == name for r in rows) for name in EXPERTS}
         for name, cap in EXPERTS.items():  # the capacity contract of DESIGN.md (common practice)
             assert counts[name] <= math.floor(cap * n + 1e-9), (mode, name, counts)
         if mode == "exact":
-            costs = np.array([[r[c] for c in list(r)[4:]] for r in rows])
+            costs = np.array([[r[c] for c in list(r)[4:-1]] for r in rows])
             limits = np.floor(np.minimum(list(EXPERTS.values()), 1.0) * n + 1e-9)
             # integral limits on a bipartite (totally unimodular) constraint matrix: the LP
             # optimum by scipy's HiGHS is the best integral routing (Heller & Tompkins, 1956)
             optimum = dense_lp_optimum(costs, len(LABELS), limits)
             assert sum(r["expected_cost"] for r in rows) == pytest.approx(optimum, rel=1e-9, abs=1e-9)
+
+
+def test_cases_outside_the_training_range_go_to_an_expert(built, tmp_path):
+    # common practice: a case unlike anything the model was trained on is not left to the
+    # model alone; it is marked, and goes to an expert while the caps leave room
+    frame = pd.read_csv(built["new"], dtype={"case_id": str}).iloc[:60].copy()
+    far = frame.index[:3]
+    frame.loc[far, built["names"][0]] = 1e6
+    cases = tmp_path / "far.csv"
+    frame.to_csv(cases, index=False)
+    for how in ("expert", "model"):
+        out = tmp_path / f"{how}.csv"
+        info = json.loads(ok(invoke(tmp_path, "route", "--policy", built["policy"], cases, "--out", out,
+                                    "--outside-range", how, "--json")).stdout)
+        rows = read_decisions(out)
+        assert info["n_outside_range"] == sum(r["outside_range"] for r in rows) >= 3
+        assert all(rows[i]["outside_range"] == 1 for i in far)
+        if how == "expert":
+            assert all(rows[i]["route"] in EXPERTS for i in far)
+    one_line_error(invoke(tmp_path, "route", "--policy", built["policy"], cases, "--out", out), "already exists",
+                   "--overwrite")
+
+
+def test_a_file_too_small_for_a_cap_says_so(built, tmp_path):
+    # the caps hold within each file (DESIGN.md's running count); one case cannot be split, so
+    # an expert with a share below 1 gets none, and the result says why (common practice)
+    one = tmp_path / "one.csv"
+    pd.read_csv(built["new"], dtype={"case_id": str}).iloc[:1].to_csv(one, index=False)
+    info = json.loads(ok(invoke(tmp_path, "route", "--policy", built["policy"], one, "--out", tmp_path / "o.csv",
+                                "--outside-range", "model", "--json")).stdout)
+    capped = [name for name, cap in EXPERTS.items() if 0 < cap < 1]
+    assert capped and any("larger batches" in note and capped[0] in note for note in info["notes"])
 
 
 def _rehash(document: dict) -> dict:
@@ -478,3 +512,13 @@ def test_freeze_to_a_missing_folder_leaves_the_workspace_as_it_was(built, tmp_pa
     assert "missing" in line
     with sqlite3.connect(ws / DB_NAME) as conn:
         assert "\n".join(conn.iterdump()) == before
+
+
+def test_card_basis_never_shows_a_present_share_as_zero():
+    # common practice: a share that is there is never printed as 0% or 100%
+    from routeplan.freezing import _basis_summary, _percent
+
+    assert [_percent(x) for x in (0.0, 0.25, 1.0, 0.0004, 0.9996, 0.003)] == \
+        ["0%", "25%", "100%", "0.040%", "99.960%", "0.30%"]
+    assert _basis_summary({"realised": 0.9996, "imputed": 0.0004, "expected": 0.0}).startswith(
+        "mixed: 99.960% realised, 0.040% imputed")

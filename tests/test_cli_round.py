@@ -205,6 +205,8 @@ def test_dry_run_stores_nothing(ws):
         (["--budget", "0.01"], "buys no assignment"),
         (["--budget", "-3"], "--budget must be a positive number"),
         (["--budget", "5", "--due-days", "0"], "--due-days"),
+        (["--budget", "5", "--due-days", "1e12"], "--due-days must be a number of days in (0, 3650]"),
+        (["--budget", "5", "--max-per-expert", "0"], "--max-per-expert must be at least 1"),
     ],
 )
 def test_plan_bad_input_leaves_workspace_unchanged(ws, args, fragment):

@@ -176,3 +176,15 @@ def test_changing_stored_scores_needs_replace(team, tmp_path):
     assert report["notes"]["replaced"] == 1
     with Workspace.open(ws) as opened:
         assert opened.score_matrix(["d0001"])[0, 0] == pytest.approx(original.loc["d0001", "proba_0"])
+
+
+def test_partly_imported_scores_are_not_used_silently(team, tmp_path):
+    # common practice: when the tool quietly falls back (here: learning its own classifier
+    # because some cases lack the team's probabilities), it says so
+    ws = digits_workspace(tmp_path, k=5, n_answers=None)  # no scores yet (the module's may have them)
+    part = pd.read_csv(team["scores"]).iloc[:100]
+    path = tmp_path / "part.csv"
+    part.to_csv(path, index=False, float_format="%.17g")
+    invoke(ws, "scores", "import", path)
+    report = json.loads(invoke(ws, "fit", "--router", "plugin", "--max-epochs", "2", "--json").stdout)
+    assert any(note.startswith("not two-stage: 1697 of the 1797") for note in report["notes"])

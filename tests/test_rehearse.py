@@ -249,7 +249,7 @@ def test_cli_rehearse_on_own_cases_with_assumed_profiles(tmp_path, digits5):
     (["nobody,,0.9"], "line 2: unknown expert 'nobody'"),
     (["oracle_k,0,0.9"], "no assumed accuracy for expert 'oracle_k' on label '1'"),
     (["oracle_k,,1.5"], "line 2"),
-    (["oracle_k,,0.9", "oracle_k,,0.8"], "line 3: conflicting accuracy"),
+    (["oracle_k,,0.9", "oracle_k,,0.8"], "line 3: conflicting accuracy for expert 'oracle_k', label '': 0.8 here, 0.9 on line 2"),
 ])
 def test_cli_rehearse_refuses_bad_profiles(tmp_path, digits5, rows, message):
     # Contract of DESIGN.md: bad input -> exit 2, one line naming the file (and line), no traceback.
@@ -280,3 +280,18 @@ def test_rehearsal_router_can_be_the_average_of_plug_in_routers():
                       n_folds=2, n_reference_fits=1, strategies=("random",), random_state=3)
     assert result.settings["router"]["n_members"] == 2
     assert (result.curves["system_cost"] >= result.bayes_cost - 1e-12).all()
+
+
+@pytest.mark.parametrize("args, message", [
+    (["--budget", "0.001"], "buys no answer"),
+    (["--plot", "no_such_folder/curves.png"], "does not exist"),
+])
+def test_cli_rehearse_refuses_before_it_runs(tmp_path, args, message):
+    # common practice: an option that dooms the run is refused at once, not after the work
+    from click.testing import CliRunner
+
+    from routeplan.cli import cli
+
+    result = CliRunner().invoke(cli, ["rehearse", "--rounds", "2", "--cases", "300", *args],
+                                catch_exceptions=False, env={"PWD": str(tmp_path)})
+    assert result.exit_code == 2 and message in result.stderr and "Traceback" not in result.stderr
