@@ -305,10 +305,10 @@ def route_frame(frame: pd.DataFrame, manifest: Mapping[str, Any], arrays: Mappin
 
     Each case goes to the option of least ``expected cost + price`` (the experts' dual
     prices from the manifest); ties go to the model. A case with a feature outside the
-    range seen in training goes to an expert unless ``outside_range="model"``. This is a pure function of its inputs,
-    row by row, so any partition of the rows gives the same decisions: it is the function
-    to map over the partitions of a Dask (or similar) DataFrame. Caps are a property of a
-    batch; :func:`route_file` holds them.
+    range seen in training goes to an expert unless ``outside_range="model"``. This is a
+    pure function of its inputs, row by row, so any partition of the rows gives the same
+    decisions: it is the function to map over the partitions of a Dask (or similar)
+    DataFrame. Caps are a property of a batch; :func:`route_file` holds them.
 
     Parameters
     ----------
@@ -461,8 +461,9 @@ def route_file(
     cases may leave an expert no room: the result's notes say so. A case with a feature
     outside the range seen in training goes to an expert while one has room (the model's
     estimates there are extrapolations), unless ``outside_range="model"``; the
-    ``outside_range`` column marks such cases. The decisions go to ``out_path`` (Parquet if it ends in ``.parquet`` or ``.pq``, else CSV),
-    written to a temporary file and renamed, so a reader never sees half of it.
+    ``outside_range`` column marks such cases. The decisions go to ``out_path`` (Parquet
+    if it ends in ``.parquet`` or ``.pq``, else CSV), written to a temporary file and
+    renamed, so a reader never sees half of it.
 
     Parameters
     ----------
@@ -512,25 +513,25 @@ def route_file(
     else:
         routes = route_with_prices(steered, policy.prices, policy.n_classes, policy.capacities, stream_caps=True)
     frame = _decisions(policy, ids, costs, routes, outside=outside)
-    notes = _write_decisions(frame, out) + _batch_notes(policy, routes, outside, exact)
+    notes = _write_decisions(frame, out) + _batch_notes(policy, routes, outside, outside_range)
     return RouteResult(str(out), len(ids), "exact" if exact else "priced", _workload(policy, routes),
                        float(frame["expected_cost"].mean()) if len(frame) else 0.0, int(outside.sum()), notes)
 
 
-def _batch_notes(policy: Policy, routes: np.ndarray, outside: np.ndarray, exact: bool) -> list[str]:
-    """Notes on caps that a small file leaves no room under, and on cases outside the range."""
+def _batch_notes(policy: Policy, routes: np.ndarray, outside: np.ndarray, outside_range: str) -> list[str]:
+    """Notes on caps that a small file leaves no room under (both modes cap an expert at
+    ``floor(capacity * n)`` cases), and on out-of-range cases no expert had room for."""
     notes = []
     n = routes.shape[0]
-    if not exact and n:
-        shut = [e for e, c in zip(policy.experts, policy.capacities)
-                if 0 < c < 1 and math.floor(c * n + 1e-9) == 0]
-        if shut:
-            notes.append(f"with {n} case(s) in this file, the capacity share of {', '.join(shut)} allows none "
-                         "(the caps hold within each file): route cases in larger batches")
+    shut = [e for e, c in zip(policy.experts, policy.capacities)
+            if 0 < c < 1 and math.floor(c * n + 1e-9) == 0]
+    if n and shut:
+        notes.append(f"with {n} case(s) in this file, the capacity share of {', '.join(shut)} allows none "
+                     "(the caps hold within each file): route cases in larger batches")
     kept = int((outside & (routes < policy.n_classes)).sum())
-    if kept:
+    if kept and outside_range == "expert":
         notes.append(f"{kept} case(s) outside the training range stayed with the model: every expert "
-                     "was at its cap (or --outside-range model was given)")
+                     "was at its cap")
     return notes
 
 

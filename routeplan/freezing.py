@@ -28,6 +28,7 @@ Design choices (written down here, as DESIGN.md asks):
 
 from __future__ import annotations
 
+import json
 import math
 import os
 from dataclasses import asdict, dataclass, field
@@ -160,6 +161,7 @@ def freeze_workspace(ws: Any, out: str | os.PathLike, *, card: str | os.PathLike
         from .ingest import score_columns
 
         frozen.manifest["router"]["class_proba_columns"] = score_columns(params["labels"])
+        frozen.notes.extend(_scores_changed_since(ws, model_id))
     with ws.transaction():
         sha = write_policy(out, frozen.manifest, arrays)
         from .policy import read_policy
@@ -172,6 +174,20 @@ def freeze_workspace(ws: Any, out: str | os.PathLike, *, card: str | os.PathLike
                           "card": str(card_path.resolve()), "sha256": sha})
     return FreezeResult(str(out), str(card_path), sha, policy_id, model_id, str(params["router"]),
                         manifest["experts"], manifest["metrics"], frozen.notes)
+
+
+def _scores_changed_since(ws: Any, model_id: int) -> list[str]:
+    """A note if imported probabilities changed after the two-stage model was fitted."""
+    journal = ws.journal()  # newest first; entry ids order the commands even within a second
+    fitted = next((e["entry_id"] for e in journal if e["command"] == "fit"
+                   and model_id in json.loads(e["detail"] or "{}").get("model_ids", {}).values()), None)
+    later = [e for e in journal if fitted is not None and e["command"] == "scores import"
+             and e["entry_id"] > fitted and json.loads(e["detail"] or "{}").get("replaced", 0)]
+    if not later:
+        return []
+    return [f"your model's imported probabilities were replaced after model {model_id} was fitted "
+            f"({len(later)} import(s), the last at {later[0]['at']}): this policy and its figures rest on "
+            "the old ones; fit again, then freeze"]
 
 
 def _card_path(out: Path, card: str | os.PathLike | None) -> Path:

@@ -281,7 +281,8 @@ def _baseline_rows(candidates, best_name, cases, K, M, names, z, per_case) -> li
         ec = router.predict_costs(cases.X)
     out = []
     model_routes = np.argmin(ec[:, :K], axis=1)
-    label = f"model alone ({source})"
+    # two-stage: the model is the team's own, whose probabilities were imported
+    label = "model alone (yours, imported)" if getattr(router, "two_stage_", False) else f"model alone ({source})"
     row, per_case[label] = _selection_row(label, "baseline", model_routes, cases, K, names, z)
     row["system_cost"] = baselines.model_alone_cost(cases.costs, model_routes, n_classes=K)
     out.append(row)

@@ -88,7 +88,7 @@ def test_fit_keeps_the_team_model_and_beats_model_and_expert(team, tmp_path):
     conn.close()
     held = np.isin(team["ids"], params["validation_case_ids"])
     lr_accuracy = float((team["own"].predict(team["X"][held]) == team["y"][held]).mean())
-    model_row = next(r for name, r in rows.items() if name.startswith("model alone"))
+    model_row = rows["model alone (yours, imported)"]  # named as the team's model, not a router's
     assert model_row["accuracy"] == pytest.approx(lr_accuracy)
     chosen = rows[fit["chosen"]]
     # Mozannar & Sontag (ICML 2020): the deferral system beats the classifier and the expert alone
@@ -188,3 +188,20 @@ def test_partly_imported_scores_are_not_used_silently(team, tmp_path):
     invoke(ws, "scores", "import", path)
     report = json.loads(invoke(ws, "fit", "--router", "plugin", "--max-epochs", "2", "--json").stdout)
     assert any(note.startswith("not two-stage: 1697 of the 1797") for note in report["notes"])
+
+
+def test_freeze_says_when_the_scores_changed_after_the_fit(tmp_path, team):
+    # common practice: a frozen artefact must not silently rest on inputs replaced since
+    ws = digits_workspace(tmp_path, k=5, n_answers=None)
+    invoke(ws, "scores", "import", team["scores"])
+    invoke(ws, "fit", "--router", "plugin", "--max-epochs", "2")
+    first = json.loads(invoke(ws, "freeze", "--out", tmp_path / "a.json", "--json").stdout)
+    assert not any("replaced after model" in n for n in first["notes"])
+    frame = pd.read_csv(team["scores"], dtype={"case_id": str}).iloc[:2]
+    frame.loc[1, "proba_0"] = 0.25
+    frame.loc[1, "proba_1"] = 1.0 - frame.loc[1, ["proba_0"] + [f"proba_{c}" for c in range(2, 10)]].sum()
+    path = tmp_path / "changed.csv"
+    frame.to_csv(path, index=False, float_format="%.17g")
+    invoke(ws, "scores", "import", path, "--replace")
+    again = json.loads(invoke(ws, "freeze", "--out", tmp_path / "b.json", "--json").stdout)
+    assert any("replaced after model" in n and "fit again" in n for n in again["notes"])
