@@ -235,12 +235,13 @@ def main() -> None:
     args = parser.parse_args()
     kinds = [args.only] if args.only else list(SCENARIOS)
     router = {}
+    from probe_gap import parse_option  # benchmarks/ is the script's folder, first on sys.path
+
     for item in args.router:
-        key, _, value = item.partition("=")
-        try:
-            router[key] = int(value) if value.isdigit() else float(value)
-        except ValueError:
-            parser.error(f"--router {item}: not KEY=NUMBER")
+        key, value = parse_option(item)  # JSON: numbers, true / false, lists
+        if isinstance(value, str):
+            parser.error(f"--router {item}: not KEY=VALUE with a JSON value")
+        router[key] = value
     from routeplan.learner import EnsembleRouter
 
     known = set(EnsembleRouter().get_params())  # the plug-in router's settings and n_members

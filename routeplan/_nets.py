@@ -52,6 +52,12 @@ def _load_net(net: nn.Module, prefix: str, arrays: Mapping[str, np.ndarray]) -> 
     return net
 
 
+def _standardised(X: np.ndarray, mean: np.ndarray, scale: np.ndarray) -> np.ndarray:
+    """``(X - mean) / scale`` clipped to +-_CLIP (an overflow to +-inf is clipped too)."""
+    with np.errstate(over="ignore"):
+        return np.clip((X - mean) / scale, -_CLIP, _CLIP)
+
+
 def _forward(net: nn.Module, X: np.ndarray, mean: np.ndarray, scale: np.ndarray) -> np.ndarray:
     """Scores of raw rows X, standardised (clipped to +-_CLIP) chunk by chunk (float32)."""
     out_dim = net[-1].out_features
@@ -59,8 +65,7 @@ def _forward(net: nn.Module, X: np.ndarray, mean: np.ndarray, scale: np.ndarray)
     net.eval()
     with torch.inference_mode():
         for s in range(0, X.shape[0], _CHUNK):
-            with np.errstate(over="ignore"):  # an overflow to +-inf is clipped next
-                xb = np.clip((X[s:s + _CHUNK] - mean) / scale, -_CLIP, _CLIP)
+            xb = _standardised(X[s:s + _CHUNK], mean, scale)
             out[s:s + _CHUNK] = net(torch.from_numpy(np.ascontiguousarray(xb, np.float32))).numpy()
     return out
 

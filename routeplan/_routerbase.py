@@ -33,13 +33,13 @@ from routeplan import costs as costs_mod
 from routeplan.errors import ExpertsWithoutAnswers
 from routeplan._nets import (
     _CHUNK,
-    _CLIP,
     _fit_threads,
     _forward,
     _load_net,
     _LoopSettings,
     _make_net,
     _net_arrays,
+    _standardised,
     _torch_session,
     _train_loop,
 )
@@ -450,8 +450,7 @@ class _BaseRouter(BaseEstimator):
         ``train``, ``val`` and ``gen`` and writes only ``correctness_net_``,
         ``expert_platt_``, ``history_["correctness"]`` and ``calibration_["experts"]``, so
         it may run in a thread beside the classifier's training (and, with
-        ``logistic_blend``, the ``correctness_linear_*`` and ``correctness_mix_`` arrays
-        and ``history_["correctness_mix"]``).
+        ``logistic_blend``, the ``correctness_linear_*`` and ``correctness_mix_`` arrays).
         """
         M = self.n_experts_
         net = self._correctness_net() if net is None else net
@@ -521,19 +520,17 @@ class _BaseRouter(BaseEstimator):
             self.correctness_linear_coef_[j], self.correctness_linear_intercept_[j] = coef, icpt
             self.correctness_mix_[j] = blend.choose_mix(
                 z_net[v, j], Xs_val[v] @ coef + icpt, val.answers[v, j] == val.y[v], val.weights[v, j])
-        self.history_["correctness_mix"] = self.correctness_mix_.tolist()
 
     def _std_numpy(self, X: np.ndarray) -> np.ndarray:
         """Standardised features (clipped as when scoring), float64."""
-        Z = (np.asarray(X, dtype=np.float64) - self.x_mean_) / self.x_scale_
-        return np.clip(Z, -_CLIP, _CLIP)
+        return _standardised(np.asarray(X, dtype=np.float64), self.x_mean_, self.x_scale_)
 
     def _correctness_logits(self, X: np.ndarray) -> np.ndarray:
         """Each expert's correctness logit before calibration, (n, M) float64: the network's,
         blended with the logistic regression where ``correctness_mix_`` is below 1."""
         Z = _forward(self.correctness_net_, X, self.x_mean_, self.x_scale_).astype(np.float64)
-        mix = getattr(self, "correctness_mix_", None)
-        if mix is None or np.all(mix == 1.0):
+        mix = self.correctness_mix_  # set by every fit and load (_no_blend at least)
+        if np.all(mix == 1.0):
             return Z
         for s in range(0, X.shape[0], _CHUNK):
             part = blend.linear_logits(self._std_numpy(X[s:s + _CHUNK]), self.correctness_linear_coef_,

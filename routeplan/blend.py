@@ -30,7 +30,7 @@ from __future__ import annotations
 
 import numpy as np
 from numpy.typing import NDArray
-from scipy.special import expit
+from scipy.special import expit, logit
 from sklearn.linear_model import LogisticRegression
 
 __all__ = ["BLEND_BELOW", "MIX_GRID", "choose_mix", "fit_logistic", "linear_logits"]
@@ -68,8 +68,7 @@ def fit_logistic(Xs: NDArray[np.floating], right: NDArray[np.bool_],
     right = np.asarray(right, dtype=bool)
     n = right.size
     if n == 0 or right.all() or not right.any():
-        rate = (right.sum() + 1.0) / (n + 2.0)
-        return np.zeros(Xs.shape[1]), float(np.log(rate / (1.0 - rate)))
+        return np.zeros(Xs.shape[1]), float(logit((right.sum() + 1.0) / (n + 2.0)))
     model = LogisticRegression(C=_C, max_iter=1000).fit(Xs, right, sample_weight=weight)
     return model.coef_[0].astype(np.float64), float(model.intercept_[0])
 

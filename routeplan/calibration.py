@@ -105,7 +105,7 @@ def fit_temperature(logits: ArrayLike, y: ArrayLike) -> float:
     if not np.isfinite(Z.max(axis=1)).all():  # NaN, +inf, or a row of -inf only
         raise ValueError("logits must be finite (-inf is allowed beside a finite score)")
     # shift each row by its maximum once (softmax is unchanged by it); then each step
-    # is one exp and one log, not a full log_softmax: 1.7 x faster on 20,000 x 10 logits
+    # is one exp and one log, not a full log_softmax
     Z = Z - Z.max(axis=1, keepdims=True)
     z_true = Z[np.arange(y.size), y].mean()
 

@@ -438,12 +438,10 @@ def freeze(app, out_path, card_path, model_id, overwrite, as_json):
     \b
         routeplan freeze --out tiles-policy.json --card tiles-policy.md
     """
-    from .files import check_new_files
     from .freezing import freeze_workspace
 
-    check_new_files([out_path, card_path or out_path.with_suffix(".md")], overwrite)
     with app.workspace() as ws:
-        result = freeze_workspace(ws, out_path, card=card_path, model_id=model_id)
+        result = freeze_workspace(ws, out_path, card=card_path, model_id=model_id, overwrite=overwrite)
     if as_json:
         app.emit_json(result.to_dict())
     elif not app.quiet:

@@ -279,7 +279,7 @@ def _steer_outside(costs: np.ndarray, outside: np.ndarray, n_classes: int, how: 
 
 
 def _decisions(policy: Policy, case_ids: Any, costs: np.ndarray, routes: np.ndarray,
-               index: Any = None, outside: np.ndarray | None = None) -> pd.DataFrame:
+               outside: np.ndarray, index: Any = None) -> pd.DataFrame:
     """The decisions frame from expected costs and chosen options."""
     names = np.asarray(policy.option_names, dtype=object)
     labels = np.asarray(list(policy.labels) + [""] * len(policy.experts), dtype=object)
@@ -293,8 +293,7 @@ def _decisions(policy: Policy, case_ids: Any, costs: np.ndarray, routes: np.ndar
     }
     for j, name in enumerate(_cost_columns(policy.labels, policy.experts)):
         columns[name] = costs[:, j]
-    columns["outside_range"] = (np.zeros(routes.shape[0], np.int8) if outside is None
-                                else np.asarray(outside, dtype=np.int8))
+    columns["outside_range"] = np.asarray(outside, dtype=np.int8)
     return pd.DataFrame(columns, index=index)
 
 
@@ -352,7 +351,7 @@ def route_frame(frame: pd.DataFrame, manifest: Mapping[str, Any], arrays: Mappin
     from .routing import route_with_prices
 
     routes = route_with_prices(steered, policy.prices, policy.n_classes) if len(frame) else np.zeros(0, np.int64)
-    return _decisions(policy, ids, costs, routes, index=frame.index, outside=outside)
+    return _decisions(policy, ids, costs, routes, outside, index=frame.index)
 
 
 def _frame_features(frame: pd.DataFrame, names: list[str]) -> np.ndarray:
@@ -512,7 +511,7 @@ def route_file(
         routes = route_exact(steered, policy.capacities, policy.n_classes)
     else:
         routes = route_with_prices(steered, policy.prices, policy.n_classes, policy.capacities, stream_caps=True)
-    frame = _decisions(policy, ids, costs, routes, outside=outside)
+    frame = _decisions(policy, ids, costs, routes, outside)
     notes = _write_decisions(frame, out) + _batch_notes(policy, routes, outside, outside_range)
     return RouteResult(str(out), len(ids), "exact" if exact else "priced", _workload(policy, routes),
                        float(frame["expected_cost"].mean()) if len(frame) else 0.0, int(outside.sum()), notes)
@@ -529,7 +528,7 @@ def _batch_notes(policy: Policy, routes: np.ndarray, outside: np.ndarray, outsid
         notes.append(f"with {n} case(s) in this file, the capacity share of {', '.join(shut)} allows none "
                      "(the caps hold within each file): route cases in larger batches")
     kept = int((outside & (routes < policy.n_classes)).sum())
-    if kept and outside_range == "expert":
+    if kept and outside_range == "expert" and policy.experts:
         notes.append(f"{kept} case(s) outside the training range stayed with the model: every expert "
                      "was at its cap")
     return notes

@@ -75,7 +75,8 @@ class EnsembleRouter(ExpectedCostRouting, BaseEstimator):
 
     def __init__(self, *, n_members: int = 3, n_classes: int | None = None, head: str = "mlp",
                  hidden: tuple[int, ...] | None = None, correctness_head: str | None = None,
-                 logistic_blend: bool = False, max_epochs: int = 200, batch_size: int = 512, learning_rate: float = 1e-3,
+                 logistic_blend: bool = False, max_epochs: int = 200, batch_size: int = 512,
+                 learning_rate: float = 1e-3,
                  weight_decay: float = 1e-4, patience: int = 15,
                  early_stopping: str = "loss", validation_fraction: float = 0.2,
                  calibrate: bool = True, calibration_prior: float = CALIBRATION_PRIOR,

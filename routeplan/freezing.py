@@ -40,7 +40,7 @@ import pandas as pd
 
 from .card import policy_card
 from .errors import InputError
-from .files import check_out_path, write_atomically
+from .files import check_new_files, check_out_path, write_atomically
 
 __all__ = ["CONFIDENCE", "FreezeResult", "freeze_workspace"]
 
@@ -110,7 +110,8 @@ class FreezeResult:
 
 
 def freeze_workspace(ws: Any, out: str | os.PathLike, *, card: str | os.PathLike | None = None,
-                     model_id: int | None = None, confidence: float = CONFIDENCE) -> FreezeResult:
+                     model_id: int | None = None, confidence: float = CONFIDENCE,
+                     overwrite: bool = True) -> FreezeResult:
     """Freeze a workspace's fitted router as a policy file and a policy card.
 
     The router's expected costs on the fit's held-out selection cases feed the capacity LP
@@ -131,6 +132,9 @@ def freeze_workspace(ws: Any, out: str | os.PathLike, *, card: str | os.PathLike
     model_id : int, optional
         A stored model (default: the chosen one).
     confidence : float, default=0.95
+    overwrite : bool, default=True
+        Replace a policy file or card already there (the command line's default is to
+        refuse).
 
     Returns
     -------
@@ -141,7 +145,8 @@ def freeze_workspace(ws: Any, out: str | os.PathLike, *, card: str | os.PathLike
     InputError
         No fitted model, a two-stage router whose held-out cases lack imported
         probabilities, no held-out cases, feature columns changed
-        since the fit, or an output folder that does not exist.
+        since the fit, an output folder that does not exist, or (without ``overwrite``)
+        an output file that does.
     """
     from .fitting import load_router
     from .policy import write_policy
@@ -149,6 +154,7 @@ def freeze_workspace(ws: Any, out: str | os.PathLike, *, card: str | os.PathLike
 
     out = Path(out)
     card_path = _card_path(out, card)
+    check_new_files([out, card_path], overwrite)
     for path in (out, card_path):
         check_out_path(path, [])
     model_id, router, params, fit_metrics = load_router(ws, model_id)
@@ -181,8 +187,10 @@ def _scores_changed_since(ws: Any, model_id: int) -> list[str]:
     journal = ws.journal()  # newest first; entry ids order the commands even within a second
     fitted = next((e["entry_id"] for e in journal if e["command"] == "fit"
                    and model_id in json.loads(e["detail"] or "{}").get("model_ids", {}).values()), None)
-    later = [e for e in journal if fitted is not None and e["command"] == "scores import"
-             and e["entry_id"] > fitted and json.loads(e["detail"] or "{}").get("replaced", 0)]
+    if fitted is None:
+        return []
+    later = [e for e in journal if e["command"] == "scores import" and e["entry_id"] > fitted
+             and json.loads(e["detail"] or "{}").get("replaced", 0)]
     if not later:
         return []
     return [f"your model's imported probabilities were replaced after model {model_id} was fitted "

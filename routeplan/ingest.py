@@ -540,8 +540,8 @@ def import_answers(ws: Workspace, paths: Sequence[str | Path], *, strict: bool =
     """
     plans = []
     claimed: dict[tuple[str, str], tuple[str, str, int]] = {}
-    labels = ws.labels
-    experts = {e["name"] for e in ws.experts()}
+    known = _AnswerContext(ws.labels, {e["name"] for e in ws.experts()}, ws.sheet_columns(),
+                           ws.closed_round_ids())  # read once for every file
     for path in paths:
         table = read_table(path, text_columns=("case_id", "expert", "answer"))
         result = ImportResult("answers", table.source)
@@ -549,7 +549,7 @@ def import_answers(ws: Workspace, paths: Sequence[str | Path], *, strict: bool =
             result.no_op = True
             plans.append((result, table, []))
             continue
-        plans.append((result, table, _plan_answers(ws, table, labels, experts, claimed, strict, result)))
+        plans.append((result, table, _plan_answers(ws, table, known, claimed, strict, result)))
     if any(rows for _, _, rows in plans):
         with ws.transaction():
             for result, table, rows in plans:
@@ -560,16 +560,25 @@ def import_answers(ws: Workspace, paths: Sequence[str | Path], *, strict: bool =
     return [result for result, _, _ in plans]
 
 
-def _sheet_as_answers(ws: Workspace, table: Table) -> tuple[Table, int]:
+@dataclass(frozen=True)
+class _AnswerContext:
+    """What checking an answers file needs from the workspace, read once per import."""
+
+    labels: Sequence[str]
+    experts: set[str]
+    sheet_columns: set[str]
+    closed_rounds: set[int]
+
+
+def _sheet_as_answers(table: Table, sheet_columns: set[str]) -> tuple[Table, int]:
     """Accept a filled sheet from ``round export``: drop its display columns and blank answers.
 
-    Columns that the workspace knows as feature or display columns are dropped; rows with an
+    Columns that a sheet may show (``sheet_columns``) are dropped; rows with an
     empty answer (not answered yet) are skipped; the apostrophe that export puts before
     formula-looking cells is removed. Returns the table and the number of blank rows.
     """
     frame = table.frame
-    known = set(ws.feature_columns) | set(ws.display_column_names()) | ({"group"} if ws.has_groups() else set())
-    keep = [c for c in frame.columns if c not in known or c in ("case_id", "expert", "answer")]
+    keep = [c for c in frame.columns if c not in sheet_columns or c in ("case_id", "expert", "answer")]
     blank = table.empty["answer"] if "answer" in table.empty else np.zeros(len(frame), dtype=bool)
     if len(keep) < len(frame.columns) or blank.any():
         table = table.take(np.flatnonzero(~blank), keep)
@@ -579,16 +588,16 @@ def _sheet_as_answers(ws: Workspace, table: Table) -> tuple[Table, int]:
     return table, int(blank.sum())
 
 
-def _plan_answers(ws, table, labels, experts, claimed, strict, result) -> list[tuple]:
+def _plan_answers(ws, table, known: _AnswerContext, claimed, strict, result) -> list[tuple]:
     blank = 0
     if "answer" in table.frame.columns:
-        table, blank = _sheet_as_answers(ws, table)
+        table, blank = _sheet_as_answers(table, known.sheet_columns)
         if len(table.frame) == 0:
             raise table.fail("every answer cell is empty; fill in the answer column first")
     check_rows(table, load_schema("answers-row"))
     frame = table.frame
-    _check_known(table, "expert", experts, "expert", "add it with 'routeplan experts add NAME --fee F'")
-    _check_labels_in_set(table, "answer", labels)
+    _check_known(table, "expert", known.experts, "expert", "add it with 'routeplan experts add NAME --fee F'")
+    _check_labels_in_set(table, "answer", known.labels)
     _check_pair_conflicts(table, ["case_id", "expert"], "answer")
     known_cases = ws.existing_case_ids(frame["case_id"].unique().tolist())
     _check_known(table, "case_id", known_cases, "case", "import it with 'routeplan cases import' first")
@@ -596,7 +605,6 @@ def _plan_answers(ws, table, labels, experts, claimed, strict, result) -> list[t
     keys = list(zip(unique["case_id"], unique["expert"]))
     stored = ws.stored_answers(keys)
     asked = ws.open_assignments(keys)
-    closed = ws.closed_round_ids() if asked else set()
     rows = []
     historical = late = 0
     for position, key, answer in zip(unique.index, keys, unique["answer"]):
@@ -619,7 +627,7 @@ def _plan_answers(ws, table, labels, experts, claimed, strict, result) -> list[t
             historical += 1
             rows.append((key[0], key[1], answer, None, None))
         else:
-            late += link[1] in closed
+            late += link[1] in known.closed_rounds
             rows.append((key[0], key[1], answer, link[1], link[0]))
     result.rows = len(frame)
     result.added = len(rows)

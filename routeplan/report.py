@@ -77,7 +77,7 @@ def _estimate_cell(value: float, low: float, high: float, fmt: str) -> tuple[str
         return "-", False
     if low != low or high != high:
         return f"{fmt.format(value)} {_NO_INTERVAL}", True
-    return f"{fmt.format(value)} [{fmt.format(low)}, {fmt.format(high)}]", False
+    return _interval(value, low, high, fmt), False
 
 
 def _n_cell(row: dict, prefix: str) -> tuple[str, bool]:

@@ -593,7 +593,7 @@ def _check_columns(ws: Workspace, columns: Sequence[str]) -> list[str]:
         raise InputError(f"--columns: {clash[0]!r} is always on the sheet; name feature or display columns only")
     if len(set(columns)) != len(columns):
         raise InputError("--columns repeats a column")
-    known = set(ws.feature_columns) | set(ws.display_column_names()) | ({"group"} if ws.has_groups() else set())
+    known = ws.sheet_columns()
     unknown = [c for c in columns if c not in known]
     if unknown:
         available = ", ".join(sorted(known)) or "none"

@@ -314,10 +314,7 @@ class Workspace:
 
     def seen_input(self, command: str, sha256: str) -> bool:
         """True if ``command`` already imported a file with these bytes."""
-        row = self.db.execute(
-            "SELECT 1 FROM journal WHERE command = ? AND input_sha256 = ? LIMIT 1", (command, sha256)
-        ).fetchone()
-        return row is not None
+        return self.input_detail(command, sha256) is not None
 
     def input_detail(self, command: str, sha256: str) -> dict | None:
         """The journal detail of ``command``'s first import of these bytes (None: never)."""
@@ -720,9 +717,11 @@ class Workspace:
                 out[case_id] = (blob, display, group)
         return out
 
-    def has_groups(self) -> bool:
-        """True if some case has a group."""
-        return self.db.execute("SELECT 1 FROM cases WHERE grp IS NOT NULL LIMIT 1").fetchone() is not None
+    def sheet_columns(self) -> set[str]:
+        """Columns a round's sheet may show besides its own: features, display columns and,
+        where some case has one, ``group``."""
+        grouped = self.db.execute("SELECT 1 FROM cases WHERE grp IS NOT NULL LIMIT 1").fetchone() is not None
+        return set(self.feature_columns) | set(self.display_column_names()) | ({"group"} if grouped else set())
 
     def set_round_state(self, round_id: int, state: str) -> None:
         """Set a round's state (``open`` or ``closed``; call inside :meth:`transaction`)."""
