@@ -110,7 +110,7 @@ def test_dawid_skene_through_the_cli_on_the_published_anaesthesia_data(tmp_path)
 
     The workspace keeps one answer per (case, expert), so observer 1 contributes only the
     first of its three ratings here. The class proportions are compared with the published
-    ones, which are recalled from memory (../shared/reference/README.md): about
+    ones, which are recalled from memory (tests/data/SOURCES_competence.md): about
     0.40, 0.42, 0.11, 0.07; the tolerance is loose (0.08) for both reasons.
     """
     data = pd.read_csv(DATA / "dawid_skene_1979_anaesthesia.csv")

@@ -225,7 +225,9 @@ def test_weighted_saving_interval_on_kish_effective_counts():
 
 
 def test_audit_sample_is_unbiased_where_acquisition_is_not():
-    # seeded simulation with a known pool accuracy: easy cases right 95%, hard ones 60%;
+    # A simple random sample's mean is unbiased for the population mean (Horvitz & Thompson,
+    # JASA 1952; Cochran, Sampling Techniques, 1977, ch. 2); a sample chosen by difficulty is
+    # not. Seeded simulation with a known pool accuracy: easy cases right 95%, hard ones 60%;
     # the acquisition asked about hard cases only, the audit drew cases uniformly at random
     rng = np.random.default_rng(5)
     n = 20000

@@ -53,7 +53,8 @@ def test_dawid_skene_anaesthesia(anaesthesia):
     np.testing.assert_allclose(res.class_prior, [0.40, 0.42, 0.11, 0.07], atol=0.05)
     # observer 1 rated each patient three times: the repeated rows count
     assert res.n_answers[res.experts.index("observer_1")] == 135
-    # sanity check, not an exact value (reference README: 3 patients in one run): the EM's
+    # sanity check, not an exact value (the project's own run found 3 patients, see
+    # tests/data/SOURCES_competence.md; the paper gives no such count): the EM's
     # most likely class and the majority vote disagree on a few patients only
     votes = pd.crosstab(anaesthesia["case"], anaesthesia["answer"]).to_numpy()
     disagree = np.sum(votes.argmax(axis=1) != res.most_likely)
