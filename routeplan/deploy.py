@@ -211,8 +211,10 @@ def decision_columns(manifest: Mapping[str, Any]) -> pd.DataFrame:
     -------
     pandas.DataFrame
     """
-    frame = pd.DataFrame({"case_id": pd.Series([], dtype=object), "route": pd.Series([], dtype=object),
-                          "label": pd.Series([], dtype=object),
+    # text columns get the dtype pandas gives the decisions' text (``str`` under pandas 3): an
+    # ``object`` meta makes Dask invent placeholder objects that pyarrow cannot write
+    text = pd.Series(np.asarray([""], dtype=object)).iloc[:0].reset_index(drop=True)
+    frame = pd.DataFrame({"case_id": text, "route": text.copy(), "label": text.copy(),
                           "expected_cost": pd.Series([], dtype=np.float64)})
     for name in _cost_columns(manifest["labels"], [e["name"] for e in manifest["experts"]]):
         frame[name] = pd.Series([], dtype=np.float64)

@@ -31,8 +31,8 @@ def small():
 
 @pytest.mark.slow
 def test_bayes_cost_is_the_deferral_bayes_rule_on_the_held_out_cases(small):
-    # Bayes rule of learning to defer with fees (Mozannar & Sontag, ICML 2020, section 3;
-    # Verma, Barrejon & Nalisnick, AISTATS 2023), written out here from the scenario's known
+    # Bayes rule of learning to defer with fees (Mozannar & Sontag, ICML 2020; Verma,
+    # Barrejon & Nalisnick, AISTATS 2023), written out here from the scenario's known
     # probabilities with 0/1 costs: the model's option k costs 1 - P(k | x); expert j costs
     # 1 - P(j right | x) plus its fee (a wrong answer is an error). The rehearsal's yardstick
     # must be the mean over the held-out cases (the scenario's cases after the pool) of the
@@ -291,7 +291,7 @@ def test_rehearsal_router_can_be_the_average_of_plug_in_routers():
                       n_folds=2, n_reference_fits=1, strategies=("random",), random_state=3)
     assert result.settings["router"]["n_members"] == 2
     # the averaged router's costs are exact costs of real routings: above the Bayes cost (a
-    # router fitted on a few answers does not reach it) and below 1, the cost of a routing
+    # router fitted on a few answers does not reach it) and below 1, the cost of a model
     # that is always wrong
     assert (result.curves["system_cost"] > result.bayes_cost).all()
     assert (result.curves["system_cost"] < 1.0).all()

@@ -117,9 +117,9 @@ def test_paired_difference_exact_coverage_beats_the_plain_normal_interval():
     Computed here, not copied: averaged over a grid of discordant-cell probabilities, the
     adjusted interval covers the true difference at least at the nominal 95% for n = 10 and 20,
     while the plain normal (Wald) interval, whose variance is 0 when the few pairs all agree,
-    falls short, as Agresti & Min report (from memory). The Wald bounds 0.9 (n = 10) and 0.93 (n = 20) are
-    this test's own margins below 0.95, chosen by us so that "falls short" means clearly short;
-    they are not figures from the paper.
+    falls short, as Agresti & Min report (from memory). The Wald bounds 0.9 (n = 10) and 0.93
+    (n = 20) are this test's own margins below 0.95, chosen by us so that "falls short" means
+    clearly short; they are not figures from the paper.
     """
     from scipy.special import gammaln
 
