@@ -4,13 +4,15 @@ Run:  .venv/bin/python benchmarks/bench_learner.py [--quick] [--parts 1 2 3 4]
 
 1. Fit time on 100,000 x 32 (K = 10 classes, M = 5 experts, all answers known, 10 epochs)
    against scikit-learn's LogisticRegression (lbfgs) on the same matrix (goal: at most 3x)
-   and MLPClassifier with the same hidden sizes and epochs (goal: faster).
+   and MLPClassifier with the same hidden sizes and epochs (goal: faster). The linear
+   plug-in is fitted to convergence by full-batch L-BFGS (no epochs), like LogisticRegression.
 2. Scoring 1,000,000 cases in a fresh subprocess (goal: < 5 s, peak memory < 1.5 GB,
    measured with resource.getrusage ru_maxrss).
 3. Gap to the Bayes-optimal cost on the synthetic scenario with all answers (20,000 cases;
    goal: within 0.01), per router, seeds 0 and 1.
-4. Plug-in, the average of three plug-ins, and the softmax, one-vs-all and asymmetric
-   softmax surrogates on digits (Mozannar & Sontag's expert), mean over seeds 0 and 1.
+4. Plug-in (MLP and linear), the average of three plug-ins, and the softmax, one-vs-all
+   and asymmetric softmax surrogates on digits (Mozannar & Sontag's expert), mean over
+   seeds 0 and 1 (``--routers`` picks some of them for [3] and [4]).
 
 Wall-clock figures depend on the machine's load; CPU seconds are printed beside them,
 and fit times are the least of a few runs.
@@ -63,7 +65,8 @@ def bench_fit(n: int) -> None:
     candidates = [
         ("PluginRouter (classifier + correctness nets)", lambda: PluginRouter(**epochs)),
         ("SurrogateRouter softmax (correctness + scorer)", lambda: SurrogateRouter(**epochs)),
-        ("PluginRouter linear", lambda: PluginRouter(head="linear", **epochs)),
+        ("PluginRouter linear (L-BFGS to convergence)",
+         lambda: PluginRouter(head="linear", **epochs)),
         ("EnsembleRouter (3 plug-in routers)", lambda: EnsembleRouter(**epochs)),
     ]
     for name, make in candidates:
@@ -200,7 +203,7 @@ def bench_score() -> None:
               f"{r['rss_before_mb']:.0f} MB (interpreter, torch and the 128 MB input)")
 
 
-def bench_bayes(n_train: int) -> None:
+def bench_bayes(n_train: int, routers: list) -> None:
     """Gap to the exact Bayes-optimal cost on the synthetic scenario."""
     sc = simulate.make_scenario(n_train + 10_000, random_state=0)
     A = sc.answers(1)
@@ -210,7 +213,7 @@ def bench_bayes(n_train: int) -> None:
     bayes = ec.min(axis=1).mean()
     print(f"\n[3] synthetic scenario (8 features, K=5, M=3), {n_train:,} training cases, all "
           f"answers;\n    exact expected cost on 10,000 held-out cases; Bayes-optimal {bayes:.4f}")
-    for name, make in _ROUTERS:
+    for name, make in routers:
         for seed in (0, 1):
             router, wall, cpu = _timed(lambda: make(seed).fit(sc.X[tr], sc.y[tr], A[tr],
                                                               fees=sc.fees))
@@ -221,6 +224,7 @@ def bench_bayes(n_train: int) -> None:
 
 _ROUTERS = [
     ("plugin", lambda s: PluginRouter(random_state=s)),
+    ("linear", lambda s: PluginRouter(head="linear", random_state=s)),
     ("ensemble", lambda s: EnsembleRouter(random_state=s)),
     ("asymmetric", lambda s: SurrogateRouter(loss="asymmetric", random_state=s)),
     ("softmax", lambda s: SurrogateRouter(random_state=s)),
@@ -228,7 +232,7 @@ _ROUTERS = [
 ]
 
 
-def bench_digits() -> None:
+def bench_digits(routers: list) -> None:
     """Plug-in vs the two surrogates on digits with the simulated expert."""
     from sklearn.model_selection import train_test_split
 
@@ -241,14 +245,14 @@ def bench_digits() -> None:
                                   stratify=d.y)
         exp_expert = np.where(d.y[te] < k, 0.0, 0.9)
         line = [f"  k={k}:"]
-        for name, make in _ROUTERS:
+        for name, make in routers:
             cost, defer = [], []
             for seed in (0, 1):
                 r = make(seed).fit(d.X[tr], d.y[tr], d.answers[tr], fees=np.zeros(1))
                 routes = r.predict_route(d.X[te])
                 cost.append(np.where(routes < 10, routes != d.y[te], exp_expert).mean())
                 defer.append(np.mean(routes >= 10))
-                if name == "plugin" and seed == 0:
+                if name == routers[0][0] and seed == 0:
                     model = float((r.predict_proba(d.X[te]).argmax(1) != d.y[te]).mean())
             line.append(f"{name} {np.mean(cost):.4f} (defers {np.mean(defer):.2f})")
         line.append(f"| model alone {model:.4f}, expert alone {exp_expert.mean():.4f}")
@@ -261,15 +265,18 @@ def main() -> None:
                         help="smaller fit benchmark (20,000 cases)")
     parser.add_argument("--parts", type=int, nargs="+", default=[1, 2, 3, 4],
                         choices=[1, 2, 3, 4], help="which of the four benchmarks to run")
+    parser.add_argument("--routers", nargs="+", choices=[name for name, _ in _ROUTERS],
+                        default=[name for name, _ in _ROUTERS], help="routers of [3] and [4]")
     args = parser.parse_args()
+    routers = [(name, make) for name, make in _ROUTERS if name in args.routers]
     if 1 in args.parts:
         bench_fit(20_000 if args.quick else 100_000)
     if 2 in args.parts:
         bench_score()
     if 3 in args.parts:
-        bench_bayes(20_000)
+        bench_bayes(20_000, routers)
     if 4 in args.parts:
-        bench_digits()
+        bench_digits(routers)
 
 
 if __name__ == "__main__":

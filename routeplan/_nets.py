@@ -2,7 +2,8 @@
 
 A network is a linear map or a ReLU MLP (``nn.Sequential``); its state travels as plain
 float32 arrays. :func:`_train_loop` runs mini-batch Adam (Kingma & Ba, ICLR 2015) with
-early stopping on a validation score and keeps the best epoch's weights.
+early stopping on a validation score and keeps the best epoch's weights; a linear map
+under a convex loss may be fitted by full-batch L-BFGS instead (:func:`_fit_full_batch`).
 """
 
 from __future__ import annotations
@@ -116,6 +117,9 @@ class _LoopSettings:
     #: Set when the network trained beside this one fails or is interrupted: the loop then
     #: stops after the epoch it is in (and ``fit`` raises the other side's error).
     cancel: threading.Event | None = None
+    #: A linear network with a convex loss is fitted to convergence by full-batch L-BFGS
+    #: (:func:`_fit_full_batch`) instead of epochs of Adam; the caller vouches for convexity.
+    convex: bool = False
 
 
 def _child_generator(gen: torch.Generator) -> torch.Generator:
@@ -146,6 +150,66 @@ def _effective_batch(n: int, batch_size: int) -> int:
     return int(min(batch_size, max(32, math.ceil(n / 20))))
 
 
+def _is_linear(net: nn.Module) -> bool:
+    """Whether ``net`` is one linear map (``head="linear"``)."""
+    return isinstance(net, nn.Sequential) and len(net) == 1 and isinstance(net[0], nn.Linear)
+
+
+#: L-BFGS iterations and tolerances of :func:`_fit_full_batch`.
+_LBFGS_MAX_ITER = 200
+_LBFGS_TOL_GRAD = 1e-6
+_LBFGS_TOL_CHANGE = 1e-10
+
+
+def _fit_full_batch(
+    net: nn.Module,
+    loss_fn: Callable[..., torch.Tensor],
+    tensors: tuple[torch.Tensor, ...],
+    val_score: Callable[[nn.Module], tuple[float, float]],
+    settings: _LoopSettings,
+    description: str,
+) -> list[tuple[float, float]]:
+    """Fit a linear network to convergence by full-batch L-BFGS; one validation score.
+
+    Limited-memory BFGS (Liu & Nocedal, "On the limited memory BFGS method for large
+    scale optimization", Mathematical Programming, 1989) with a strong Wolfe line
+    search, the solver scikit-learn's ``LogisticRegression`` uses by default. For a
+    convex loss of a linear map the optimum is unique (up to ties), so there are no
+    epochs, batch orders or early stopping: the mean loss plus ``weight_decay / 2``
+    times the squared weights (not the biases) is minimised, the penalty Adam's coupled
+    weight decay stands for. Raises ``FloatingPointError`` if the fit is not finite.
+    """
+    weights = [p for name, p in net.named_parameters() if name.endswith("weight")]
+    opt = torch.optim.LBFGS(net.parameters(), lr=1.0, max_iter=_LBFGS_MAX_ITER,
+                            tolerance_grad=_LBFGS_TOL_GRAD, tolerance_change=_LBFGS_TOL_CHANGE,
+                            history_size=10, line_search_fn="strong_wolfe")
+    half_decay = 0.5 * settings.weight_decay
+
+    def closure() -> torch.Tensor:
+        opt.zero_grad(set_to_none=True)
+        loss = loss_fn(net, *tensors)
+        if half_decay > 0:
+            loss = loss + half_decay * sum((w * w).sum() for w in weights)
+        loss.backward()
+        return loss
+
+    shared = settings.progress
+    with contextlib.nullcontext(shared) if shared is not None else _progress(settings) as progress:
+        task = progress.add_task(description, total=1, status="L-BFGS")
+        net.train()
+        opt.step(closure)
+        net.eval()
+        with torch.no_grad():
+            score = val_score(net)
+        progress.update(task, advance=1, status=f"validation score {score[0]:.4f}")
+    if not all(math.isfinite(v) for v in score) or not all(
+            bool(torch.isfinite(p).all()) for p in net.parameters()):
+        raise FloatingPointError(
+            f"the full-batch fit of the {description} is not finite; check the features "
+            "for extreme values")
+    return [score]
+
+
 def _train_loop(
     net: nn.Module,
     loss_fn: Callable[..., torch.Tensor],
@@ -160,8 +224,11 @@ def _train_loop(
     ``val_score`` returns ``(primary, tie_break)``, both lower-is-better; training stops
     after ``patience`` epochs without improvement. An epoch whose score is not finite
     (a diverged network) is never kept; if no epoch gave a finite score the loop
-    raises ``FloatingPointError``. Returns the per-epoch scores.
+    raises ``FloatingPointError``. Returns the per-epoch scores. With ``settings.convex``
+    a linear network goes to :func:`_fit_full_batch` instead.
     """
+    if settings.convex and _is_linear(net):
+        return _fit_full_batch(net, loss_fn, tensors, val_score, settings, description)
     opt = _adam(net, settings)
     n = tensors[0].shape[0]
     batch_size = _effective_batch(n, settings.batch_size)

@@ -478,6 +478,7 @@ class _BaseRouter(BaseEstimator):
         v_t, v_w = torch.from_numpy(v_right), torch.from_numpy(val.weights.astype(np.float32))
         settings = self._settings()
         settings.progress, settings.cancel = progress, cancel
+        settings.convex = True  # weighted log-loss: a linear model goes to L-BFGS
         if not v_known.any():
             settings.max_epochs, settings.patience = min(20, settings.max_epochs), 10**9
 
@@ -727,7 +728,13 @@ _COMMON_PARAMS_DOC = """
     n_classes : int, optional
         Number of classes K; by default the cost matrix's size, else ``max(y, answers) + 1``.
     head : {"mlp", "linear"}, default="mlp"
-        Form of the networks: a ReLU MLP with layer widths ``hidden``, or linear.
+        Form of the networks: a ReLU MLP with layer widths ``hidden``, or linear. A
+        linear map under a convex loss (the plug-in's classifier, every router's
+        correctness model) is fitted to convergence by full-batch L-BFGS, as
+        scikit-learn fits a logistic regression: ``max_epochs``, ``batch_size``,
+        ``learning_rate`` and ``patience`` then do not apply to it and
+        ``weight_decay / 2`` times the squared weights is its penalty. Linear scorers of
+        the surrogate routers train by Adam with early stopping like the MLPs.
     hidden : tuple of int, optional
         Hidden layer widths of the MLP. Default: ``(64, 64, 64)`` when the training
         split has at least 5,000 cases, else ``(64, 64)``; the widths used are
@@ -754,7 +761,7 @@ _COMMON_PARAMS_DOC = """
     learning_rate : float, default=1e-3
         Adam step size.
     weight_decay : float, default=1e-4
-        Adam's L2 penalty.
+        Adam's L2 penalty (for a network fitted by L-BFGS, see ``head``).
     patience : int, default=15
         Epochs without a better validation score before training stops; the weights of
         the best epoch are kept.

@@ -486,7 +486,7 @@ def route(app, policy_path, cases_path, out_path, exact, id_column, chunk_size, 
 
     result = route_file(policy_path, cases_path, out_path, exact=exact, id_column=id_column,
                         chunk_size=chunk_size, outside_range=outside_range, overwrite=overwrite,
-                        console=app.console, progress=not (app.quiet or as_json))
+                        console=app.console, progress=not (app.quiet or as_json), workspace=app.folder)
     if result.outside_warning:
         click.echo(result.outside_warning, err=True)
     if as_json:
@@ -525,7 +525,7 @@ def route(app, policy_path, cases_path, out_path, exact, id_column, chunk_size, 
 @click.option("--no-focus", is_flag=True, help="Plan every round without the router's focus.")
 @click.option("--seed", type=int, default=0, show_default=True, help="Seeds the scenario, the rounds and the routers.")
 @click.option("--plot", "plot_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
-              help="Write the curves to this PNG.")
+              help="Write the curves to this image: .png, or another format matplotlib writes (.pdf, .svg...).")
 @click.option("--overwrite", is_flag=True, help="Replace a --plot file already there.")
 @json_option
 @pass_app
@@ -548,13 +548,14 @@ def rehearse(app, n_rounds, budget_per_round, n_pool, profiles_path, strategies,
         routeplan rehearse --profiles assumed.csv --rounds 4 --budget 25
     """
     from .errors import InputError
-    from .files import check_new_files, check_out_path
+    from .figures import check_plot_path
+    from .files import check_outputs
     from .rehearse import STRATEGIES, budget_to_reach, scenario_from_workspace
     from .rehearse import rehearse as run
 
-    check_new_files([plot_path], overwrite)
-    if plot_path is not None:  # before the rehearsal, not after it
-        check_out_path(plot_path, [])
+    check_outputs({"--plot": plot_path}, overwrite=overwrite, workspace=app.folder)  # before the rehearsal
+    if plot_path is not None:
+        check_plot_path(plot_path)
 
     chosen = [s.strip() for s in strategies.split(",") if s.strip()]
     unknown = [s for s in chosen if s not in STRATEGIES]
@@ -608,7 +609,8 @@ def rehearse(app, n_rounds, budget_per_round, n_pool, profiles_path, strategies,
 @click.option("--csv", "csv_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
               help="Write the table (broken down with --by, if given) to this CSV file.")
 @click.option("--plot", "plot_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
-              help="Write a heatmap of accuracy per expert x class (or x region with --by region) to this PNG.")
+              help="Write a heatmap of accuracy per expert x class (or x group or region with --by) to this "
+                   "image: .png, or another format matplotlib writes (.pdf, .svg...).")
 @click.option("--overwrite", is_flag=True, help="Replace a --csv or --plot file already there.")
 @json_option
 @pass_app
@@ -626,30 +628,11 @@ def competence(app, by, basis, n_regions, seed, csv_path, plot_path, overwrite, 
     \b
         routeplan competence --by region --plot competence.png
     """
-    from .competence import pool_competence
-    from .files import check_new_files, check_out_path
-    from .fitting import held_out_predictions
-    from .pool import load_pool
+    from .competence import workspace_competence
 
-    check_new_files([csv_path, plot_path], overwrite)
-    for path in (csv_path, plot_path):
-        if path is not None:
-            check_out_path(path, [])
     with app.workspace() as ws:
-        pool = load_pool(ws)
-        model_pred = held_out_predictions(ws, pool)
-    report = pool_competence(pool, model_pred=model_pred, n_regions=n_regions, random_state=seed)
-    frame = getattr(report, f"by_{by}") if by else report.accuracy
-    if csv_path is not None:
-        from .files import write_csv
-
-        write_csv(frame, csv_path)
-    if plot_path is not None:
-        from .figures import competence_heatmap
-
-        level = by if by in ("class", "region", "group") else "class"
-        competence_heatmap(getattr(report, f"by_{level}"), level, plot_path,
-                           accuracy_column="audit_accuracy" if basis == "audit" else "accuracy")
+        report = workspace_competence(ws, by=by, basis=basis, n_regions=n_regions, random_state=seed,
+                                      csv_path=csv_path, plot_path=plot_path, overwrite=overwrite)
     if as_json:
         app.emit_json(report.to_dict())
         return

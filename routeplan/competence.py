@@ -70,6 +70,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -78,6 +79,7 @@ from numpy.typing import ArrayLike, NDArray
 
 from routeplan._answerframe import _case_positions, _check_answers, _check_range, _int_column
 from routeplan.agreement import agreement_table, fleiss_for_shared
+from routeplan.errors import InputError
 from routeplan.latent import DawidSkeneResult, dawid_skene, latent_accuracy_table
 from routeplan.regions import region_summary, regions_from_features
 from routeplan.stats import (
@@ -102,6 +104,7 @@ __all__ = [
     "per_class_table",
     "region_summary",
     "regions_from_features",
+    "workspace_competence",
 ]
 
 MODEL = "model"
@@ -846,7 +849,7 @@ def pool_competence(pool: Any, *, model_pred: ArrayLike | None = None, n_regions
     """
     answers = pool.long_answers()
     groups = pool.group
-    has_group = groups is not None and any(g is not None for g in groups)
+    has_group = _has_group(groups)
     n_regions = max(1, min(int(n_regions), len(pool.y)))
     region = regions_from_features(pool.X, n_regions=n_regions, random_state=random_state) if len(pool.y) else None
     return competence_report(
@@ -861,3 +864,94 @@ def pool_competence(pool: Any, *, model_pred: ArrayLike | None = None, n_regions
         region=region,
         latent=latent,
     )
+
+
+# --------------------------------------------------------------------------- a workspace's report and files
+
+
+def workspace_competence(
+    ws: Any,
+    *,
+    by: str | None = None,
+    basis: str = "truth",
+    n_regions: int = 6,
+    random_state: int = 0,
+    csv_path: str | Path | None = None,
+    plot_path: str | Path | None = None,
+    overwrite: bool = False,
+) -> CompetenceReport:
+    """Every competence table of a workspace, with the CSV table and the heatmap written if asked.
+
+    Every check comes before anything is written: the output paths (not the workspace's
+    database, not the same file twice, folder there, no file replaced without
+    ``overwrite``, a plot extension matplotlib writes), a group column for ``by="group"``,
+    and, for the heatmap, at least one accuracy on the chosen basis to show.
+
+    Parameters
+    ----------
+    ws : routeplan.workspace.Workspace
+    by : {"class", "group", "region"}, optional
+        The breakdown written to ``csv_path`` and drawn in the heatmap (class by default).
+    basis : {"truth", "audit"}, default="truth"
+        The accuracy the heatmap shows.
+    n_regions : int, default=6
+    random_state : int, default=0
+        Seed of the region clustering.
+    csv_path, plot_path : str or Path, optional
+        Where to write the table and the heatmap.
+    overwrite : bool, default=False
+        Replace files already there.
+
+    Returns
+    -------
+    CompetenceReport
+
+    Raises
+    ------
+    InputError
+        A bad output path, ``by="group"`` without an imported group column, or a heatmap
+        with nothing to show.
+    """
+    from routeplan.figures import check_plot_path, competence_heatmap
+    from routeplan.files import check_outputs, write_csv
+    from routeplan.fitting import held_out_predictions
+    from routeplan.pool import load_pool
+
+    csv_path = None if csv_path is None else Path(csv_path)
+    plot_path = None if plot_path is None else Path(plot_path)
+    check_outputs({"--csv": csv_path, "--plot": plot_path}, overwrite=overwrite, workspace=ws.folder)
+    if plot_path is not None:
+        check_plot_path(plot_path)
+    pool = load_pool(ws)
+    if by == "group" and not _has_group(pool.group):
+        raise InputError("--by group: no group column was imported; name one when importing cases "
+                         "('routeplan cases import FILE --group-column COLUMN')")
+    report = pool_competence(pool, model_pred=held_out_predictions(ws, pool), n_regions=n_regions,
+                             random_state=random_state)
+    level = by or "class"
+    column = "audit_accuracy" if basis == "audit" else "accuracy"
+    if plot_path is not None:
+        _check_plottable(getattr(report, f"by_{level}"), column, basis)
+    if csv_path is not None:
+        write_csv(getattr(report, f"by_{by}") if by else report.accuracy, csv_path)
+    if plot_path is not None:
+        competence_heatmap(getattr(report, f"by_{level}"), level, plot_path, accuracy_column=column)
+    return report
+
+
+def _has_group(groups: Any) -> bool:
+    """True if at least one case has a group."""
+    return groups is not None and any(g is not None for g in groups)
+
+
+def _check_plottable(frame: pd.DataFrame | None, column: str, basis: str) -> None:
+    """Refuse a heatmap without a single accuracy to show (it would be an empty grid)."""
+    values = np.array([], dtype=float) if frame is None else pd.to_numeric(frame[column], errors="coerce").to_numpy()
+    if np.isfinite(values).any():
+        return
+    if basis == "audit":
+        raise InputError("--basis audit --plot: no audit answer on a case with known truth yet, so the heatmap "
+                         "would be empty; import the answers of a round planned with --audit-share above 0, "
+                         "or plot the truth basis")
+    raise InputError("--plot: no answer on a case with known truth yet, so the heatmap would be empty; "
+                     "import truth and answers first")

@@ -37,7 +37,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import InputError
-from .files import FORMULA_LEAD, check_new_files, check_out_path, write_atomically
+from .files import FORMULA_LEAD, check_outputs, write_atomically
 
 __all__ = [
     "DEFAULT_SCORE_CHUNK",
@@ -448,6 +448,7 @@ def route_file(
     overwrite: bool = True,
     console: Any = None,
     progress: bool = False,
+    workspace: str | os.PathLike | None = None,
 ) -> RouteResult:
     """Route every case of a CSV or Parquet file with a frozen policy.
 
@@ -483,6 +484,9 @@ def route_file(
         Where the progress bar goes.
     progress : bool, default=False
         Show a progress bar while scoring.
+    workspace : str or path-like, optional
+        A workspace folder (the command's ``--workspace``) whose database ``out_path``
+        must not overwrite; routing itself needs no workspace.
 
     Returns
     -------
@@ -491,15 +495,16 @@ def route_file(
     Raises
     ------
     InputError
-        Bad policy, bad cases file, or an output path that would overwrite an input.
+        Bad policy, bad cases file, or an output path that would overwrite an input or a
+        workspace's database.
     """
     from .routing import route_exact, route_with_prices
 
     if int(chunk_size) != chunk_size or chunk_size < 1:
         raise InputError(f"--chunk-size must be a positive integer, not {chunk_size!r}")
     out = Path(out_path)
-    check_out_path(out, [Path(policy_path), Path(cases_path)])
-    check_new_files([out], overwrite)
+    check_outputs({"--out": out}, overwrite=overwrite, workspace=workspace,
+                  inputs=[Path(policy_path), Path(cases_path)])
     _check_outside_option(outside_range)
     policy = load_policy(policy_path)
     ids, X = _read_cases(cases_path, id_column, policy.input_columns)

@@ -7,7 +7,56 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-__all__ = ["competence_heatmap"]
+__all__ = ["competence_heatmap", "rehearsal_plot", "plot_formats", "check_plot_path"]
+
+#: Formats matplotlib can write that need more than matplotlib itself (pgf runs LaTeX).
+_NEEDS_MORE = frozenset({"pgf"})
+
+
+def plot_formats() -> list[str]:
+    """The file extensions a plot may have: what matplotlib's Agg canvas writes, sorted.
+
+    Returns
+    -------
+    list of str
+        Lower-case extensions without the dot (``png``, ``pdf``, ``svg``...).
+    """
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    return sorted(set(FigureCanvasAgg.get_supported_filetypes()) - _NEEDS_MORE)
+
+
+def check_plot_path(path: str | Path, option: str = "--plot") -> str:
+    """Refuse a plot path whose extension does not name a format matplotlib can write.
+
+    Matplotlib picks the format from the extension and adds ``.png`` to a name without
+    one, so a path without an extension would be written under another name.
+
+    Parameters
+    ----------
+    path : str or Path
+        Where the plot is to go.
+    option : str, default="--plot"
+        The option that gave the path, for the message.
+
+    Returns
+    -------
+    str
+        The format (the extension, lower case, without the dot).
+
+    Raises
+    ------
+    InputError
+        No extension, or one matplotlib cannot write.
+    """
+    from .errors import InputError
+
+    suffix = Path(path).suffix
+    formats = plot_formats()
+    if suffix.lower().lstrip(".") in formats:
+        return suffix.lower().lstrip(".")
+    problem = f"{option} needs a file extension" if not suffix else f"{option}: {suffix!r} is not an image format matplotlib writes"
+    raise InputError(f"{problem}; use .png (or one of .{', .'.join(f for f in formats if f != 'png')})", source=str(path))
 
 
 def competence_heatmap(frame: pd.DataFrame, level: str, path: str | Path, *, accuracy_column: str = "accuracy") -> Path:
@@ -50,7 +99,7 @@ def competence_heatmap(frame: pd.DataFrame, level: str, path: str | Path, *, acc
     fig.colorbar(image, ax=ax, fraction=0.04, label="accuracy")
     fig.tight_layout()
     path = Path(path)
-    fig.savefig(path)
+    fig.savefig(path, format=check_plot_path(path))  # the format named, so the file is written under its own name
     plt.close(fig)
     return path
 
@@ -89,6 +138,6 @@ def rehearsal_plot(curves: pd.DataFrame, path: str | Path, *, bayes_cost: float 
     ax.legend(frameon=False)
     fig.tight_layout()
     path = Path(path)
-    fig.savefig(path)
+    fig.savefig(path, format=check_plot_path(path))  # the format named, so the file is written under its own name
     plt.close(fig)
     return path

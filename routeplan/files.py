@@ -22,7 +22,7 @@ import json
 import os
 import re
 import tempfile
-from collections.abc import Callable
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -42,6 +42,7 @@ __all__ = [
     "write_csv",
     "write_atomically",
     "check_out_path",
+    "check_outputs",
     "neutralise_formula",
     "FORMULA_LEAD",
 ]
@@ -216,6 +217,8 @@ def _read_csv(path: Path, scan: _Scan, source: str, text_columns: tuple[str, ...
             read_options=pacsv.ReadOptions(encoding="utf8"),
             convert_options=pacsv.ConvertOptions(
                 null_values=[""],
+                true_values=[],  # no booleans: TRUE stays the text the user wrote, not 'true'
+                false_values=[],
                 strings_can_be_null=True,
                 quoted_strings_can_be_null=True,
                 column_types={raw: pa.string() for raw in _raw_names(header) if raw.strip() in text_columns},
@@ -472,7 +475,7 @@ def _check_present(table: Table, name: str, rule: dict, kinds: set, present: np.
         found = [_check_bounds(name, values, present & ~bad, rule)]
         if bad.any():
             at = int(np.argmax(bad))
-            shown = cells.iloc[at] if name not in table.numeric else f"{values[at]}"
+            shown = cells.iloc[at] if name not in table.numeric else _spelling(table, name, at, values[at])
             found.append((at, f"column '{name}' holds {shown!r}, not a finite number"))
         found = [f for f in found if f is not None]
         if not found:
@@ -488,6 +491,33 @@ def _check_present(table: Table, name: str, rule: dict, kinds: set, present: np.
         found = [f for f in found if f is not None]
         return min(found) if found else None
     return _check_text(name, _text_of(table, name).where(present, ""), present, rule)
+
+
+def _spelling(table: Table, name: str, position: int, value: float) -> str:
+    """A parsed number's cell as the file spells it (``NaN``, ``-INF``), for a message.
+
+    Only CSV cells can be read back; elsewhere, or where the column cannot be found in
+    the header (it was renamed), the number is shown as Python formats it.
+    """
+    fallback = f"{value}"
+    if not table.is_text:
+        return fallback
+    wanted = {1, table.line_of(position)}
+    rows: dict[int, list[str]] = {}
+    try:
+        with open(table.source, encoding="utf-8-sig", newline="") as handle:
+            for number, text in enumerate(handle, start=1):
+                if number in wanted:
+                    rows[number] = next(csv.reader([text.rstrip("\r\n")]), [])
+                if number >= max(wanted):
+                    break
+    except (OSError, UnicodeDecodeError, csv.Error):
+        return fallback
+    header = [cell.strip() for cell in rows.get(1, [])]
+    cells = rows.get(table.line_of(position), [])
+    if name not in header or header.index(name) >= len(cells):
+        return fallback
+    return cells[header.index(name)].strip() or fallback
 
 
 def _text_of(table: Table, name: str) -> pd.Series:
@@ -671,3 +701,55 @@ def check_out_path(out: Path, inputs: list[Path]) -> None:
     folder = out.parent if str(out.parent) else Path(".")
     if not folder.is_dir():
         raise InputError(f"the folder {folder} does not exist", source=str(out))
+
+
+def check_outputs(
+    outputs: Mapping[str, Path | None],
+    *,
+    overwrite: bool,
+    workspace: str | Path | None = None,
+    inputs: Sequence[Path] = (),
+) -> None:
+    """Check every output path of a command before anything is written.
+
+    In order: no output is a workspace database or one of its SQLite sidecars
+    (:func:`routeplan.workspace.refuse_workspace_files`); no two outputs name the same file;
+    none overwrites an input or lands in a missing folder (:func:`check_out_path`); and one
+    already there is replaced only with ``overwrite`` (:func:`check_new_files`).
+
+    Parameters
+    ----------
+    outputs : mapping of str to Path or None
+        Each output's option (e.g. ``"--csv"``), for messages, and its path; None is skipped.
+    overwrite : bool
+        The ``--overwrite`` flag.
+    workspace : str or Path, optional
+        The command's workspace folder, whose database files are protected.
+    inputs : sequence of Path, default=()
+        Files the command reads.
+
+    Raises
+    ------
+    InputError
+    """
+    from .workspace import refuse_workspace_files
+
+    given = {option: Path(path) for option, path in outputs.items() if path is not None}
+    refuse_workspace_files(given, workspace)
+    seen: dict[Path, str] = {}
+    for option, path in given.items():
+        key = _resolved(path)
+        if key in seen:
+            raise InputError(f"{seen[key]} and {option} name the same file; give each its own name", source=str(path))
+        seen[key] = option
+    for path in given.values():
+        check_out_path(path, list(inputs))
+    check_new_files(list(given.values()), overwrite)
+
+
+def _resolved(path: Path) -> Path:
+    """``path`` with links followed where possible (else absolute), to compare outputs."""
+    try:
+        return path.resolve()
+    except (OSError, RuntimeError):
+        return path.absolute()

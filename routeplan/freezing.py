@@ -40,7 +40,7 @@ import pandas as pd
 
 from .card import policy_card
 from .errors import InputError
-from .files import check_new_files, check_out_path, write_atomically
+from .files import check_outputs, write_atomically
 
 __all__ = ["CONFIDENCE", "FreezeResult", "freeze_workspace"]
 
@@ -145,8 +145,9 @@ def freeze_workspace(ws: Any, out: str | os.PathLike, *, card: str | os.PathLike
     InputError
         No fitted model, a two-stage router whose held-out cases lack imported
         probabilities, no held-out cases, feature columns changed
-        since the fit, an output folder that does not exist, or (without ``overwrite``)
-        an output file that does.
+        since the fit, an output that is the workspace's database (or one of its sidecar
+        files), an output folder that does not exist, or (without ``overwrite``) an output
+        file that does.
     """
     from .fitting import load_router
     from .policy import write_policy
@@ -154,9 +155,7 @@ def freeze_workspace(ws: Any, out: str | os.PathLike, *, card: str | os.PathLike
 
     out = Path(out)
     card_path = _card_path(out, card)
-    check_new_files([out, card_path], overwrite)
-    for path in (out, card_path):
-        check_out_path(path, [])
+    check_outputs({"--out": out, "--card": card_path}, overwrite=overwrite, workspace=ws.folder)
     model_id, router, params, fit_metrics = load_router(ws, model_id)
     pool = load_pool(ws)
     frozen = _freeze_parts(router, params, fit_metrics, pool, model_id, confidence)

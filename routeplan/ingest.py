@@ -2,8 +2,11 @@
 
 Each importer reads the whole file, checks it against its JSON Schema and against the
 workspace (unknown cases or experts, labels outside the label set, conflicts with what is
-stored), and only then writes, in one transaction, with one journal entry. Re-importing a file
-with the same bytes is a no-op. Any problem raises :class:`~routeplan.errors.InputError`
+stored), and only then writes, in one transaction, with one journal entry. Re-importing a cases
+or answers file with the same bytes is a no-op (what they stored cannot change since); a truth,
+scores or experts file with the same bytes is compared with what is stored now, since a
+``--replace`` import or ``experts add`` may have changed it, and is a no-op only where nothing
+differs. Any problem raises :class:`~routeplan.errors.InputError`
 before anything is written. :func:`read_profiles` checks a file the same way against the
 workspace but stores nothing (assumed expert accuracies, for a rehearsal).
 """
@@ -49,11 +52,17 @@ class ImportResult:
     rows : int
         Records read.
     added : int
-        Records written.
+        Records written that were not stored before.
     unchanged : int
         Records already stored with the same content (skipped).
     no_op : bool
         True when the same bytes were imported before and nothing was done.
+    replaced : int
+        Records written over a different stored value (truth imported with ``--replace``).
+    seen_before : bool
+        True when the same bytes were imported before. Truth, scores and experts files are
+        then compared with what is stored now, which may have changed since; ``no_op`` says
+        whether that changed anything.
     notes : dict
         Importer-specific counts (e.g. ``historical`` answers, ``feature_columns``).
     """
@@ -64,6 +73,8 @@ class ImportResult:
     added: int = 0
     unchanged: int = 0
     no_op: bool = False
+    replaced: int = 0
+    seen_before: bool = False
     notes: dict = field(default_factory=dict)
 
     def message(self) -> str:
@@ -73,9 +84,14 @@ class ImportResult:
         noun = {"cases": "case(s)", "truth": "truth value(s)", "experts": "expert(s)", "answers": "answer(s)",
                 "scores": "case score row(s)"}[self.kind]
         text = f"{self.source}: {self.added} {noun} added"
+        if self.replaced:
+            text += f", {self.replaced} replaced"
         if self.unchanged:
             text += f", {self.unchanged} already stored"
         extras = [f"{k.replace('_', ' ')}: {v}" for k, v in self.notes.items() if isinstance(v, int) and v]
+        if self.seen_before:
+            extras.append("the same bytes were imported before; the workspace has changed since, so they "
+                          "were compared with what is stored now")
         return text + (f" ({'; '.join(extras)})" if extras else "")
 
     def to_dict(self) -> dict:
@@ -295,9 +311,7 @@ def import_truth(ws: Workspace, path: str | Path, *, replace: bool = False) -> I
     """
     table = read_table(path, text_columns=("case_id", "truth"))
     result = ImportResult("truth", table.source)
-    if ws.seen_input("truth import", table.sha256):
-        result.no_op = True
-        return result
+    seen = ws.seen_input("truth import", table.sha256)  # stored truth may have changed since: compare
     check_rows(table, load_schema("truth-row"))
     frame = table.frame
     _check_labels_in_set(table, "truth", ws.labels)
@@ -313,13 +327,22 @@ def import_truth(ws: Workspace, path: str | Path, *, replace: bool = False) -> I
             continue
         if old is not None and not replace:
             raise table.fail(f"truth {truth!r} for case {case_id!r} conflicts with the stored {old!r} (use --replace to change it)", position)
+        result.replaced += old is not None
         changes.append((case_id, truth))
     result.rows = len(table.frame)
     if changes:
         with ws.transaction():
             ws.set_truth(changes)
-            ws.log("truth import", {"rows": result.rows, "changed": len(changes)}, input_file=table.source, input_sha256=table.sha256)
-    result.added = len(changes)
+            ws.log("truth import", {"rows": result.rows, "changed": len(changes), "replaced": result.replaced},
+                   input_file=table.source, input_sha256=table.sha256)
+    result.added = len(changes) - result.replaced
+    return _mark_seen(result, seen, changed=bool(changes))
+
+
+def _mark_seen(result: ImportResult, seen: bool, *, changed: bool) -> ImportResult:
+    """Flag a file whose bytes were imported before: a no-op if it changed nothing this time."""
+    result.no_op = seen and not changed
+    result.seen_before = seen and changed
     return result
 
 
@@ -357,10 +380,7 @@ def import_scores(ws: Workspace, path: str | Path, *, replace: bool = False) -> 
     """
     table = read_table(path, text_columns=("case_id",))
     result = ImportResult("scores", table.source)
-    if not replace and ws.seen_input("scores import", table.sha256):
-        # With replace, the same bytes may bring back a file replaced since: store them again.
-        result.no_op = True
-        return result
+    seen = ws.seen_input("scores import", table.sha256)  # stored scores may have changed since: compare
     wanted = score_columns(ws.labels)
     columns = list(table.frame.columns)
     missing = [c for c in wanted if c not in columns]
@@ -404,7 +424,7 @@ def import_scores(ws: Workspace, path: str | Path, *, replace: bool = False) -> 
                                      "replaced": int(changed.sum())},
                    input_file=table.source, input_sha256=table.sha256)
     result.added = int(write.size - changed.sum())
-    return result
+    return _mark_seen(result, seen, changed=bool(write.size))
 
 
 def _check_pair_conflicts(table: Table, keys: list[str], value: str) -> None:
@@ -447,9 +467,7 @@ def import_experts(ws: Workspace, path: str | Path) -> ImportResult:
     """
     table = read_table(path, text_columns=("name",))
     result = ImportResult("experts", table.source)
-    if ws.seen_input("experts import", table.sha256):
-        result.no_op = True
-        return result
+    seen = ws.seen_input("experts import", table.sha256)  # fees may have changed since ('experts add'): compare
     parsed = check_rows(table, load_schema("experts-row"))
     dup = _first_duplicate(table.frame["name"])
     if dup:
@@ -460,7 +478,8 @@ def import_experts(ws: Workspace, path: str | Path) -> ImportResult:
         (name, float(fee), None if np.isnan(cap) else float(cap))
         for name, fee, cap in zip(table.frame["name"], parsed["fee"], capacity)
     ]
-    return _store_experts(ws, rows, result, "experts import", table.source, table.sha256)
+    result = _store_experts(ws, rows, result, "experts import", table.source, table.sha256)
+    return _mark_seen(result, seen, changed=result.added + result.notes["updated"] > 0)
 
 
 def add_expert(ws: Workspace, name: str, *, fee: float | None = None,
@@ -487,10 +506,10 @@ def add_expert(ws: Workspace, name: str, *, fee: float | None = None,
         check_rows(table, load_schema("experts-row"))
     except InputError as exc:
         raise InputError(_option_words(exc.message)) from None
+    if fee is None and name not in {e["name"] for e in ws.experts()}:  # first: --capacity alone would not do
+        raise InputError(f"expert {name!r} is new: give its --fee (and, if you like, --capacity)")
     if fee is None and capacity is None:
-        raise InputError("give --fee, --capacity or both")
-    if fee is None and name not in {e["name"] for e in ws.experts()}:
-        raise InputError(f"expert {name!r} is new: give its --fee")
+        raise InputError(f"give --fee, --capacity or both to change expert {name!r}")
     result = ImportResult("experts", "command line")
     row = (name, None if fee is None else float(fee), None if capacity is None else float(capacity))
     return _store_experts(ws, [row], result, "experts add", None, None)

@@ -240,6 +240,7 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
         corr_net = self._correctness_net()
         clf_net = _make_net(self.n_features_in_, self.n_classes_, self.head, self.hidden_)
         settings = self._settings()
+        settings.convex = True  # cross-entropy: a linear classifier goes to L-BFGS
         self.history_.update(correctness=[], classifier=[])  # the same key order either way
         independent = not by_cost and self.n_experts_ > 0
         with contextlib.ExitStack() as stack:

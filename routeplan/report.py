@@ -36,14 +36,7 @@ def render_status(info: dict) -> Group:
                 f"models: {info['models']}; policies: {info['policies']}")
     parts: list = [head]
     if info["experts"]:
-        table = Table(title="Experts", title_justify="left", expand=False, box=box.SIMPLE_HEAD, pad_edge=False)
-        for name, justify in (("expert", "left"), ("fee", "right"), ("capacity", "right"),
-                              ("answers", "right"), ("historical", "right"), ("spent", "right")):
-            table.add_column(name, justify=justify, overflow="fold")
-        for e in info["experts"]:
-            table.add_row(e["name"], f"{e['fee']:g}", f"{e['capacity']:.0%}", str(e["answers"]),
-                          str(e["historical_answers"]), f"{e['spent']:g}")
-        parts.append(table)
+        parts.append(_experts_table(info["experts"]))
     else:
         parts.append(Text("No experts yet: routeplan experts add NAME --fee F"))
     if info["rounds"]:
@@ -56,6 +49,43 @@ def render_status(info: dict) -> Group:
                           str(r["expired"]), style="bold red" if r["overdue"] else None)
         parts.append(table)
     return Group(*parts)
+
+
+def _experts_table(experts: list[dict]) -> Table:
+    """The experts of a status; fees pending or expired get columns only where there are any."""
+    extra = [key for key in ("pending_fees", "expired_fees") if any(e.get(key) for e in experts)]
+    table = Table(title="Experts", title_justify="left", expand=False, box=box.SIMPLE_HEAD, pad_edge=False,
+                  caption_justify="left")
+    for name, justify in (("expert", "left"), ("fee", "right"), ("capacity", "right"),
+                          ("answers", "right"), ("historical", "right"), ("spent", "right")):
+        table.add_column(name, justify=justify, overflow="fold")
+    for key in extra:
+        table.add_column(key.replace("_fees", ""), justify="right", overflow="fold")
+    for e in experts:
+        table.add_row(e["name"], f"{e['fee']:g}", f"{e['capacity']:.0%}", str(e["answers"]),
+                      str(e["historical_answers"]), f"{e['spent']:g}", *(f"{e[key]:g}" for key in extra))
+    notes = {"pending_fees": "pending: fees of assignments still awaiting an answer",
+             "expired_fees": "expired: fees of assignments unanswered when their round closed (not spent)"}
+    table.caption = "spent: fees of answered assignments" + "".join(f"; {notes[key]}" for key in extra)
+    return table
+
+
+def _agreement_table(frame) -> Table:
+    """Pairwise agreement; a pair without shared cases says so instead of showing nan."""
+    table = Table(title="Agreement between experts (Cohen's kappa, shared cases)", title_justify="left",
+                  box=box.SIMPLE_HEAD, pad_edge=False)
+    for name in ("expert", "expert", "shared", "agreement", "kappa"):
+        table.add_column(name, justify="left" if name == "expert" else "right", overflow="fold")
+    for row in frame.to_dict(orient="records"):
+        shared = int(row["n_shared"])
+        agreement = "no shared cases" if shared == 0 else _figure(row["agreement"])
+        table.add_row(str(row["expert_a"]), str(row["expert_b"]), str(shared), agreement, _figure(row["kappa"]))
+    return table
+
+
+def _figure(value: float) -> str:
+    """A figure with two decimals, or a dash where there is none (nan)."""
+    return "-" if value != value else f"{value:.2f}"
 
 
 def _interval(value: float, low: float, high: float, fmt: str = "{:.2f}") -> str:
@@ -204,14 +234,7 @@ def render_competence(report, *, by: str | None = None, basis: str = "truth") ->
     for name, matrix in (report.confusion or {}).items():
         parts.append(_confusion_table(name, matrix, report.labels))
     if report.agreement is not None and len(report.agreement):
-        table = Table(title="Agreement between experts (Cohen's kappa, shared cases)", title_justify="left",
-                      box=box.SIMPLE_HEAD, pad_edge=False)
-        for name in ("expert", "expert", "shared", "agreement", "kappa"):
-            table.add_column(name, justify="left" if name == "expert" else "right", overflow="fold")
-        for row in report.agreement.to_dict(orient="records"):
-            table.add_row(str(row["expert_a"]), str(row["expert_b"]), str(int(row["n_shared"])),
-                          f"{row['agreement']:.2f}", "-" if row["kappa"] != row["kappa"] else f"{row['kappa']:.2f}")
-        parts.append(table)
+        parts.append(_agreement_table(report.agreement))
     if report.fleiss is not None and len(report.fleiss):
         text = Text("Fleiss' kappa where three or more experts answered the same cases:\n")
         for row in report.fleiss.to_dict(orient="records"):

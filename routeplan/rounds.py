@@ -60,7 +60,7 @@ from .acquisition import (
 )
 from .errors import InputError, NotFitted
 from .files import write_csv
-from .workspace import Workspace
+from .workspace import Workspace, refuse_workspace_files
 
 __all__ = ["RoundPlan", "SheetExport", "RoundClosed", "plan_round", "export_round", "close_round", "sheet_path"]
 
@@ -553,7 +553,8 @@ def export_round(
     Raises
     ------
     InputError
-        Unknown round or column, an unsafe expert name, or a sheet already there.
+        Unknown round or column, an unsafe expert name, a sheet that is (a link to) the
+        workspace's database, or a sheet already there.
     """
     record = ws.round_record(round_id)
     if record is None:
@@ -568,6 +569,7 @@ def export_round(
     folder.mkdir(parents=True, exist_ok=True)
     experts = sorted(set(rows["expert"]))
     targets = {e: sheet_path(folder, e) for e in experts}
+    refuse_workspace_files({f"--out (the sheet of {e})": p for e, p in targets.items()}, ws.folder)
     _check_targets(targets, overwrite)
     shown = _display_columns(ws, rows["case_id"].unique().tolist(), columns)
     sheets = []

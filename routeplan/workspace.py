@@ -33,7 +33,7 @@ from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any, Iterable, Iterator, Sequence
+from typing import Any, Iterable, Iterator, Mapping, Sequence
 
 import numpy as np
 from sqlite_utils import Database
@@ -41,11 +41,14 @@ from sqlite_utils.migrations import Migrations
 
 from .errors import InputError, WorkspaceExists, WorkspaceMissing
 
-__all__ = ["Workspace", "DB_NAME", "SCHEMA_VERSION", "RESERVED_ROUTE"]
+__all__ = ["Workspace", "DB_NAME", "SCHEMA_VERSION", "RESERVED_ROUTE", "SQLITE_SIDECARS", "database_files",
+           "refuse_workspace_files"]
 
 DB_NAME = "routeplan.sqlite"
 RESERVED_ROUTE = "model"
 BUSY_TIMEOUT_S = 60.0
+#: Files SQLite keeps beside a database: the write-ahead log, its shared memory, the rollback journal.
+SQLITE_SIDECARS = ("-wal", "-shm", "-journal")
 
 migrations = Migrations("routeplan")
 
@@ -581,12 +584,18 @@ class Workspace:
     # ------------------------------------------------------------------ status
 
     def status(self) -> dict:
-        """A summary of the workspace as plain data (see ``routeplan status``)."""
+        """A summary of the workspace as plain data (see ``routeplan status``).
+
+        Fees are split by what became of the assignment: ``spent`` counts answered ones only
+        (also answers that came after their round closed), ``pending_fees`` those still
+        awaiting an answer in an open round, and ``expired_fees`` those left unanswered when
+        their round closed, which cost nothing. Each expert and each round has all three.
+        """
         q = lambda sql: self.db.execute(sql).fetchall()  # noqa: E731
         n_cases, n_truth = q("SELECT COUNT(*), COUNT(truth) FROM cases")[0]
         per_expert = {r[0]: r[1] for r in q("SELECT expert, COUNT(*) FROM answers GROUP BY expert")}
         historical = {r[0]: r[1] for r in q("SELECT expert, COUNT(*) FROM answers WHERE assignment_id IS NULL GROUP BY expert")}
-        spent = {r[0]: r[1] for r in q("SELECT expert, SUM(fee) FROM assignments GROUP BY expert")}
+        fees = self._fees_by_outcome()
         experts = []
         for e in self.experts():
             name = e["name"]
@@ -597,14 +606,15 @@ class Workspace:
                     "capacity": e["capacity"],
                     "answers": per_expert.get(name, 0),
                     "historical_answers": historical.get(name, 0),
-                    "spent": round(float(spent.get(name, 0.0) or 0.0), 9),  # sums of fees: no float noise
+                    **fees.get(name, {"spent": 0.0, "pending_fees": 0.0, "expired_fees": 0.0}),
                 }
             )
         now = _now()
         rounds = []
         for r in q(
             "SELECT r.round_id, r.created_at, r.strategy, r.budget, r.state, r.due_at, COUNT(a.assignment_id), "
-            "COALESCE(SUM(a.state = 'answered'), 0), COALESCE(SUM(a.fee), 0) FROM rounds r LEFT JOIN assignments a "
+            "COALESCE(SUM(a.state = 'answered'), 0), COALESCE(SUM(CASE WHEN a.state = 'answered' THEN a.fee END), 0), "
+            "COALESCE(SUM(CASE WHEN a.state != 'answered' THEN a.fee END), 0) FROM rounds r LEFT JOIN assignments a "
             "ON a.round_id = r.round_id GROUP BY r.round_id ORDER BY r.round_id"
         ):
             still_open = r[6] - r[7]
@@ -616,6 +626,8 @@ class Workspace:
                 "open": 0 if closed else still_open,
                 "overdue": still_open if overdue else 0,
                 "expired": still_open if closed else 0,
+                "pending_fees": 0.0 if closed else round(float(r[9]), 9),
+                "expired_fees": round(float(r[9]), 9) if closed else 0.0,
             })
         return {
             "workspace": str(self.folder.resolve()),
@@ -631,6 +643,19 @@ class Workspace:
             "models": q("SELECT COUNT(*) FROM models")[0][0],
             "policies": q("SELECT COUNT(*) FROM policies")[0][0],
         }
+
+    def _fees_by_outcome(self) -> dict[str, dict[str, float]]:
+        """Per expert, the fees of assignments answered (spent), awaiting an answer in an open
+        round (pending) and left unanswered when their round closed (expired: not spent)."""
+        rows = self.db.execute(
+            "SELECT a.expert, "
+            "COALESCE(SUM(CASE WHEN a.state = 'answered' THEN a.fee END), 0), "
+            "COALESCE(SUM(CASE WHEN a.state != 'answered' AND r.state = 'open' THEN a.fee END), 0), "
+            "COALESCE(SUM(CASE WHEN a.state != 'answered' AND r.state != 'open' THEN a.fee END), 0) "
+            "FROM assignments a JOIN rounds r ON r.round_id = a.round_id GROUP BY a.expert"
+        ).fetchall()
+        keys = ("spent", "pending_fees", "expired_fees")
+        return {r[0]: {k: round(float(v), 9) for k, v in zip(keys, r[1:])} for r in rows}  # sums: no float noise
 
     # ------------------------------------------------------------------ rounds (planner)
 
@@ -774,6 +799,71 @@ class Workspace:
                 "JOIN temp.keys k ON k.case_id = t.case_id AND k.expert = t.expert"
             )
         }
+
+
+def database_files(folder: str | Path) -> list[Path]:
+    """The workspace database of ``folder`` and its SQLite sidecar files (which need not exist).
+
+    Parameters
+    ----------
+    folder : str or Path
+        A workspace folder.
+
+    Returns
+    -------
+    list of Path
+        ``folder/routeplan.sqlite`` first, then its ``-wal``, ``-shm`` and ``-journal`` files.
+    """
+    path = Path(folder) / DB_NAME
+    return [path] + [path.with_name(path.name + suffix) for suffix in SQLITE_SIDECARS]
+
+
+def refuse_workspace_files(outputs: Mapping[str, str | Path | None], folder: str | Path | None = None) -> None:
+    """Refuse output paths that would overwrite a workspace database or one of its sidecars.
+
+    A path is refused when, after following links, it names ``routeplan.sqlite`` or one of
+    its ``-wal``, ``-shm`` or ``-journal`` files in a folder that holds a workspace, or when it
+    is the same file as one of the files of the workspace in ``folder`` (a hard link, or a
+    name that differs only in case on a case-insensitive file system). Writing over any of
+    them would damage the workspace (common practice: SQLite's "How To Corrupt An SQLite
+    Database File" names overwriting the database or deleting its journal).
+
+    Parameters
+    ----------
+    outputs : mapping of str to path or None
+        Each output's option (e.g. ``"--csv"``), for the message, and its path; None is skipped.
+    folder : str or Path, optional
+        The workspace folder of the command (``--workspace``), if it has one.
+
+    Raises
+    ------
+    InputError
+        Naming the option and the path.
+    """
+    for option, path in outputs.items():
+        if path is not None and _is_workspace_file(Path(path), folder):
+            raise InputError(f"{option} would overwrite the workspace database (or one of its -wal, -shm or "
+                             "-journal files); choose another file", source=str(path))
+
+
+def _is_workspace_file(path: Path, folder: str | Path | None) -> bool:
+    """True if ``path`` is a workspace database or sidecar (see :func:`refuse_workspace_files`)."""
+    try:
+        target = path.resolve()
+    except (OSError, RuntimeError):  # a link loop: not ours to judge here
+        return False
+    names = {p.name for p in database_files(".")}
+    if target.name in names and (target.parent / DB_NAME).is_file():
+        return True
+    if folder is None or not target.exists():
+        return False
+    for protected in database_files(folder):  # the same file under another name (hard link, letter case)
+        try:
+            if os.path.samefile(protected, target):
+                return True
+        except OSError:  # that file does not exist
+            continue
+    return False
 
 
 def _check_labels(labels: Sequence[str]) -> list[str]:

@@ -131,3 +131,83 @@ def test_dawid_skene_through_the_cli_on_the_published_anaesthesia_data(tmp_path)
     report = json.loads(invoke(folder, "competence", "--json", "--regions", "1").stdout)
     prior = np.array(report["latent"]["class_prior"])
     np.testing.assert_allclose(prior, [0.40, 0.42, 0.11, 0.07], atol=0.08)
+
+
+# --------------------------------------------------------------------------- output paths and refusals
+
+
+def _refused(folder: Path, *args: str):
+    """Run ``competence`` expecting a refusal: exit code 2 and one line on stderr."""
+    from click.testing import CliRunner
+    from conftest import assert_one_line_error
+    from routeplan.cli import cli
+
+    result = CliRunner().invoke(cli, ["--workspace", str(folder), "competence", *map(str, args)])
+    return assert_one_line_error(result)
+
+
+def _digest(path: Path) -> str:
+    import hashlib
+
+    return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+@pytest.mark.parametrize("option", ["--csv", "--plot"])
+def test_outputs_onto_the_workspace_database_are_refused(iris_workspace, tmp_path, option):
+    # Writing over an open SQLite database or its -wal/-shm/-journal file damages it (common
+    # practice: sqlite.org, "How To Corrupt An SQLite Database File"), --overwrite or not.
+    import shutil
+
+    from routeplan.workspace import DB_NAME
+
+    folder = shutil.copytree(iris_workspace[0], tmp_path / "ws")
+    before = _digest(folder / DB_NAME)
+    link = tmp_path / "innocent.csv"
+    link.symlink_to(folder / DB_NAME)
+    names = [folder / (DB_NAME + suffix) for suffix in ("", "-wal", "-shm", "-journal")]
+    for path in names + [link, tmp_path / "ws" / ".." / "ws" / DB_NAME]:
+        line = _refused(folder, option, path, "--overwrite")
+        assert f"{option} would overwrite the workspace database" in line
+        assert _digest(folder / DB_NAME) == before
+    assert not (folder / (DB_NAME + "-journal")).exists()  # a WAL workspace never has one: nothing wrote it
+    assert invoke(folder, "competence", "--json").exit_code == 0  # still a workspace
+
+
+def test_by_group_without_a_group_column_is_refused_before_writing(stocked_ws, tmp_path):
+    # A breakdown that cannot be made is refused rather than silently replaced by another
+    # table (common practice: refuse rather than ignore an option).
+    expected = ("Error: --by group: no group column was imported; name one when importing cases "
+                "('routeplan cases import FILE --group-column COLUMN')")
+    for extra in ([], ["--csv", tmp_path / "t.csv"], ["--plot", tmp_path / "p.png"]):
+        assert _refused(stocked_ws, "--by", "group", *extra) == expected
+    assert list(tmp_path.glob("*.csv")) == [] and list(tmp_path.glob("*.png")) == []
+
+
+def test_plot_paths_are_checked_before_anything_is_written(iris_workspace, tmp_path):
+    # Matplotlib infers the format from the extension and appends .png to a name without one
+    # (matplotlib documentation of Figure.savefig), so such names are refused up front.
+    folder = iris_workspace[0]
+    table = tmp_path / "table.csv"
+    line = _refused(folder, "--csv", table, "--plot", tmp_path / "heat.xyz")
+    assert "--plot: '.xyz' is not an image format matplotlib writes; use .png" in line and ".svg" in line
+    line = _refused(folder, "--csv", table, "--plot", tmp_path / "noext")
+    assert "--plot needs a file extension; use .png" in line
+    line = _refused(folder, "--csv", table, "--plot", table)
+    assert "--csv and --plot name the same file" in line
+    assert not table.exists() and not (tmp_path / "noext").exists() and not (tmp_path / "noext.png").exists()
+    assert list(tmp_path.iterdir()) == []
+    # another format matplotlib writes is accepted, under exactly the name given
+    invoke(folder, "competence", "--plot", tmp_path / "heat.svg")
+    assert (tmp_path / "heat.svg").read_text(encoding="utf-8").lstrip().startswith("<?xml")
+    assert [p.name for p in tmp_path.iterdir()] == ["heat.svg"]
+
+
+def test_audit_heatmap_without_audit_answers_is_refused(iris_workspace, tmp_path):
+    # Every answer of this workspace is historical (no round asked for it), so the audit
+    # basis has nothing to show; an empty heatmap is refused, the truth basis still plots.
+    folder = iris_workspace[0]
+    line = _refused(folder, "--basis", "audit", "--plot", tmp_path / "audit.png")
+    assert "--basis audit --plot: no audit answer on a case with known truth yet" in line
+    assert not (tmp_path / "audit.png").exists()
+    invoke(folder, "competence", "--plot", tmp_path / "truth.png")
+    assert (tmp_path / "truth.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"

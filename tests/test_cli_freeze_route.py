@@ -255,6 +255,26 @@ def test_freeze_keeps_existing_files_unless_told_and_names_stored_models(built, 
                    "no model 999", f"{built['model_id']} (")
 
 
+@pytest.mark.parametrize("suffix", ["", "-wal", "-shm", "-journal"])
+def test_freeze_and_route_refuse_to_write_over_the_workspace_database(built, tmp_path, suffix):
+    # Writing over an SQLite database or its sidecar files damages it (common practice:
+    # sqlite.org, "How To Corrupt An SQLite Database File"); --overwrite does not make it safe.
+    ws = shutil.copytree(built["ws"], tmp_path / "ws")
+    target = ws / (DB_NAME + suffix)
+    before = hashlib.sha256((ws / DB_NAME).read_bytes()).hexdigest()
+    one_line_error(invoke(ws, "freeze", "--out", target, "--overwrite"),
+                   "--out would overwrite the workspace database", str(target))
+    one_line_error(invoke(ws, "freeze", "--out", tmp_path / "p.json", "--card", target, "--overwrite"),
+                   "--card would overwrite the workspace database")
+    one_line_error(invoke(ws, "route", "--policy", built["policy"], built["new"], "--out", target, "--overwrite"),
+                   "--out would overwrite the workspace database")
+    # also when --workspace points elsewhere: the folder of the output holds a workspace
+    one_line_error(invoke(tmp_path, "route", "--policy", built["policy"], built["new"], "--out", target,
+                          "--overwrite"), "--out would overwrite the workspace database")
+    assert hashlib.sha256((ws / DB_NAME).read_bytes()).hexdigest() == before
+    assert not (tmp_path / "p.json").exists()
+
+
 def test_freeze_after_the_real_fit(built, tmp_path):
     from routeplan.fitting import fit_workspace
     from routeplan.workspace import Workspace

@@ -84,6 +84,69 @@ def test_truth_import_fills_unknown_truth(stocked_ws, write_file):
     assert (got["c2"], got["c4"], got["c1"]) == ("refer", "accept", "accept")
 
 
+def test_truth_replace_reports_added_replaced_and_unchanged_apart(stocked_ws, write_file):
+    # An import says what it did to each record: new, written over, or left alone (common practice).
+    path = write_file("truth.csv", "case_id,truth\nc1,reject\nc2,accept\nc3,reject\n")
+    result = run_cli(stocked_ws, "truth", "import", path, "--replace", "--json")
+    assert result.exit_code == 0, result.stderr
+    (report,) = json.loads(result.stdout)
+    assert (report["added"], report["replaced"], report["unchanged"], report["rows"]) == (1, 1, 1, 3)
+    got = dict(query(stocked_ws, "SELECT case_id, truth FROM cases"))
+    assert (got["c1"], got["c2"], got["c3"]) == ("reject", "accept", "reject")
+    path = write_file("again.csv", "case_id,truth\nc1,refer\nc4,refer\n")
+    again = run_cli(stocked_ws, "truth", "import", path, "--replace")
+    assert again.exit_code == 0, again.stderr
+    assert again.stdout.strip() == f"{path}: 1 truth value(s) added, 1 replaced"
+
+
+def test_reimporting_the_same_bytes_after_the_workspace_changed(stocked_ws, write_file):
+    # The same bytes imported again are compared with what is stored now: a skip by content
+    # hash alone would say "nothing changed" after a --replace or 'experts add' changed the
+    # stored values since (common practice: report what the workspace holds, not a cache).
+    first = write_file("a.csv", "case_id,truth\nc2,accept\n")
+    second = write_file("b.csv", "case_id,truth\nc2,refer\n")
+    truth_of = lambda: dict(query(stocked_ws, "SELECT case_id, truth FROM cases"))["c2"]  # noqa: E731
+    assert run_cli(stocked_ws, "truth", "import", first).exit_code == 0
+    assert run_cli(stocked_ws, "truth", "import", second, "--replace").exit_code == 0
+    assert truth_of() == "refer"
+    assert_one_line_error(run_cli(stocked_ws, "truth", "import", first),
+                          "'accept' for case 'c2' conflicts with the stored 'refer'", "--replace")
+    back = run_cli(stocked_ws, "truth", "import", first, "--replace", "--json")
+    (report,) = json.loads(back.stdout)
+    assert (report["replaced"], report["no_op"], report["seen_before"]) == (1, False, True)
+    assert truth_of() == "accept"
+    assert "already imported" in run_cli(stocked_ws, "truth", "import", first, "--replace").stdout
+
+    fees = write_file("experts.csv", "name,fee\nalice,0.6\n")
+    fee_of = lambda: dict(query(stocked_ws, "SELECT name, fee FROM experts"))["alice"]  # noqa: E731
+    assert run_cli(stocked_ws, "experts", "import", fees).exit_code == 0
+    assert run_cli(stocked_ws, "experts", "add", "alice", "--fee", "0.9").exit_code == 0
+    again = run_cli(stocked_ws, "experts", "import", fees)
+    assert again.exit_code == 0, again.stderr
+    assert "updated: 1" in again.stdout and "imported before" in again.stdout
+    assert fee_of() == 0.6
+    assert "already imported" in run_cli(stocked_ws, "experts", "import", fees).stdout
+
+
+def test_experts_add_of_a_new_name_without_options_asks_for_a_fee(stocked_ws):
+    # the hint names what is missing (a new expert has no fee to keep), as 'experts add --help' says
+    before = db_dump(stocked_ws)
+    line = assert_one_line_error(run_cli(stocked_ws, "experts", "add", "zoe"))
+    assert line == "Error: expert 'zoe' is new: give its --fee (and, if you like, --capacity)"
+    line = assert_one_line_error(run_cli(stocked_ws, "experts", "add", "alice"))
+    assert line == "Error: give --fee, --capacity or both to change expert 'alice'"
+    assert db_dump(stocked_ws) == before
+
+
+@pytest.mark.parametrize("cell", ["NaN", "-INF", "Infinity", "TRUE"])
+def test_messages_keep_the_spelling_of_the_file(stocked_ws, write_file, cell):
+    # A message quotes the cell as the user wrote it, so that a search in the file finds it
+    # (common practice); the parser reads NaN/INF as floats and TRUE as a boolean.
+    path = write_file("experts.csv", f"name,fee\ncarol,{cell}\n")
+    assert_one_line_error(run_cli(stocked_ws, "experts", "import", path),
+                          f"line 2: column 'fee' holds '{cell}', not a finite number")
+
+
 def test_experts_add_and_import(stocked_ws, write_file):
     assert run_cli(stocked_ws, "experts", "add", "carol", "--fee", "1.5", "--capacity", "0.25").exit_code == 0
     path = write_file("experts.csv", "name,fee,capacity\ndave,0,1\nerin,2,\nalice,0.75,0.5\n")
@@ -109,7 +172,7 @@ def test_changing_a_fee_keeps_the_capacity(stocked_ws, write_file):
     assert got["alice"] == (0.5, 0.4)  # the fee set in conftest stays
     before = db_dump(stocked_ws)
     assert_one_line_error(run_cli(stocked_ws, "experts", "add", "zoe", "--capacity", "0.5"), "new", "--fee")
-    assert_one_line_error(run_cli(stocked_ws, "experts", "add", "carol"), "--fee", "--capacity")
+    assert_one_line_error(run_cli(stocked_ws, "experts", "add", "carol"), "--fee", "--capacity", "'carol'")
     assert db_dump(stocked_ws) == before
 
 

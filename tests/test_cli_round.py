@@ -10,6 +10,7 @@ from __future__ import annotations
 import csv
 import json
 import math
+import os
 import shutil
 import sqlite3
 from fractions import Fraction
@@ -365,6 +366,21 @@ def test_export_refuses_sheet_linked_outside(ws, tmp_path):
     assert victim.read_text() == "keep me\n"
 
 
+def test_export_refuses_a_sheet_that_is_the_workspace_database(ws):
+    # A sheet that is the database under another name (a hard link) is refused, --overwrite or
+    # not (common practice: never write over an open SQLite file); a symbolic link is already
+    # refused as a name leading elsewhere.
+    info = plan(ws, "--budget", 4)
+    expert = rows(ws, "SELECT expert FROM assignments WHERE round_id = ? LIMIT 1", (info["round"],))[0][0]
+    os.link(ws / DB_NAME, ws / f"{expert}.csv")
+    before = dump(ws)
+    line = one_line_error(invoke(ws, "round", "export", info["round"], "--out", ws, "--overwrite"),
+                          f"--out (the sheet of {expert}) would overwrite the workspace database")
+    assert line.startswith(f"Error: {(ws / f'{expert}.csv').resolve()}:")
+    assert dump(ws) == before and os.path.samefile(ws / f"{expert}.csv", ws / DB_NAME)
+    assert not [p for p in ws.glob("*.csv") if p.name != f"{expert}.csv"]  # no other sheet was written
+
+
 # --------------------------------------------------------------------------- close
 
 
@@ -395,6 +411,41 @@ def test_close_counts_answered_and_expired(ws, tmp_path):
     assert late[0]["notes"]["linked_to_assignments"] == 1
     status = json.loads(ok(invoke(ws, "status", "--json")).stdout)
     assert (status["rounds"][0]["answered"], status["rounds"][0]["expired"]) == (6, len(got) - 6)
+
+
+def test_status_counts_only_answered_fees_as_spent(ws, tmp_path):
+    # Spend is what was paid for: an assignment's fee is spent once it is answered; one still
+    # open is pending, one left unanswered when its round closed is not spent (common practice).
+    info = plan(ws, "--budget", 3)
+    got = rows(ws, "SELECT case_id, expert, fee FROM assignments WHERE round_id = ? ORDER BY assignment_id",
+               (info["round"],))
+    truth = dict(rows(ws, "SELECT case_id, truth FROM cases"))
+    answers = tmp_path / "answers.csv"
+    answers.write_text("case_id,expert,answer\n" + "".join(f"{c},{e},{truth[c]}\n" for c, e, _ in got[:4]),
+                       encoding="utf-8")
+    ok(invoke(ws, "answers", "import", answers))
+
+    def fees(chosen):  # exact sums of the stored fees, per expert
+        out: dict = {}
+        for _, expert, fee in chosen:
+            out[expert] = out.get(expert, Fraction(0)) + Fraction(fee)
+        return out
+
+    def check(status, spent, pending, expired):
+        for e in status["experts"]:
+            for key, expected in (("spent", spent), ("pending_fees", pending), ("expired_fees", expired)):
+                assert e[key] == pytest.approx(float(expected.get(e["name"], 0)), abs=1e-9), (e["name"], key)
+        (r,) = status["rounds"]
+        for key, expected in (("spent", spent), ("pending_fees", pending), ("expired_fees", expired)):
+            assert r[key] == pytest.approx(float(sum(expected.values(), Fraction(0))), abs=1e-9), key
+
+    check(json.loads(ok(invoke(ws, "status", "--json")).stdout), fees(got[:4]), fees(got[4:]), {})
+    ok(invoke(ws, "round", "close", info["round"]))
+    status = json.loads(ok(invoke(ws, "status", "--json")).stdout)
+    check(status, fees(got[:4]), {}, fees(got[4:]))
+    assert sum(e["spent"] for e in status["experts"]) < sum(fee for *_, fee in got)
+    table = " ".join(ok(invoke(ws, "status")).stdout.split())  # the caption wraps
+    assert "expired: fees of assignments unanswered when their round closed (not spent)" in table
 
 
 # --------------------------------------------------------------------------- weights for fit

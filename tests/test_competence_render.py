@@ -81,3 +81,17 @@ def test_value_without_interval_is_marked_and_explained():
     text = _text(_accuracy_table(pd.DataFrame([row]), "Competence", None, "truth"))
     assert "12.5 \u2020" in text
     assert "\u2020: too few answers for an interval" in text
+
+
+def test_agreement_of_experts_without_shared_cases_is_not_shown_as_nan():
+    # Cohen's kappa and the observed agreement are undefined without a shared case (common
+    # practice); the table says so instead of printing nan.
+    answers = pd.DataFrame({"case": [0, 1, 2, 3, 2, 3], "expert": ["a", "a", "b", "b", "c", "c"],
+                            "answer": [0, 1, 0, 1, 0, 0]})
+    report = competence_report(answers, np.array([0, 1, 0, 1]), n_classes=2, latent=False)
+    text = _text(render_competence(report))
+    assert "nan" not in text.lower()
+    rows = {(r["expert_a"], r["expert_b"]): r for r in report.agreement.to_dict(orient="records")}
+    assert rows[("a", "b")]["n_shared"] == 0 and rows[("b", "c")]["n_shared"] == 2
+    assert "a b 0 no shared cases -" in text and "a c 0 no shared cases -" in text
+    assert "b c 2 0.50" in text  # one of two shared answers equal

@@ -394,6 +394,54 @@ def test_platt_matches_sklearn_logistic_regression(digits_scores):
     assert b_w == pytest.approx(ref_w.intercept_[0], rel=1e-3, abs=1e-3)
 
 
+def test_linear_plugin_is_sklearn_logistic_regression(small):
+    # A linear classifier under cross-entropy is multinomial logistic regression, and each
+    # linear correctness output a binary one; fitted to convergence they must reach
+    # scikit-learn's LogisticRegression (lbfgs) optimum. Reference: scikit-learn, whose
+    # objective is C * sum of losses + ||W||^2 / 2 (intercept not penalised), so our mean
+    # loss + weight_decay / 2 * ||W||^2 is C = 1 / (n * weight_decay), with n the number of
+    # (case, expert) answers for the correctness outputs, which share one mean. Digits has
+    # near-constant pixels (standardised to large values), so the optimum is flat in some
+    # directions: the objective values must agree closely, the probabilities loosely.
+    X, y, A, fees = small
+    n_tr, wd = 400, 1e-2
+    router = PluginRouter(head="linear", weight_decay=wd, calibrate=False, random_state=0).fit(
+        X[:n_tr], y[:n_tr], A[:n_tr], fees=fees, X_val=X[n_tr:], y_val=y[n_tr:],
+        answers_val=A[n_tr:])
+    assert len(router.history_["classifier"]) == 1  # no epochs: one converged fit
+    Xs = ((X - router.x_mean_) / router.x_scale_).astype(np.float64)
+    Xt, yt = Xs[:n_tr], y[:n_tr]
+
+    def penalised(W, b, X_, t, n):  # sum of log-losses / n + wd / 2 * ||W||^2
+        S = X_ @ W.T + b
+        if W.shape[0] == 1:  # binary
+            s = S[:, 0]
+            loss = (t * np.logaddexp(0, -s) + (1 - t) * np.logaddexp(0, s)).sum()
+        else:
+            loss = -(S[np.arange(len(t)), t] - np.logaddexp.reduce(S, axis=1)).sum()
+        return loss / n + wd / 2 * (W ** 2).sum()
+
+    ref = LogisticRegression(C=1 / (n_tr * wd), tol=1e-10, max_iter=10_000).fit(Xt, yt)
+    net = router.classifier_net_[0]
+    ours = penalised(net.weight.detach().double().numpy(), net.bias.detach().double().numpy(),
+                     Xt, yt, n_tr)
+    assert ours <= penalised(ref.coef_, ref.intercept_, Xt, yt, n_tr) * (1 + 1e-6)
+    np.testing.assert_allclose(router.predict_proba(X), ref.predict_proba(Xs), atol=2e-3)
+    n_answers = int((A[:n_tr] >= 0).sum())
+    q = router.predict_expert_correct(X)
+    corr = router.correctness_net_[0]
+    for j in range(A.shape[1]):
+        k = A[:n_tr, j] >= 0
+        right = (A[:n_tr, j][k] == yt[k]).astype(np.float64)
+        ref_j = LogisticRegression(C=1 / (n_answers * wd), tol=1e-10, max_iter=10_000).fit(
+            Xt[k], right)
+        ours_j = penalised(corr.weight.detach().double().numpy()[j:j + 1],
+                           corr.bias.detach().double().numpy()[j:j + 1], Xt[k], right, n_answers)
+        assert ours_j <= penalised(ref_j.coef_, ref_j.intercept_, Xt[k], right,
+                                   n_answers) * (1 + 1e-6)
+        np.testing.assert_allclose(q[:, j], ref_j.predict_proba(Xs)[:, 1], atol=5e-3)
+
+
 def test_calibration_prior_reaches_the_expert_maps(small):
     # The router's calibration_prior is the prior_strength of its Platt maps (Platt, 1999; the
     # prior itself is checked against statsmodels below): with prior 0 the map is fitted freely

@@ -160,3 +160,24 @@ def test_a_schema_1_workspace_is_migrated_forward(stocked_ws):
     tables = {r[0] for r in query(stocked_ws, "SELECT name FROM sqlite_master WHERE type = 'table'")}
     assert "imported_scores" in tables
     assert query(stocked_ws, "SELECT * FROM cases") == cases_before
+
+
+def test_refuse_workspace_files_guards_the_database_and_its_sidecars(tmp_path):
+    # Overwriting an SQLite database or its journal damages it (common practice: sqlite.org,
+    # "How To Corrupt An SQLite Database File"); other names, and folders without a
+    # workspace, are left alone.
+    import os
+
+    from routeplan.workspace import SQLITE_SIDECARS, refuse_workspace_files
+
+    refuse_workspace_files({"--out": tmp_path / DB_NAME}, tmp_path)  # no workspace there yet
+    Workspace.create(tmp_path / "ws", ["a", "b"]).close()
+    folder = tmp_path / "ws"
+    for name in [DB_NAME] + [DB_NAME + s for s in SQLITE_SIDECARS]:
+        with pytest.raises(InputError, match="--csv would overwrite the workspace database"):
+            refuse_workspace_files({"--csv": folder / name, "--plot": None})
+    os.link(folder / DB_NAME, tmp_path / "copy.csv")
+    refuse_workspace_files({"--csv": tmp_path / "copy.csv"})  # a hard link is found only with the folder
+    with pytest.raises(InputError, match="copy.csv: --csv would overwrite"):
+        refuse_workspace_files({"--csv": tmp_path / "copy.csv"}, folder)
+    refuse_workspace_files({"--csv": folder / "table.csv", "--plot": folder / "routeplan.png"}, folder)
