@@ -248,14 +248,27 @@ def _score(policy: Policy, Z: np.ndarray, ids: Any = None) -> np.ndarray:
     if not policy.proba_columns:
         return np.asarray(policy.router.predict_costs(X), dtype=np.float64)
     P = Z[:, d:]
-    sums = P.sum(axis=1)
-    bad = (P < 0).any(axis=1) | (np.abs(sums - 1.0) > _PROBA_SUM_TOLERANCE)
+    bad = _bad_proba_rows(policy, Z)
     if bad.any():
         at = int(np.argmax(bad))
         who = f"case {ids[at]!r}" if ids is not None else f"row {at}"
-        raise InputError(f"{who}: the class-probability columns ({', '.join(policy.proba_columns)}) must be "
-                         f"non-negative and sum to 1, not {sums[at]:.6g}")
-    return np.asarray(policy.router.predict_costs(X, class_proba=P / sums[:, None]), dtype=np.float64)
+        raise InputError(f"{who}: {_proba_problem(policy, Z[at])}")
+    return np.asarray(policy.router.predict_costs(X, class_proba=P / P.sum(axis=1)[:, None]), dtype=np.float64)
+
+
+def _bad_proba_rows(policy: Policy, Z: np.ndarray) -> np.ndarray:
+    """Rows whose class-probability columns (two-stage policy) are negative or do not sum to 1."""
+    if not policy.proba_columns:
+        return np.zeros(Z.shape[0], dtype=bool)
+    P = Z[:, len(policy.spec.names):]
+    return (P < 0).any(axis=1) | (np.abs(P.sum(axis=1) - 1.0) > _PROBA_SUM_TOLERANCE)
+
+
+def _proba_problem(policy: Policy, row: np.ndarray) -> str:
+    """What is wrong with one row's class probabilities, for a message."""
+    P = row[len(policy.spec.names):]
+    return (f"the class-probability columns ({', '.join(policy.proba_columns)}) must be non-negative and "
+            f"sum to 1, not {P.sum():.6g}")
 
 
 #: Where a case lies outside the training range, the ways ``route`` may treat it.
@@ -508,6 +521,7 @@ def route_file(
     _check_outside_option(outside_range)
     policy = load_policy(policy_path)
     ids, X = _read_cases(cases_path, id_column, policy.input_columns)
+    _check_proba_lines(policy, X, cases_path, id_column)
     try:
         costs, outside = _score_chunks(policy, X, ids, int(chunk_size), console, progress)
     except InputError as exc:
@@ -522,6 +536,20 @@ def route_file(
     notes = _write_decisions(frame, out) + _batch_notes(policy, routes, outside, outside_range)
     return RouteResult(str(out), len(ids), "exact" if exact else "priced", _workload(policy, routes),
                        float(frame["expected_cost"].mean()) if len(frame) else 0.0, int(outside.sum()), notes)
+
+
+def _check_proba_lines(policy: Policy, X: np.ndarray, path: str | os.PathLike, id_column: str) -> None:
+    """Refuse a file whose first bad class-probability row (two-stage policy) is found, naming
+    its line: the file is read again by the careful reader only then, to number its lines."""
+    bad = _bad_proba_rows(policy, X)
+    if not bad.any():
+        return
+    from .files import read_table
+
+    at = int(np.argmax(bad))
+    table = read_table(path, text_columns=(id_column,))
+    case_id = str(table.frame[id_column].iloc[at]).strip()
+    raise table.fail(f"case {case_id!r}: {_proba_problem(policy, X[at])}", at)
 
 
 def _batch_notes(policy: Policy, routes: np.ndarray, outside: np.ndarray, outside_range: str) -> list[str]:

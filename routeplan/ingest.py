@@ -58,7 +58,7 @@ class ImportResult:
     no_op : bool
         True when the same bytes were imported before and nothing was done.
     replaced : int
-        Records written over a different stored value (truth imported with ``--replace``).
+        Records written over a different stored value (truth or scores imported with ``--replace``).
     seen_before : bool
         True when the same bytes were imported before. Truth, scores and experts files are
         then compared with what is stored now, which may have changed since; ``no_op`` says
@@ -416,7 +416,7 @@ def import_scores(ws: Workspace, path: str | Path, *, replace: bool = False) -> 
     write = np.flatnonzero(~same)
     result.rows = len(ids)
     result.unchanged = int(same.sum())
-    result.notes["replaced"] = int(changed.sum())
+    result.replaced = int(changed.sum())
     if write.size:
         with ws.transaction():
             ws.set_scores([(ids[i], P[i].astype("<f8").tobytes()) for i in write], source_sha256=table.sha256)

@@ -145,11 +145,12 @@ def test_freeze_and_route_need_the_proba_columns(team, tmp_path):
     frame_manifest, arrays = read_policy(policy)
     by_frame = route_frame(new, frame_manifest, arrays)
     np.testing.assert_array_equal(by_frame["route"].to_numpy(), decisions["route"].to_numpy())
-    # probabilities that do not sum to 1 are refused, naming the file and the case
+    # probabilities that do not sum to 1 are refused, naming the file, its line (header
+    # first, so row 7 is line 9) and the case (common practice: errors point at the line)
     new.loc[7, "proba_0"] += 0.5
     new.to_csv(cases, index=False, float_format="%.17g")
     assert_one_line_error(run_cli(ws, "route", "--policy", policy, cases, "--out", tmp_path / "d2.csv"),
-                          "new.csv", "'n7'", "sum to 1")
+                          "new.csv line 9", "'n7'", "sum to 1")
 
 
 def test_changing_stored_scores_needs_replace(team, tmp_path):
@@ -164,7 +165,7 @@ def test_changing_stored_scores_needs_replace(team, tmp_path):
     assert_one_line_error(run_cli(ws, "scores", "import", path), "changed.csv line 3", "--replace")
     assert db_dump(ws) == before
     report = json.loads(invoke(ws, "scores", "import", path, "--replace", "--json").stdout)[0]
-    assert (report["added"], report["unchanged"], report["notes"]["replaced"]) == (0, 2, 1)
+    assert (report["added"], report["unchanged"], report["replaced"]) == (0, 2, 1)
     from routeplan.workspace import Workspace
 
     with Workspace.open(ws) as opened:
@@ -173,7 +174,7 @@ def test_changing_stored_scores_needs_replace(team, tmp_path):
     # same bytes were imported before (common practice: an explicit replace is never a no-op)
     original = pd.read_csv(team["scores"], dtype={"case_id": str}).set_index("case_id")
     report = json.loads(invoke(ws, "scores", "import", team["scores"], "--replace", "--json").stdout)[0]
-    assert report["notes"]["replaced"] == 1
+    assert report["replaced"] == 1
     with Workspace.open(ws) as opened:
         assert opened.score_matrix(["d0001"])[0, 0] == pytest.approx(original.loc["d0001", "proba_0"])
 
