@@ -255,6 +255,9 @@ def render_competence(report, *, by: str | None = None, basis: str = "truth") ->
 def render_fit(report) -> Group:
     """Render a :class:`routeplan.fitting.FitReport`: candidates and baselines on held-out cases.
 
+    One table where the console is wide enough; otherwise the share of cases per route
+    moves to a second table, so that no router name or figure is folded.
+
     Parameters
     ----------
     report : FitReport
@@ -263,34 +266,90 @@ def render_fit(report) -> Group:
     -------
     rich.console.Group
     """
+    return Group(_FitTables(report), _fit_notes(report))
+
+
+class _FitTables:
+    """The fit's tables, laid out for the width of the console they are printed on."""
+
+    def __init__(self, report) -> None:
+        self.report = report
+
+    def __rich_console__(self, console, options):
+        from rich.measure import Measurement
+
+        whole = _fit_table(self.report, with_shares=True)
+        # measured unbounded: a measurement within the console's width is clamped to it
+        if Measurement.get(console, options.update_width(10_000), whole).maximum <= options.max_width:
+            yield whole
+            return
+        yield _fit_table(self.report, with_shares=False)
+        yield _share_table(self.report)
+
+
+def _router_cell(report, row: dict) -> str:
+    """A router's name, marked where it is the one kept."""
+    return row["router"] + (" (kept)" if row["router"] == report.chosen else "")
+
+
+def _row_style(report, row: dict) -> str | None:
+    """Bold for the router kept, dim for the baselines."""
+    return "bold" if row["router"] == report.chosen else ("dim" if row.get("kind") != "router" else None)
+
+
+def _share_columns(report) -> list[str]:
+    """The table's ``share_<expert>`` columns, in order."""
+    return [c for c in report.table.columns if c.startswith("share_")]
+
+
+def _fit_table(report, *, with_shares: bool) -> Table:
+    """Cost, accuracy, coverage (and, if ``with_shares``, each expert's share) per router."""
     table = Table(title=f"Routers on {report.n_selection} held-out cases (fitted on {report.n_train})",
                   title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False)
-    table.add_column("router", overflow="fold")
+    table.add_column("router", overflow="fold")  # on a narrow console the names fold, not the figures
     table.add_column("system cost [95% CI]", justify="right", no_wrap=True)
-    table.add_column("accuracy", justify="right")
-    table.add_column("coverage", justify="right")
-    shares = [c for c in report.table.columns if c.startswith("share_")]
+    for name in ("accuracy", "coverage"):
+        table.add_column(name, justify="right", min_width=len(name))
+    shares = _share_columns(report) if with_shares else []
     for column in shares:
         table.add_column(column[len("share_"):], justify="right")
     imputed = "imputed_share" in report.table.columns and bool((report.table["imputed_share"] > 0).any())
     if imputed:
-        table.add_column("imputed", justify="right")
+        table.add_column("imputed", justify="right", min_width=len("imputed"))
     for row in report.table.to_dict(orient="records"):
-        name = row["router"] + (" (kept)" if row["router"] == report.chosen else "")
         table.add_row(
-            name,
+            _router_cell(report, row),
             _interval(row["system_cost"], row["ci_low"], row["ci_high"], "{:.3f}"),
             f"{row['accuracy']:.3f}",
             f"{row['coverage']:.0%}",
             *[f"{row[c]:.0%}" for c in shares],
             *([f"{row['imputed_share']:.0%}"] if imputed else []),
-            style="bold" if row["router"] == report.chosen else ("dim" if row.get("kind") != "router" else None),
+            style=_row_style(report, row),
         )
     if imputed:
         table.caption = ("imputed: share of the held-out cases whose cost is an estimate (the expert "
                          "sent to had not answered it), not an observed outcome; the interval does "
                          "not include that estimate's error")
         table.caption_justify = "left"
+    return table
+
+
+def _share_table(report) -> Table:
+    """Each router's share of held-out cases per expert (coverage is the model's share)."""
+    table = Table(title="Share of the held-out cases sent to each expert", title_justify="left",
+                  box=box.SIMPLE_HEAD, pad_edge=False)
+    table.add_column("router", overflow="fold")
+    shares = _share_columns(report)
+    for column in shares:
+        table.add_column(column[len("share_"):], justify="right")
+    for row in report.table.to_dict(orient="records"):
+        table.add_row(_router_cell(report, row), *[f"{row[c]:.0%}" for c in shares],
+                      style=_row_style(report, row))
+    return table
+
+
+def _fit_notes(report) -> Text:
+    """Answers per expert, calibration, notes and the stored models, under the tables."""
     text = Text()
     eff = report.effective_answers or {}
 
@@ -305,7 +364,7 @@ def render_fit(report) -> Group:
     for note in report.notes:
         text.append(f"Note: {note}\n")
     text.append(f"Stored models: {', '.join(f'{k} #{v}' for k, v in report.model_ids.items())}; kept {report.chosen}.")
-    return Group(table, text)
+    return text
 
 
 def _ece_words(ece: dict) -> str:

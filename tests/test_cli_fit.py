@@ -127,3 +127,38 @@ def test_data_notes_name_every_expert_a_router_saw_no_answer_from():
     assert len(notes) == 2 and "no answer yet from ann" in notes[0]
     assert notes[1].startswith("bo had no answer in a router's training split")
     assert _data_notes(caught[:1], {"ann": 0, "bo": 0, "cy": 9}) == [notes[0].replace("ann", "ann, bo")]
+
+
+@pytest.mark.parametrize("width", [80, 100, 200])
+def test_fit_table_never_folds_a_figure(width):
+    # the fit table as printed on a console of this width: every figure whole on its row, and
+    # the per-expert shares kept (in a second table where one does not fit); common practice
+    # for terminal tools: 80 columns is the narrowest usual terminal
+    import pandas as pd
+    from rich.console import Console
+
+    from routeplan.fitting import FitReport
+    from routeplan.report import render_fit
+
+    experts = ["apprentice_grader", "senior_reviewer", "outside_laboratory"]
+    rows = []
+    for name, cost, coverage in (("plugin-ensemble", 0.1234, 0.6), ("model alone (plugin-ensemble)", 0.4412, 1.0),
+                                 *((f"{e} alone", 0.2 + 0.1 * i, 0.0) for i, e in enumerate(experts))):
+        row = {"router": name, "kind": "router" if name == "plugin-ensemble" else "baseline",
+               "system_cost": cost, "ci_low": cost - 0.02, "ci_high": cost + 0.02, "accuracy": 0.9061,
+               "coverage": coverage, "imputed_share": 0.34}
+        row.update({f"share_{e}": (1 - coverage) / 3 for e in experts})
+        rows.append(row)
+    report = FitReport(chosen="plugin-ensemble", model_ids={"plugin-ensemble": 1}, table=pd.DataFrame(rows),
+                       notes=[], answers_per_expert={e: 10 for e in experts}, n_train=900, n_selection=300)
+    console = Console(record=True, width=width, color_system=None)
+    console.print(render_fit(report))
+    text = console.export_text()
+    assert "…" not in text  # no header or cell cut short
+    for row in rows:
+        assert f"{row['system_cost']:.3f} [{row['ci_low']:.3f}, {row['ci_high']:.3f}]" in text
+    assert text.count("0.906") == len(rows) and text.count("34%") == len(rows)
+    for e in experts:
+        assert e in text  # each expert's share column is shown
+    assert text.count("13%") == len(experts)  # the kept router's share per expert, (1 - 0.6) / 3
+    assert max(len(line) for line in text.splitlines()) <= width
