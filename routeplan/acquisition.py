@@ -567,6 +567,11 @@ def _capacity_limit(n_cases: int, capacity: float) -> int:
     return max(0, math.ceil(capacity * n_cases - _EPS))
 
 
+def _whole(x: float) -> int:
+    """``floor(x)`` as an int, at most ``_BIG`` (a budget divided by a tiny fee may be inf)."""
+    return _BIG if not x < _BIG else int(math.floor(x))
+
+
 class _Ledger:
     """Picks per expert, picks in all, and budget left (counted with the fee floor)."""
 
@@ -583,7 +588,7 @@ class _Ledger:
     def room(self, j: int, left: float | None = None) -> int:
         """Most picks expert ``j`` can take now (budget, cap, capacity)."""
         money = self.left if left is None else left
-        afford = int(math.floor((money + self.tol) / self.fee[j])) if money + self.tol >= self.fee[j] else 0
+        afford = _whole((money + self.tol) / float(self.fee[j])) if money + self.tol >= self.fee[j] else 0
         cap = int(self.limit[j] - self.n[j])
         return max(0, min(afford, cap, self.max_per - int(self.n[j])))
 
@@ -872,7 +877,7 @@ def _audit_counts(ledger: _Ledger, eligible_counts: NDArray[np.int64], audit_bud
         able = [j for j in order if room(j) > 0]
         if not able:
             return counts
-        level = min(min(room(j) for j in able), int((left + ledger.tol) // float(ledger.fee[able].sum())))
+        level = min(min(room(j) for j in able), _whole((left + ledger.tol) / float(ledger.fee[able].sum())))
         if level >= 1:
             for j in able:
                 left -= ledger.take(j, level)

@@ -27,7 +27,16 @@ class BadInput(click.ClickException):
 
 
 class _Group(click.Group):
-    """A click group that maps library errors to the exit codes of the contract."""
+    """A click group that maps library errors to the exit codes of the contract.
+
+    With ``--json`` on the command line, a failure also prints ``{"error": MESSAGE,
+    "exit_code": N}`` on stdout, so that a script reading stdout always gets JSON; the
+    one line on stderr stays as without ``--json``.
+    """
+
+    def parse_args(self, ctx: click.Context, args: list[str]) -> list[str]:
+        ctx.meta[_JSON_KEY] = "--json" in args[: args.index("--")] if "--" in args else "--json" in args
+        return super().parse_args(ctx, args)
 
     def invoke(self, ctx: click.Context) -> Any:
         from .errors import InputError  # light: no numpy
@@ -40,19 +49,31 @@ class _Group(click.Group):
         except InputError as exc:
             if _debug(ctx):
                 traceback.print_exc()
+            _json_failure(ctx, exc.one_line(), EXIT_BAD_INPUT)
             raise BadInput(exc.one_line()) from None
-        except (click.exceptions.Exit, click.ClickException, click.Abort, KeyboardInterrupt, SystemExit):
+        except click.ClickException as exc:  # usage errors (exit 2) and BadInput raised by a command
+            _json_failure(ctx, exc.format_message(), exc.exit_code)
+            raise
+        except (click.exceptions.Exit, click.Abort, KeyboardInterrupt, SystemExit):
             raise
         except Exception as exc:  # an internal fault: one line, exit 1
             if _debug(ctx):
                 traceback.print_exc()
-            else:
-                click.echo(
-                    f"Internal error: {type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''} "
-                    "(run again with --debug for the traceback; please report it)",
-                    err=True,
-                )
+            line = (f"Internal error: {type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''} "
+                    "(run again with --debug for the traceback; please report it)")
+            if not _debug(ctx):
+                click.echo(line, err=True)
+            _json_failure(ctx, line, EXIT_FAULT)
             ctx.exit(EXIT_FAULT)
+
+
+_JSON_KEY = "routeplan.json_requested"
+
+
+def _json_failure(ctx: click.Context, message: str, exit_code: int) -> None:
+    """Print a failure as JSON on stdout when the command line asked for ``--json``."""
+    if ctx.meta.get(_JSON_KEY):
+        click.echo(json.dumps({"error": message, "exit_code": int(exit_code)}, indent=2))
 
 
 def _one_line_warning(message: Warning | str, category: type[Warning], filename: str, lineno: int,
@@ -109,6 +130,8 @@ def _json_default(value: Any) -> Any:
 
 
 pass_app = click.make_pass_decorator(App)
+#: Seeds go to numpy and torch generators, which take integers in [0, 2**32 - 1] only.
+SEED = click.IntRange(0, 2**32 - 1)
 json_option = click.option("--json", "as_json", is_flag=True, help="Print the result as JSON for scripts.")
 
 
@@ -367,7 +390,7 @@ def answers_import(app, files, strict, as_json):
 
 
 @cli.command()
-@click.option("--seed", type=int, default=0, show_default=True, help="Seeds the validation split and every router.")
+@click.option("--seed", type=SEED, default=0, show_default=True, help="Seeds the validation split and every router.")
 @click.option("--router", "routers", multiple=True,
               help="Fit only this router (repeatable): plugin-ensemble, plugin, asym-mlp, softmax-mlp, "
                    "ova-mlp, plugin-linear, ... "
@@ -500,7 +523,7 @@ def route(app, policy_path, cases_path, out_path, exact, id_column, chunk_size, 
 
 @cli.command()
 @click.option("--rounds", "n_rounds", type=click.IntRange(1, 50), default=6, show_default=True, help="Rounds per strategy.")
-@click.option("--budget", "budget_per_round", type=click.FloatRange(min=0, min_open=True), default=10.0, show_default=True,
+@click.option("--budget", "budget_per_round", type=click.FloatRange(min=0, min_open=True, max=1e12), default=10.0, show_default=True,
               help="Budget per round, in fee units.")
 @click.option("--cases", "n_pool", type=click.IntRange(100, 200_000), default=3000, show_default=True,
               help="Cases in the rehearsal's pool (all with truth); with --profiles at most half of the "
@@ -523,7 +546,7 @@ def route(app, policy_path, cases_path, out_path, exact, id_column, chunk_size, 
                    "previous round could send the case to the expert (its cost within this margin of the "
                    "best option), as 'round plan' does.")
 @click.option("--no-focus", is_flag=True, help="Plan every round without the router's focus.")
-@click.option("--seed", type=int, default=0, show_default=True, help="Seeds the scenario, the rounds and the routers.")
+@click.option("--seed", type=SEED, default=0, show_default=True, help="Seeds the scenario, the rounds and the routers.")
 @click.option("--plot", "plot_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
               help="Write the curves to this image: .png, or another format matplotlib writes (.pdf, .svg...).")
 @click.option("--overwrite", is_flag=True, help="Replace a --plot file already there.")
@@ -605,7 +628,7 @@ def rehearse(app, n_rounds, budget_per_round, n_pool, profiles_path, strategies,
                    "answers (unbiased for the pool).")
 @click.option("--regions", "n_regions", type=click.IntRange(1, 50), default=6, show_default=True,
               help="Number of regions (k-means clusters of the standardised features).")
-@click.option("--seed", type=int, default=0, show_default=True, help="Seed of the region clustering.")
+@click.option("--seed", type=SEED, default=0, show_default=True, help="Seed of the region clustering.")
 @click.option("--csv", "csv_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
               help="Write the table (broken down with --by, if given) to this CSV file.")
 @click.option("--plot", "plot_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
@@ -658,7 +681,7 @@ def round_group() -> None:
               help="value: value of information per fee, the rest of the budget to the least certain "
                    "cells per fee; uncertain: widest accuracy estimate per fee; random: uniform over "
                    "eligible pairs.")
-@click.option("--seed", type=int, default=0, show_default=True, help="The same seed on the same workspace gives the same plan.")
+@click.option("--seed", type=SEED, default=0, show_default=True, help="The same seed on the same workspace gives the same plan.")
 @click.option("--audit-share", type=click.FloatRange(0, 1), default=0.1, show_default=True,
               help="Share of the budget drawn uniformly at random (audit), for unbiased accuracy estimates.")
 @click.option("--max-per-expert", type=int, default=None, help="Most assignments per expert in this round.")

@@ -131,7 +131,8 @@ class Policy:
         Raises
         ------
         InputError
-            If the router cannot be rebuilt or disagrees with the manifest.
+            If the router cannot be rebuilt, disagrees with the manifest, or an array holds
+            NaN or infinity.
         """
         from .features import FeatureSpec
         from .learner import router_from_arrays
@@ -141,6 +142,10 @@ class Policy:
         meta = router_info.get("meta")
         if not isinstance(meta, Mapping):
             raise InputError("the policy's router has no 'meta' description; freeze it again", source=source)
+        broken = next((name for name, value in arrays.items()
+                       if np.asarray(value).dtype.kind == "f" and not np.isfinite(value).all()), None)
+        if broken is not None:  # freeze never writes one; a re-hashed edit could
+            raise InputError(f"the policy's array {broken!r} holds NaN or infinity; freeze it again", source=source)
         try:
             router = router_from_arrays(dict(arrays), meta)
         except Exception as exc:  # a damaged but re-hashed file: any failure is bad input
@@ -243,17 +248,52 @@ def _score(policy: Policy, Z: np.ndarray, ids: Any = None) -> np.ndarray:
     """
     if Z.shape[0] == 0:
         return np.zeros((0, policy.n_classes + len(policy.experts)))
+    bad = _bad_rows(policy, Z)
+    if bad.any():
+        at = int(np.argmax(bad))
+        who = f"case {ids[at]!r}" if ids is not None else f"row {at}"
+        raise InputError(f"{who}: {_row_problem(policy, Z[at])}")
     d = len(policy.spec.names)
     X = policy.spec.transform(Z[:, :d])
     if not policy.proba_columns:
         return np.asarray(policy.router.predict_costs(X), dtype=np.float64)
     P = Z[:, d:]
-    bad = _bad_proba_rows(policy, Z)
-    if bad.any():
-        at = int(np.argmax(bad))
-        who = f"case {ids[at]!r}" if ids is not None else f"row {at}"
-        raise InputError(f"{who}: {_proba_problem(policy, Z[at])}")
     return np.asarray(policy.router.predict_costs(X, class_proba=P / P.sum(axis=1)[:, None]), dtype=np.float64)
+
+
+#: The largest standardised value the routers' float32 inputs hold.
+_FLOAT32_MAX = float(np.finfo(np.float32).max)
+
+
+def _unscalable(policy: Policy, Z: np.ndarray) -> np.ndarray:
+    """(n, d) mask of feature values whose standardised value overflows float32 (the routers'
+    input type): finite numbers so far from the training mean that no router can score them.
+    Column by column against bounds, so that no (n, d) float copy is made."""
+    d = len(policy.spec.names)
+    out = np.zeros((Z.shape[0], d), dtype=bool)
+    with np.errstate(over="ignore", invalid="ignore"):
+        for j, (mean, scale) in enumerate(zip(policy.spec.means, policy.spec.scales)):
+            reach = _FLOAT32_MAX * float(scale)  # inf for a huge scale: no bound
+            column = Z[:, j]
+            out[:, j] = ~((column >= float(mean) - reach) & (column <= float(mean) + reach))
+    return out
+
+
+def _bad_rows(policy: Policy, Z: np.ndarray) -> np.ndarray:
+    """Rows that cannot be scored: a feature too large to standardise, or (two-stage policy)
+    class probabilities that are negative or do not sum to 1."""
+    return _unscalable(policy, Z).any(axis=1) | _bad_proba_rows(policy, Z)
+
+
+def _row_problem(policy: Policy, row: np.ndarray) -> str:
+    """What makes one input row unscorable, for a message."""
+    far = _unscalable(policy, row[None, :])[0]
+    if far.any():
+        j = int(np.argmax(far))
+        limit = _FLOAT32_MAX * float(policy.spec.scales[j])
+        return (f"column {policy.spec.names[j]!r} holds {row[j]:g}, too large to score: this policy takes values "
+                f"within {limit:.3g} of the training mean ({float(policy.spec.means[j]):.6g}); check the value")
+    return _proba_problem(policy, row)
 
 
 def _bad_proba_rows(policy: Policy, Z: np.ndarray) -> np.ndarray:
@@ -347,10 +387,13 @@ def route_frame(frame: pd.DataFrame, manifest: Mapping[str, Any], arrays: Mappin
     Raises
     ------
     InputError
-        If a column is missing, a feature value is not a finite number, or a case's
-        class probabilities are negative or do not sum to 1.
+        If ``id_column`` is one of the policy's input columns, a column is missing, a
+        feature value is not a finite number or too large to standardise (beyond
+        float32's range once standardised), or a case's class probabilities are negative
+        or do not sum to 1.
     """
     policy = policy if policy is not None else Policy.from_parts(manifest, arrays)
+    _check_id_column(policy, id_column)
     names = policy.input_columns
     missing = [c for c in [id_column, *names] if c not in frame.columns]
     if missing:
@@ -367,6 +410,15 @@ def route_frame(frame: pd.DataFrame, manifest: Mapping[str, Any], arrays: Mappin
 
     routes = route_with_prices(steered, policy.prices, policy.n_classes) if len(frame) else np.zeros(0, np.int64)
     return _decisions(policy, ids, costs, routes, outside, index=frame.index)
+
+
+def _check_id_column(policy: Policy, id_column: str) -> None:
+    """Refuse an id column that is one of the columns the policy reads (a feature or a
+    ``proba_<label>`` column): a case's id must be a column of its own."""
+    if id_column in policy.input_columns:
+        raise InputError(f"--id-column {id_column!r} is one of the columns the policy reads as input "
+                         f"({', '.join(repr(c) for c in policy.input_columns)}); name the column that holds "
+                         "each case's id")
 
 
 def _frame_features(frame: pd.DataFrame, names: list[str]) -> np.ndarray:
@@ -508,8 +560,9 @@ def route_file(
     Raises
     ------
     InputError
-        Bad policy, bad cases file, or an output path that would overwrite an input or a
-        workspace's database.
+        Bad policy, ``id_column`` one of the policy's input columns, bad cases file (a
+        feature too large to standardise included), or an output path that is a folder,
+        in a missing folder, or would overwrite an input or a workspace's database.
     """
     from .routing import route_exact, route_with_prices
 
@@ -520,8 +573,9 @@ def route_file(
                   inputs=[Path(policy_path), Path(cases_path)])
     _check_outside_option(outside_range)
     policy = load_policy(policy_path)
+    _check_id_column(policy, id_column)
     ids, X = _read_cases(cases_path, id_column, policy.input_columns)
-    _check_proba_lines(policy, X, cases_path, id_column)
+    _check_rows_scorable(policy, X, cases_path, id_column)
     try:
         costs, outside = _score_chunks(policy, X, ids, int(chunk_size), console, progress)
     except InputError as exc:
@@ -538,10 +592,10 @@ def route_file(
                        float(frame["expected_cost"].mean()) if len(frame) else 0.0, int(outside.sum()), notes)
 
 
-def _check_proba_lines(policy: Policy, X: np.ndarray, path: str | os.PathLike, id_column: str) -> None:
-    """Refuse a file whose first bad class-probability row (two-stage policy) is found, naming
-    its line: the file is read again by the careful reader only then, to number its lines."""
-    bad = _bad_proba_rows(policy, X)
+def _check_rows_scorable(policy: Policy, X: np.ndarray, path: str | os.PathLike, id_column: str) -> None:
+    """Refuse a file at its first row that cannot be scored (:func:`_bad_rows`), naming its
+    line: the file is read again by the careful reader only then, to number its lines."""
+    bad = _bad_rows(policy, X)
     if not bad.any():
         return
     from .files import read_table
@@ -549,7 +603,7 @@ def _check_proba_lines(policy: Policy, X: np.ndarray, path: str | os.PathLike, i
     at = int(np.argmax(bad))
     table = read_table(path, text_columns=(id_column,))
     case_id = str(table.frame[id_column].iloc[at]).strip()
-    raise table.fail(f"case {case_id!r}: {_proba_problem(policy, X[at])}", at)
+    raise table.fail(f"case {case_id!r}: {_row_problem(policy, X[at])}", at)
 
 
 def _batch_notes(policy: Policy, routes: np.ndarray, outside: np.ndarray, outside_range: str) -> list[str]:
@@ -584,13 +638,14 @@ def _read_cases(path: str | os.PathLike, id_column: str, names: list[str]) -> tu
 def _read_cases_checked(path: str | os.PathLike, id_column: str,
                         names: list[str]) -> tuple[np.ndarray, np.ndarray]:
     """The careful reader: every problem raised with its file and line."""
-    from .files import Table, check_rows, load_schema, read_table
+    from .files import Table, check_rows, load_schema, read_table, separator_hint
 
     table = read_table(path, text_columns=(id_column,))
     frame = table.frame
     absent = [c for c in [id_column, *names] if c not in frame.columns]
     if absent:
-        hint = " (use --id-column to name the id column)" if id_column in absent else ""
+        hint = separator_hint(list(frame.columns))
+        hint = hint or (" (use --id-column to name the id column)" if id_column in absent else "")
         raise InputError(f"missing column(s) {', '.join(repr(a) for a in absent)}{hint}; the policy needs "
                          f"{', '.join(repr(n) for n in names)}", source=table.source, line=1)
     keep = [id_column, *names]

@@ -38,9 +38,12 @@ __all__ = [
     "read_table",
     "load_schema",
     "check_rows",
+    "separator_hint",
     "file_sha256",
     "write_csv",
+    "write_csvs",
     "write_atomically",
+    "write_all_or_none",
     "check_out_path",
     "check_outputs",
     "neutralise_formula",
@@ -299,14 +302,18 @@ def _check_csv_shape(text: str, source: str) -> None:
     except csv.Error as exc:
         raise InputError(f"cannot parse the header: {exc}", source=source, line=1) from None
     width = len(header)
+    n_records = 0
     try:
         for row in reader:
             if row and len(row) != width and any(cell.strip() for cell in row):
                 raise InputError(f"{len(row)} fields where the header has {width}", source=source, line=reader.line_num)
             if any("\n" in cell or "\r" in cell for cell in row):
                 raise InputError("a value spans several lines; put one record per line", source=source, line=reader.line_num)
+            n_records += any(cell.strip() for cell in row)
     except csv.Error as exc:
         raise InputError(f"cannot parse the CSV: {exc}", source=source, line=reader.line_num) from None
+    if n_records == 0:  # a header alone, without a line end after it, is not a parse error
+        raise InputError("the file has a header but no records", source=source)
 
 
 def _read_parquet(data: bytes, source: str):
@@ -415,9 +422,10 @@ def check_rows(table: Table, schema: dict, *, numeric_columns: tuple[str, ...] =
     columns = list(frame.columns)
     missing = [name for name in schema.get("required", []) if name not in columns]
     if missing:
+        hint = separator_hint(columns)
         raise InputError(
             f"missing column(s) {', '.join(repr(m) for m in missing)}; the header has "
-            f"{', '.join(repr(c) for c in columns)}",
+            f"{', '.join(repr(c) for c in columns)}{hint}",
             source=table.source,
             line=1,
         )
@@ -594,6 +602,28 @@ def _matches_any(text: pd.Series, rule: dict) -> np.ndarray:
 # --------------------------------------------------------------------------- writing
 
 
+def separator_hint(columns: Sequence[str]) -> str:
+    """A hint for a message about missing columns when the header looks split by another separator.
+
+    A header read as one column whose name holds ``;``, a tab or ``|`` most likely comes from
+    a file saved with that separator (common practice: spreadsheets in many locales save
+    "CSV" with semicolons).
+
+    Parameters
+    ----------
+    columns : sequence of str
+        The header as read.
+
+    Returns
+    -------
+    str
+        `` (the file seems to separate values with ';': save it as CSV with commas)`` or
+        an empty string.
+    """
+    separator = next((sep for sep in (";", "\t", "|") if len(columns) == 1 and sep in columns[0]), None)
+    return f" (the file seems to separate values with {separator!r}: save it as CSV with commas)" if separator else ""
+
+
 def neutralise_formula(value: Any) -> Any:
     """Prefix a text cell that a spreadsheet would run as a formula with a quote.
 
@@ -630,13 +660,31 @@ def write_csv(frame: pd.DataFrame, path: str | Path, *, neutralise: bool = True)
     Path
     """
     path = Path(path)
+    write_atomically(path, _csv_writer(frame, neutralise))
+    return path
+
+
+def write_csvs(frames: Mapping[Path, pd.DataFrame], *, neutralise: bool = True) -> None:
+    """Write several CSV files all or none (:func:`write_all_or_none`).
+
+    Parameters
+    ----------
+    frames : mapping of Path to pandas.DataFrame
+        Destination and content of each file.
+    neutralise : bool, default=True
+        As in :func:`write_csv`.
+    """
+    write_all_or_none({Path(path): _csv_writer(frame, neutralise) for path, frame in frames.items()})
+
+
+def _csv_writer(frame: pd.DataFrame, neutralise: bool) -> Callable[[str], Any]:
+    """A function writing ``frame`` as UTF-8 CSV (formula-looking text neutralised) to a path."""
     out = frame.copy()
     if neutralise:
         for name in out.columns:
             if out[name].dtype == object or pd.api.types.is_string_dtype(out[name]):
                 out[name] = out[name].map(neutralise_formula)
-    write_atomically(path, lambda tmp: out.to_csv(tmp, index=False, lineterminator="\n"))
-    return path
+    return lambda tmp: out.to_csv(tmp, index=False, lineterminator="\n")
 
 
 def write_atomically(path: str | Path, write: Callable[[str], Any]) -> None:
@@ -654,23 +702,45 @@ def write_atomically(path: str | Path, write: Callable[[str], Any]) -> None:
     write : callable
         Writes the whole content to the path it is given.
     """
-    path = Path(path)
-    folder = path.parent if str(path.parent) else Path(".")
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=folder)
-    os.close(fd)
+    write_all_or_none({Path(path): write})
+
+
+def write_all_or_none(writers: Mapping[Path, Callable[[str], Any]]) -> None:
+    """Write several files all or none: each to a temporary file beside it, then the renames.
+
+    Every file is written in full and flushed to disk (fsync) before any destination is
+    touched; if one write fails, the temporary files are removed and every destination is
+    left as it was. Only a failing rename, after every file was written, could leave some
+    files new and others old (common practice for atomic replacement on POSIX). The files
+    are readable by all (0644), as the files routeplan writes are meant to be shared.
+
+    Parameters
+    ----------
+    writers : mapping of Path to callable
+        Destination of each file and the function that writes its whole content to the
+        path it is given.
+    """
+    staged: list[tuple[str, Path]] = []
     try:
-        write(tmp)
-        fd = os.open(tmp, os.O_RDONLY)
-        try:
-            os.fsync(fd)
-        finally:
+        for path, write in writers.items():
+            path = Path(path)
+            folder = path.parent if str(path.parent) else Path(".")
+            fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=folder)
             os.close(fd)
-        os.chmod(tmp, 0o644)  # mkstemp makes it private
-        os.replace(tmp, path)
-    except BaseException:
-        with contextlib.suppress(OSError):
-            os.unlink(tmp)
-        raise
+            staged.append((tmp, path))
+            write(tmp)
+            fd = os.open(tmp, os.O_RDONLY)
+            try:
+                os.fsync(fd)
+            finally:
+                os.close(fd)
+            os.chmod(tmp, 0o644)  # mkstemp makes it private
+        for tmp, path in staged:
+            os.replace(tmp, path)
+    finally:
+        for tmp, _ in staged:
+            with contextlib.suppress(OSError):
+                os.unlink(tmp)
 
 
 def check_new_files(paths: list[Path | None], overwrite: bool) -> None:
@@ -688,7 +758,7 @@ def check_new_files(paths: list[Path | None], overwrite: bool) -> None:
 
 
 def check_out_path(out: Path, inputs: list[Path]) -> None:
-    """Refuse an output that would overwrite an input or land in a missing folder.
+    """Refuse an output that would overwrite an input, land in a missing folder, or is a folder.
 
     Raises
     ------
@@ -701,6 +771,8 @@ def check_out_path(out: Path, inputs: list[Path]) -> None:
     folder = out.parent if str(out.parent) else Path(".")
     if not folder.is_dir():
         raise InputError(f"the folder {folder} does not exist", source=str(out))
+    if out.is_dir():
+        raise InputError("is a folder; give the name of a file to write", source=str(out))
 
 
 def check_outputs(

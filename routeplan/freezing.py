@@ -40,7 +40,7 @@ import pandas as pd
 
 from .card import policy_card
 from .errors import InputError
-from .files import check_outputs, write_atomically
+from .files import check_outputs, write_all_or_none
 
 __all__ = ["CONFIDENCE", "FreezeResult", "freeze_workspace"]
 
@@ -145,17 +145,20 @@ def freeze_workspace(ws: Any, out: str | os.PathLike, *, card: str | os.PathLike
     InputError
         No fitted model, a two-stage router whose held-out cases lack imported
         probabilities, no held-out cases, feature columns changed
-        since the fit, an output that is the workspace's database (or one of its sidecar
-        files), an output folder that does not exist, or (without ``overwrite``) an output
-        file that does.
+        since the fit, a model id that is not a stored one, an output that is the
+        workspace's database (or one of its sidecar files), a folder, or in a folder that
+        does not exist, or (without ``overwrite``) an output file that does. The policy
+        file and the card are written all or none, and recorded in the workspace only if
+        both were written.
     """
     from .fitting import load_router
-    from .policy import write_policy
+    from .policy import render_policy
     from .pool import load_pool
 
     out = Path(out)
     card_path = _card_path(out, card)
     check_outputs({"--out": out, "--card": card_path}, overwrite=overwrite, workspace=ws.folder)
+    _check_model_id(model_id)
     model_id, router, params, fit_metrics = load_router(ws, model_id)
     pool = load_pool(ws)
     frozen = _freeze_parts(router, params, fit_metrics, pool, model_id, confidence)
@@ -167,18 +170,32 @@ def freeze_workspace(ws: Any, out: str | os.PathLike, *, card: str | os.PathLike
 
         frozen.manifest["router"]["class_proba_columns"] = score_columns(params["labels"])
         frozen.notes.extend(_scores_changed_since(ws, model_id))
-    with ws.transaction():
-        sha = write_policy(out, frozen.manifest, arrays)
-        from .policy import read_policy
-
-        manifest, _ = read_policy(out)  # what route will see (created time filled in)
+    policy_text, sha = render_policy(frozen.manifest, arrays)
+    manifest = json.loads(policy_text)["manifest"]  # what route will see (created time filled in)
+    card_text = policy_card(manifest, sha256=sha, path=out.name)
+    with ws.transaction():  # the files last: if writing them fails, the records roll back
         policy_id = ws.add_policy(str(out.resolve()), sha, model_id, manifest)
-        text = policy_card(manifest, sha256=sha, path=out.name)
-        write_atomically(card_path, lambda tmp: Path(tmp).write_text(text, encoding="utf-8"))
         ws.log("freeze", {"policy_id": policy_id, "model_id": model_id, "path": str(out.resolve()),
                           "card": str(card_path.resolve()), "sha256": sha})
+        write_all_or_none({out: lambda tmp: Path(tmp).write_text(policy_text, encoding="utf-8"),
+                           card_path: lambda tmp: Path(tmp).write_text(card_text, encoding="utf-8")})
     return FreezeResult(str(out), str(card_path), sha, policy_id, model_id, str(params["router"]),
                         manifest["experts"], manifest["metrics"], frozen.notes)
+
+
+#: Largest model id a workspace can hold (SQLite's INTEGER is a signed 64-bit number).
+_MAX_MODEL_ID = 2**63 - 1
+
+
+def _check_model_id(model_id: int | None) -> None:
+    """Refuse a ``--model`` id beyond what SQLite can hold, before asking the database (which
+    would overflow); ids it can hold but does not are named by :func:`routeplan.fitting.load_router`."""
+    if model_id is None:
+        return
+    whole = isinstance(model_id, (int, np.integer)) and not isinstance(model_id, bool)
+    if not whole or not -_MAX_MODEL_ID <= model_id <= _MAX_MODEL_ID:
+        raise InputError(f"no model {model_id!r} in this workspace: a model id is a whole number from 1 to "
+                         f"{_MAX_MODEL_ID} (leave --model out to freeze the chosen model)")
 
 
 def _scores_changed_since(ws: Any, model_id: int) -> list[str]:

@@ -117,9 +117,10 @@ def _check_labels_in_set(table: Table, column: str, labels: Sequence[str]) -> No
     bad = (cells.notna() & ~cells.isin(list(labels))).to_numpy()
     if bad.any():
         at = int(np.argmax(bad))
-        raise table.fail(
-            f"{column} {cells.iloc[at]!r} is not in the label set ({', '.join(labels)})", at
-        )
+        value = cells.iloc[at]
+        alike = [label for label in labels if label.casefold() == str(value).strip().casefold()]
+        hint = f"; labels are case-sensitive: did you mean {alike[0]!r}?" if len(alike) == 1 else ""
+        raise table.fail(f"{column} {value!r} is not in the label set ({', '.join(labels)}){hint}", at)
 
 
 def _check_known(table: Table, column: str, known: set[str], what: str, hint: str) -> None:

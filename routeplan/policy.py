@@ -46,6 +46,7 @@ __all__ = [
     "decode_arrays",
     "encode_arrays",
     "read_policy",
+    "render_policy",
     "training_fingerprint",
     "write_policy",
 ]
@@ -95,15 +96,44 @@ def write_policy(path: str | os.PathLike, manifest: Mapping[str, Any],
     ValueError
         If the manifest or an array is not valid (a programming error, not user input).
     """
+    text, digest = render_policy(manifest, arrays)
+    write_atomically(Path(path), lambda tmp: Path(tmp).write_text(text, encoding="utf-8"))
+    return digest
+
+
+def render_policy(manifest: Mapping[str, Any], arrays: Mapping[str, np.ndarray]) -> tuple[str, str]:
+    """The text of a policy file and its sha256, without writing anything.
+
+    For a caller that writes the policy together with other files (all or none), as
+    ``routeplan freeze`` does with the policy card. :func:`write_policy` is this plus an
+    atomic write.
+
+    Parameters
+    ----------
+    manifest : mapping
+        As for :func:`write_policy`.
+    arrays : mapping of str to ndarray
+        As for :func:`write_policy`.
+
+    Returns
+    -------
+    text : str
+        The whole JSON document, ending with a newline.
+    sha256 : str
+        The hex sha256 stored in it.
+
+    Raises
+    ------
+    ValueError
+        If the manifest or an array is not valid (a programming error, not user input).
+    """
     body = {"manifest": _complete_manifest(manifest), "arrays": encode_arrays(arrays)}
     problem = _manifest_problem(body["manifest"], body["arrays"])
     if problem is not None:
         raise ValueError(f"cannot write policy: {problem}")
     digest = content_digest(body["manifest"], body["arrays"])
     document = {"manifest": body["manifest"], "arrays": body["arrays"], "sha256": digest}
-    text = json.dumps(document, indent=1, allow_nan=False) + "\n"
-    write_atomically(Path(path), lambda tmp: Path(tmp).write_text(text, encoding="utf-8"))
-    return digest
+    return json.dumps(document, indent=1, allow_nan=False) + "\n", digest
 
 
 def read_policy(path: str | os.PathLike) -> tuple[dict, dict[str, np.ndarray]]:
@@ -244,9 +274,13 @@ def training_fingerprint(case_ids: Any, truth: Any, answers: Any = ()) -> str:
 
 
 def _load_document(path: Path, source: str) -> dict:
-    """Read the file and check the top-level shape of the document."""
+    """Read the file and check the top-level shape of the document.
+
+    A leading byte-order mark, which some editors add on saving, is ignored (RFC 8259,
+    section 8.1, allows a parser to); the hash covers the content, not the bytes.
+    """
     try:
-        text = path.read_text(encoding="utf-8")
+        text = path.read_text(encoding="utf-8-sig")
     except FileNotFoundError:
         raise InputError("no such policy file", source=source) from None
     except (OSError, UnicodeDecodeError) as exc:
@@ -374,6 +408,9 @@ def _consistency_problem(manifest: dict, encoded: Mapping[str, Any]) -> str | No
     feats = manifest["features"]
     if not len(feats["names"]) == len(feats["means"]) == len(feats["scales"]):
         return "features: names, means and scales must have the same length"
+    for bound in ("lows", "highs"):
+        if bound in feats and len(feats[bound]) != len(feats["names"]):
+            return f"features: {bound} must have one value per feature name"
     names = [e["name"].lower() for e in manifest["experts"]]
     if len(set(names)) != len(names):
         return "experts: names must be unique (ignoring case)"

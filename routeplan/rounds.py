@@ -59,7 +59,7 @@ from .acquisition import (
     select_assignments,
 )
 from .errors import InputError, NotFitted
-from .files import write_csv
+from .files import write_csvs
 from .workspace import Workspace, refuse_workspace_files
 
 __all__ = ["RoundPlan", "SheetExport", "RoundClosed", "plan_round", "export_round", "close_round", "sheet_path"]
@@ -200,10 +200,17 @@ class RoundClosed:
 _MAX_DUE_DAYS = 3650
 
 
-def _check_plan_options(budget, strategy, audit_share, max_per_expert, due_days, n_regions) -> None:
+#: Largest budget a round accepts, as a multiple of the larger of ``--error-cost`` and the dearest fee:
+#: far more than any round can spend, and small enough that budget / fee stays a finite number.
+_MAX_BUDGET_FACTOR = 1e12
+
+
+def _check_plan_options(budget, strategy, audit_share, max_per_expert, due_days, n_regions, seed) -> None:
     """Refuse option values that make no sense, with a hint."""
     if not (np.isfinite(budget) and budget > 0):
         raise InputError(f"--budget must be a positive number, not {budget!r}")
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or not 0 <= seed <= 2**32 - 1:
+        raise InputError(f"--seed must be an integer in [0, 2**32 - 1], not {seed!r}")
     if strategy not in STRATEGIES:
         raise InputError(f"--strategy must be one of {', '.join(STRATEGIES)}, not {strategy!r}")
     if not (0.0 <= audit_share <= 1.0):
@@ -271,7 +278,7 @@ def plan_round(
         On bad options, or when there is nothing to plan (no cases, experts, eligible pairs,
         or a budget below every fee).
     """
-    _check_plan_options(budget, strategy, audit_share, max_per_expert, due_days, n_regions)
+    _check_plan_options(budget, strategy, audit_share, max_per_expert, due_days, n_regions, seed)
     if focus_margin is not None and not (np.isfinite(focus_margin) and focus_margin >= 0):
         raise InputError(f"--focus-margin must be a number >= 0, got {focus_margin!r}")
     pool, case_ids, experts, X = _pool(ws, include_unverified, int(n_regions), int(seed))
@@ -406,6 +413,11 @@ def _check_something_fits(pool: PlannerInput, experts: list[dict], budget: float
         hint = "import more cases" if include_unverified else "import more cases or truth, or pass --include-unverified"
         raise InputError("no eligible (case, expert) pair: every candidate case was already asked of every "
                          f"expert ({hint})")
+    most = _MAX_BUDGET_FACTOR * max(float(pool.error_cost), float(pool.fees.max()))
+    if budget > most:
+        raise InputError(f"--budget {budget:g} is beyond any round: give at most {most:g} (10^12 times the "
+                         "larger of the error cost and the dearest fee); a round stops where caps, capacities "
+                         "or eligible cases run out")
     cheapest = int(np.flatnonzero(usable)[np.argmin(pool.fees[usable])])
     if budget < pool.fees[cheapest]:
         done = [e["name"] for j, e in enumerate(experts) if open_experts[j] and not usable[j]]
@@ -511,10 +523,13 @@ def sheet_path(folder: str | Path, expert: str) -> Path:
         or any(sep in expert for sep in ("/", "\\", ":"))
         or any(ord(ch) < 32 or ord(ch) == 127 for ch in expert)
     )
-    target = (root / f"{expert}.csv").resolve() if not bad else None
-    if bad or target is None or target.parent != root or target.name != f"{expert}.csv":
+    if bad:
         raise InputError(f"expert name {expert!r} is not safe as a file name; the sheet would leave {root} "
                          "(rename the expert in the workspace)")
+    target = (root / f"{expert}.csv").resolve()
+    if target.parent != root or target.name != f"{expert}.csv":
+        raise InputError(f"{root / f'{expert}.csv'} is a link to {target}; a sheet is written directly in the "
+                         "--out folder only: remove the link or choose another --out")
     return target
 
 
@@ -572,7 +587,7 @@ def export_round(
     refuse_workspace_files({f"--out (the sheet of {e})": p for e, p in targets.items()}, ws.folder)
     _check_targets(targets, overwrite)
     shown = _display_columns(ws, rows["case_id"].unique().tolist(), columns)
-    sheets = []
+    sheets, frames = [], {}
     for expert in experts:
         part = rows[rows["expert"] == expert]
         sheet = pd.DataFrame({"case_id": part["case_id"].to_numpy()})
@@ -580,9 +595,10 @@ def export_round(
             sheet[name] = [shown[c][name] for c in part["case_id"]]
         sheet["expert"] = expert
         sheet["answer"] = part["answer"].to_numpy()
-        write_csv(sheet, targets[expert])
+        frames[targets[expert]] = sheet
         sheets.append({"expert": expert, "path": str(targets[expert]), "rows": len(sheet),
                        "answered": int(part["answer"].notna().sum())})
+    write_csvs(frames)  # all sheets or none
     return SheetExport(round=int(round_id), folder=str(folder.resolve()), sheets=sheets)
 
 
@@ -627,6 +643,9 @@ def _check_targets(targets: dict[str, Path], overwrite: bool) -> None:
         if key in seen:
             raise InputError(f"experts {seen[key]!r} and {expert!r} would share the sheet {path.name}")
         seen[key] = expert
+    for path in targets.values():
+        if path.exists() and not path.is_file():
+            raise InputError(f"{path} is a folder or other non-file; move it away, since a sheet cannot replace it")
     if not overwrite:
         there = [p for p in targets.values() if p.exists()]
         if there:

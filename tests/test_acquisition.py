@@ -189,6 +189,17 @@ def test_budget_caps_capacities_never_exceeded(strategy, seed):
     _check_constraints(pool, sel, budget, cap)
 
 
+@pytest.mark.parametrize("strategy", ["value", "uncertain", "random"])
+def test_a_budget_beyond_every_pair_buys_every_pair_it_may(strategy):
+    # a budget far above what the pool can take (1e308, so that budget / fee overflows to inf)
+    # buys every eligible pair the capacities allow, and no more (common practice: a budget is
+    # a ceiling, not a target)
+    pool = make_pool(fees=(0.0, 0.03, 0.1), capacities=(1.0, 1.0, 1.0))
+    sel = select_assignments(pool, budget=1e308, strategy=strategy, random_state=0)
+    _check_constraints(pool, sel, 1e308, None)
+    assert sel.case.size == int(pool.eligible.sum())
+
+
 def test_zero_capacity_expert_gets_nothing():
     pool = make_pool(capacities=(1.0, 0.0, 0.5))
     sel = select_assignments(pool, budget=10, random_state=0)

@@ -542,3 +542,195 @@ def test_card_basis_never_shows_a_present_share_as_zero():
         ["0%", "25%", "100%", "0.040%", "99.960%", "0.30%"]
     assert _basis_summary({"realised": 0.9996, "imputed": 0.0004, "expected": 0.0}).startswith(
         "mixed: 99.960% realised, 0.040% imputed")
+
+
+# --------------------------------------------------------------------------- hostile inputs
+
+
+def _db_dump(ws: Path) -> str:
+    with sqlite3.connect(ws / DB_NAME) as conn:
+        return "\n".join(conn.iterdump())  # sqlite3's own dump as the reference state
+
+
+def _json_failure(result, *fragments: str) -> dict:
+    """With --json a failure still prints {"error", "exit_code"} on stdout (README, Command reference)."""
+    one_line_error(result, *fragments)
+    data = json.loads(result.stdout)  # the json module as the reference parser
+    assert data["exit_code"] == 2 and all(f in data["error"] for f in fragments)
+    return data
+
+
+@pytest.mark.parametrize("fmt", ["csv", "parquet"])
+@pytest.mark.parametrize("value", [1e300, -1e300])
+def test_a_feature_too_large_to_standardise_is_refused_with_its_line(built, tmp_path, fmt, value):
+    # The routers take float32 inputs: a finite float64 whose standardised value is beyond
+    # numpy's finfo(float32).max (IEEE 754 single precision) cannot be scored. Common
+    # practice, as for NaN and infinity: refuse the file naming the line, never a traceback.
+    frame = pd.read_csv(built["new"], dtype={"case_id": str})
+    frame.loc[3, "x2"] = value
+    bad, out = tmp_path / f"bad.{fmt}", tmp_path / "out.csv"
+    frame.to_csv(bad, index=False) if fmt == "csv" else frame.to_parquet(bad)
+    where = "line 5" if fmt == "csv" else "row 4"
+    _json_failure(invoke(tmp_path, "route", "--policy", built["policy"], bad, "--out", out, "--json"),
+                  str(bad), where, "'x2'", "too large to score")
+    assert not out.exists()
+    # the same values one step inside float32's range still route (saturated, marked outside the range)
+    manifest = manifest_of(built["policy"])
+    j = manifest["features"]["names"].index("x2")
+    frame.loc[3, "x2"] = manifest["features"]["means"][j] + np.sign(value) * 1e37 * manifest["features"]["scales"][j]
+    frame.to_csv(tmp_path / "near.csv", index=False)
+    ok(invoke(tmp_path, "route", "--policy", built["policy"], tmp_path / "near.csv", "--out", out))
+    assert read_decisions(out)[3]["outside_range"] == 1
+
+
+def test_route_frame_refuses_a_feature_too_large_to_standardise(built):
+    # the same rule for the DataFrame function a Dask user maps over partitions (see above)
+    from routeplan.deploy import route_frame
+    from routeplan.errors import InputError
+    from routeplan.policy import read_policy
+
+    manifest, arrays = read_policy(built["policy"])
+    frame = pd.read_csv(built["new"], dtype={"case_id": str})
+    frame.loc[7, "x0"] = 1e300
+    with pytest.raises(InputError, match=rf"case '{frame.loc[7, 'case_id']}'.*'x0'.*too large to score"):
+        route_frame(frame, manifest, arrays)
+
+
+@pytest.mark.parametrize("id_column", ["x1", "x3"])
+def test_an_id_column_that_is_a_feature_is_refused(built, tmp_path, id_column):
+    # common practice: a case's id is a column of its own, not one of the model's inputs
+    out = tmp_path / "out.csv"
+    _json_failure(invoke(tmp_path, "route", "--policy", built["policy"], built["new"], "--out", out,
+                         "--id-column", id_column, "--json"), f"--id-column '{id_column}'", "policy reads")
+    assert not out.exists()
+
+
+def _lows_not_numbers(document: dict) -> None:
+    document["manifest"]["features"]["lows"][0] = "x"
+
+
+def _lows_too_short(document: dict) -> None:
+    document["manifest"]["features"]["highs"] = document["manifest"]["features"]["highs"][:1]
+
+
+def _nan_weight(document: dict) -> None:
+    import base64
+
+    entry = max(document["arrays"].values(), key=lambda e: len(e["data"]))
+    raw = bytearray(base64.b64decode(entry["data"]))
+    nan = np.array([np.nan], dtype={"float32": "<f4", "float64": "<f8"}[entry["dtype"]]).tobytes()
+    raw[: len(nan)] = nan
+    entry["data"] = base64.b64encode(bytes(raw)).decode("ascii")
+
+
+@pytest.mark.parametrize("edit, fragment", [
+    (_lows_not_numbers, "features/lows/0"),
+    (_lows_too_short, "highs must have one value per feature"),
+    (_nan_weight, "holds NaN or infinity"),
+])
+def test_rehashed_policy_edits_are_refused(built, tmp_path, edit, fragment):
+    # An edit whose sha256 was recomputed (as the policy-manifest schema's description says,
+    # with hashlib) passes the hash check; the schema and the arrays must still catch it,
+    # with exit code 2 and one line, never a traceback (DESIGN.md contract).
+    document = json.loads(built["policy"].read_text(encoding="utf-8"))
+    edit(document)
+    bad, out = tmp_path / "edited.json", tmp_path / "out.csv"
+    bad.write_text(json.dumps(_rehash(document)), encoding="utf-8")
+    _json_failure(invoke(tmp_path, "route", "--policy", bad, built["new"], "--out", out, "--json"),
+                  str(bad), fragment)
+    assert not out.exists()
+
+
+@pytest.mark.parametrize("eol", ["", "\n", "\r\n"])
+def test_a_header_only_cases_file_is_refused_as_such(built, tmp_path, eol):
+    # RFC 4180, section 2: the last record may or may not end with a line break; a header
+    # alone is the same file either way, and says so.
+    header = ",".join(pd.read_csv(built["new"], nrows=0).columns)
+    bad, out = tmp_path / "header.csv", tmp_path / "out.csv"
+    bad.write_bytes((header + eol).encode("utf-8"))
+    one_line_error(invoke(tmp_path, "route", "--policy", built["policy"], bad, "--out", out),
+                   str(bad), "a header but no records")
+    assert not out.exists()
+
+
+def test_ids_with_separators_quotes_and_formula_leads_survive_in_csv(built, tmp_path):
+    # RFC 4180: a field with a comma or a double quote is quoted, and its quotes doubled;
+    # Python's csv module reads it back. OWASP guidance on CSV injection (common practice):
+    # a cell beginning with =, +, -, @, a tab or a carriage return gets a leading ', as
+    # 'round export' does (routeplan.files.neutralise_formula).
+    from routeplan.files import undo_neutralise
+
+    ids = ["a,b", 'say "hi"', "=1+1", "+cmd", "-2", "@SUM(A1)", "=HYPERLINK(\"x\",\"y\")", "T,\"=\""]
+    frame = pd.read_csv(built["new"], dtype={"case_id": str})
+    frame.loc[: len(ids) - 1, "case_id"] = ids
+    frame.to_parquet(tmp_path / "new.parquet")
+    ok(invoke(tmp_path, "route", "--policy", built["policy"], tmp_path / "new.parquet", "--out", tmp_path / "d.csv"))
+    written = [row["case_id"] for row in read_decisions(tmp_path / "d.csv")][: len(ids)]
+    assert written == [("'" + i if i[0] in "=+-@" else i) for i in ids]
+    assert [undo_neutralise(w) for w in written] == ids
+
+
+def test_freeze_refuses_a_folder_where_the_card_goes(built, tmp_path):
+    # common practice: a command checks every output before it writes any (here the card's
+    # default name, beside the policy, is a folder)
+    ws = shutil.copytree(built["ws"], tmp_path / "ws")
+    (tmp_path / "p.md").mkdir()
+    before = _db_dump(ws)
+    _json_failure(invoke(ws, "freeze", "--out", tmp_path / "p.json", "--overwrite", "--json"),
+                  str(tmp_path / "p.md"), "is a folder")
+    assert not (tmp_path / "p.json").exists() and _db_dump(ws) == before
+
+
+def test_freeze_writes_the_policy_and_the_card_all_or_none(built, tmp_path, monkeypatch):
+    # common practice (atomic replacement on POSIX): a failure while writing the card leaves
+    # the old policy, the old card and the workspace as they were, and no temporary file
+    ws = shutil.copytree(built["ws"], tmp_path / "ws")
+    policy, card = tmp_path / "p.json", tmp_path / "p.md"
+    policy.write_text("old policy\n")
+    card.write_text("old card\n")
+    before = _db_dump(ws)
+    real_write_text = Path.write_text
+
+    def failing_write_text(self, data, *args, **kwargs):
+        if self.name.startswith(".p.md."):
+            raise OSError(28, "No space left on device")
+        return real_write_text(self, data, *args, **kwargs)
+
+    monkeypatch.setattr(Path, "write_text", failing_write_text)
+    result = invoke(ws, "freeze", "--out", policy, "--overwrite")
+    monkeypatch.undo()
+    assert result.exit_code == 1 and "No space left" in result.stderr
+    assert policy.read_text() == "old policy\n" and card.read_text() == "old card\n"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["p.json", "p.md", "ws"]
+    assert _db_dump(ws) == before
+
+
+def test_freeze_refuses_a_model_id_beyond_what_the_workspace_can_hold(built, tmp_path):
+    # SQLite's INTEGER is a signed 64-bit number (sqlite.org, "Datatypes In SQLite"): a larger
+    # id is no stored model, which is bad input (exit 2), not an overflow
+    ws = shutil.copytree(built["ws"], tmp_path / "ws")
+    _json_failure(invoke(ws, "freeze", "--out", tmp_path / "p.json", "--model", 2**63, "--json"),
+                  f"no model {2**63}")
+    assert not (tmp_path / "p.json").exists()
+
+
+@pytest.mark.parametrize("separator", [";", "\t"])
+def test_a_cases_file_with_another_separator_is_refused_saying_so(built, tmp_path, separator):
+    # common practice: spreadsheets in locales with a decimal comma save "CSV" with
+    # semicolons; the message says so instead of only listing every column as missing
+    bad, out = tmp_path / "semi.csv", tmp_path / "out.csv"
+    pd.read_csv(built["new"], dtype={"case_id": str}).to_csv(bad, index=False, sep=separator)
+    one_line_error(invoke(tmp_path, "route", "--policy", built["policy"], bad, "--out", out),
+                   str(bad), "line 1", f"separate values with {separator!r}")
+    assert not out.exists()
+
+
+def test_a_policy_saved_again_with_a_byte_order_mark_or_other_layout_still_routes(built, tmp_path):
+    # RFC 8259, section 8.1: a JSON parser may ignore a leading byte-order mark, which some
+    # editors add on saving; the sha256 covers the content, not the layout (routeplan.policy)
+    document = json.loads(built["policy"].read_text(encoding="utf-8"))
+    resaved = tmp_path / "resaved.json"
+    resaved.write_bytes(b"\xef\xbb\xbf" + json.dumps(document, indent=4).replace("\n", "\r\n").encode("utf-8"))
+    ok(invoke(tmp_path, "route", "--policy", built["policy"], built["new"], "--out", tmp_path / "a.csv"))
+    ok(invoke(tmp_path, "route", "--policy", resaved, built["new"], "--out", tmp_path / "b.csv"))
+    assert (tmp_path / "a.csv").read_bytes() == (tmp_path / "b.csv").read_bytes()

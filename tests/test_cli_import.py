@@ -228,6 +228,40 @@ def test_answers_conflicting_across_two_files_of_one_command(stocked_ws, write_f
     assert db_dump(stocked_ws) == before
 
 
+
+def test_a_label_in_another_letter_case_is_refused_naming_the_label_meant(stocked_ws, write_file):
+    # Spreadsheets capitalise words as they are typed; labels stay exact (a label set may hold
+    # 'A' and 'a'), but the line says which label was meant (common practice: say what to do).
+    path = write_file("answers.csv", "case_id,expert,answer\nc2,alice,reject\nc4,bob, Refer \n")
+    before = db_dump(stocked_ws)
+    assert_one_line_error(run_cli(stocked_ws, "answers", "import", path), "line 3", "'Refer'",
+                          "labels are case-sensitive: did you mean 'refer'?")
+    assert db_dump(stocked_ws) == before
+
+
+@pytest.mark.parametrize("separator", [";", "\t"])
+def test_a_sheet_saved_with_another_separator_is_refused_naming_it(stocked_ws, write_file, separator):
+    # Spreadsheets in many locales save "CSV" with semicolons (common practice: name the cause)
+    text = "case_id,expert,answer\nc2,alice,reject\n".replace(",", separator)
+    path = write_file("answers.csv", text)
+    before = db_dump(stocked_ws)
+    assert_one_line_error(run_cli(stocked_ws, "answers", "import", path), "line 1", "missing column(s)",
+                          f"separate values with {separator!r}", "save it as CSV with commas")
+    assert db_dump(stocked_ws) == before
+
+
+def test_a_sheet_edited_in_a_spreadsheet_imports(stocked_ws, write_file):
+    # Byte order mark, CRLF line ends, reordered columns, padded cells, a repeated row and
+    # trailing empty rows, as spreadsheets write them (common practice); a regression guard.
+    text = ("\ufeffanswer,case_id,expert\r\n reject ,c2,alice\r\naccept, c4 ,bob\r\n"
+            "reject,c2,alice\r\n,,\r\n,,\r\n")
+    result = run_cli(stocked_ws, "answers", "import", write_file("answers.csv", text), "--json")
+    assert result.exit_code == 0, result.stderr
+    info = json.loads(result.stdout)[0]
+    assert (info["added"], info["notes"]["repeated_rows"], info["notes"]["left_blank"]) == (2, 1, 2)
+    assert sorted(query(stocked_ws, "SELECT case_id, expert, answer FROM answers WHERE case_id IN ('c2', 'c4')")) == [
+        ("c2", "alice", "reject"), ("c4", "bob", "accept")]
+
 REIMPORTS = [
     ("cases", "empty", "case_id,f1,f2\nn1,1,2\nn2,3,4\n"),
     ("truth", "stocked", "case_id,truth\nc2,accept\n"),

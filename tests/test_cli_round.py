@@ -208,6 +208,8 @@ def test_dry_run_stores_nothing(ws):
         (["--budget", "5", "--due-days", "0"], "--due-days"),
         (["--budget", "5", "--due-days", "1e12"], "--due-days must be a number of days in (0, 3650]"),
         (["--budget", "5", "--max-per-expert", "0"], "--max-per-expert must be at least 1"),
+        # a finite budget so large that budget / fee overflows once was an internal error (exit 1)
+        (["--budget", "1e308"], "is beyond any round"),
     ],
 )
 def test_plan_bad_input_leaves_workspace_unchanged(ws, args, fragment):
@@ -362,7 +364,7 @@ def test_export_refuses_sheet_linked_outside(ws, tmp_path):
     victim = tmp_path / "victim.csv"
     victim.write_text("keep me\n")
     (out / "ann.csv").symlink_to(victim)
-    one_line_error(invoke(ws, "round", "export", info["round"], "--out", out, "--overwrite"), "not safe")
+    one_line_error(invoke(ws, "round", "export", info["round"], "--out", out, "--overwrite"), "is a link to", "remove the link")
     assert victim.read_text() == "keep me\n"
 
 
@@ -599,3 +601,107 @@ def test_plan_after_fit_is_steered_by_the_kept_router(ws, tmp_path):
     ok(invoke(ws, "experts", "add", "dee", "--fee", "0.1"))
     later = plan(ws, "--budget", 8, "--seed", 4, "--dry-run")
     assert later["focus"] is None and any("without focus" in n for n in later["notes"])
+
+
+# --------------------------------------------------------------------------- hostile use
+
+
+@pytest.mark.parametrize("command", [["round", "plan", "--budget", "5"], ["competence"], ["fit"], ["rehearse"]])
+@pytest.mark.parametrize("seed", ["-1", str(2**32)])
+def test_seed_outside_the_generators_range_is_a_usage_error(ws, command, seed):
+    # numpy's SeedSequence takes non-negative integers only, and sklearn's k-means (through
+    # np.random.RandomState) at most 2**32 - 1 (numpy and scikit-learn documentation); a seed
+    # outside that was an internal error (exit 1) and is now refused at the option (exit 2).
+    before = dump(ws)
+    result = invoke(ws, *command, "--seed", seed)
+    assert result.exit_code == 2, (result.exit_code, result.stderr)
+    assert "Invalid value for '--seed'" in result.stderr and "Internal error" not in result.stderr
+    assert dump(ws) == before
+
+
+def test_plan_round_library_refuses_a_negative_seed(ws):
+    # library first (DEVELOPERS.md house rules): the library says so too, not only the CLI
+    from routeplan.errors import InputError
+    from routeplan.rounds import plan_round
+    from routeplan.workspace import Workspace
+
+    with Workspace.open(ws) as opened, pytest.raises(InputError, match="--seed"):
+        plan_round(opened, 5.0, seed=-1)
+
+
+def test_export_refuses_a_folder_where_a_sheet_goes_and_writes_no_sheet(ws, tmp_path):
+    # A folder named like a sheet cannot be replaced by it: refused before any sheet is written
+    # (was: an internal error after the first sheets had been written; common practice: check
+    # every output before writing any).
+    info = plan(ws, "--budget", 4)
+    experts = sorted({e for _, e, *_ in assignments(ws, info["round"])})
+    assert len(experts) >= 2
+    out = tmp_path / "sheets"
+    (out / f"{experts[-1]}.csv").mkdir(parents=True)
+    one_line_error(invoke(ws, "round", "export", info["round"], "--out", out, "--overwrite"),
+                   "is a folder", "move it away")
+    assert not [p for p in out.iterdir() if p.is_file()]
+
+
+def test_export_writes_every_sheet_or_none(ws, tmp_path, monkeypatch):
+    # A failure while writing a later sheet leaves the earlier ones as they were (filled-in
+    # sheets are not half replaced; common practice: all-or-nothing output of one command).
+    import routeplan.files
+
+    info = plan(ws, "--budget", 4)
+    out = tmp_path / "sheets"
+    ok(invoke(ws, "round", "export", info["round"], "--out", out))
+    sheets = sorted(out.glob("*.csv"))
+    assert len(sheets) >= 2
+    for sheet in sheets:
+        sheet.write_text(sheet.read_text() + "# filled in\n")
+    real, calls = routeplan.files._csv_writer, []
+
+    def failing(frame, neutralise):  # the second sheet's writer fails (a full disk)
+        calls.append(frame)
+        if len(calls) == 2:
+            def full(tmp):
+                raise OSError(28, "No space left on device")
+            return full
+        return real(frame, neutralise)
+
+    monkeypatch.setattr(routeplan.files, "_csv_writer", failing)
+    result = invoke(ws, "round", "export", info["round"], "--out", out, "--overwrite")
+    assert result.exit_code == 1 and len(calls) == len(sheets)
+    assert all(sheet.read_text().endswith("# filled in\n") for sheet in sheets)
+    assert sorted(out.iterdir()) == sheets  # no temporary file left behind
+
+
+@pytest.mark.parametrize(
+    "args",
+    [
+        ["round", "plan", "--budget", "-1"],
+        ["round", "plan", "--budget", "abc"],
+        ["round", "export", "99", "--out", "sheets"],
+        ["round", "close", "99"],
+        ["status"],
+    ],
+)
+def test_json_failure_is_json_on_stdout(ws, tmp_path, args):
+    # A script that asked for --json reads stdout as JSON, failure included (common practice
+    # for machine-readable output); the one line on stderr and the exit code stay.
+    folder = tmp_path / "no_workspace" if args == ["status"] else ws
+    result = invoke(folder, *args, "--json")
+    assert result.exit_code == 2
+    data = json.loads(result.stdout)
+    assert data["exit_code"] == 2 and data["error"]
+    assert data["error"].splitlines()[0] in result.stderr
+
+
+def test_internal_fault_with_json_is_json_on_stdout(ws, monkeypatch):
+    # exit 1 (a bug) also answers --json with JSON (common practice, as above)
+    import routeplan.rounds
+
+    def broken(*args, **kwargs):
+        raise RuntimeError("boom")
+
+    monkeypatch.setattr(routeplan.rounds, "close_round", broken)
+    result = invoke(ws, "round", "close", "1", "--json")
+    assert result.exit_code == 1
+    data = json.loads(result.stdout)
+    assert data["exit_code"] == 1 and "RuntimeError: boom" in data["error"]
