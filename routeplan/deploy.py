@@ -239,20 +239,15 @@ def _cost_columns(labels: list, experts: list) -> list[str]:
 _PROBA_SUM_TOLERANCE = 1e-3
 
 
-def _score(policy: Policy, Z: np.ndarray, ids: Any = None) -> np.ndarray:
+def _score(policy: Policy, Z: np.ndarray) -> np.ndarray:
     """Expected cost of every option for raw input rows (:attr:`Policy.input_columns`), (n, K + M).
 
-    For a two-stage policy the trailing ``proba_<label>`` columns are the team's model's
-    probabilities: each row must be non-negative and sum to 1 (within 0.001; renormalised).
-    ``ids`` name the cases in that error (default: their row numbers).
+    The rows must be scorable (checked by the caller, :func:`_bad_rows`). For a two-stage
+    policy the trailing ``proba_<label>`` columns are the team's model's probabilities,
+    renormalised to sum to 1.
     """
     if Z.shape[0] == 0:
         return np.zeros((0, policy.n_classes + len(policy.experts)))
-    bad = _bad_rows(policy, Z)
-    if bad.any():
-        at = int(np.argmax(bad))
-        who = f"case {ids[at]!r}" if ids is not None else f"row {at}"
-        raise InputError(f"{who}: {_row_problem(policy, Z[at])}")
     d = len(policy.spec.names)
     X = policy.spec.transform(Z[:, :d])
     if not policy.proba_columns:
@@ -403,7 +398,11 @@ def route_frame(frame: pd.DataFrame, manifest: Mapping[str, Any], arrays: Mappin
         raise InputError(f"row {frame.index[at]!r}: column '{id_column}' is empty")
     X = _frame_features(frame, names)
     ids = frame[id_column].astype(str).to_numpy(dtype=object)
-    costs = _score(policy, X, ids)
+    bad = _bad_rows(policy, X)
+    if bad.any():
+        at = int(np.argmax(bad))
+        raise InputError(f"case {ids[at]!r}: {_row_problem(policy, X[at])}")
+    costs = _score(policy, X)
     outside = policy.spec.outside_range(X[:, :len(policy.spec.names)])
     steered = _steer_outside(costs, outside, policy.n_classes, outside_range)
     from .routing import route_with_prices
@@ -577,7 +576,7 @@ def route_file(
     ids, X = _read_cases(cases_path, id_column, policy.input_columns)
     _check_rows_scorable(policy, X, cases_path, id_column)
     try:
-        costs, outside = _score_chunks(policy, X, ids, int(chunk_size), console, progress)
+        costs, outside = _score_chunks(policy, X, int(chunk_size), console, progress)
     except InputError as exc:
         raise InputError(exc.message, source=str(cases_path)) from None
     del X
@@ -748,7 +747,7 @@ def _arrow_csv(path: Path, keep: list[str], id_column: str) -> Any:
     )
 
 
-def _score_chunks(policy: Policy, X: np.ndarray, ids: Any, chunk_size: int, console: Any,
+def _score_chunks(policy: Policy, X: np.ndarray, chunk_size: int, console: Any,
                   progress: bool) -> tuple[np.ndarray, np.ndarray]:
     """Score the cases chunk by chunk; also mark the cases outside the training range."""
     n, d = X.shape[0], len(policy.spec.names)
@@ -757,7 +756,7 @@ def _score_chunks(policy: Policy, X: np.ndarray, ids: Any, chunk_size: int, cons
     with _progress_bar(console, progress, n) as advance:
         for start in range(0, n, chunk_size):
             stop = min(start + chunk_size, n)
-            costs[start:stop] = _score(policy, X[start:stop], ids[start:stop])
+            costs[start:stop] = _score(policy, X[start:stop])
             outside[start:stop] = policy.spec.outside_range(X[start:stop, :d])
             advance(stop - start)
     return costs, outside
