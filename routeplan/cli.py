@@ -8,6 +8,7 @@ imports torch. Exit codes: 0 success, 2 bad input or usage, 1 internal fault.
 from __future__ import annotations
 
 import json
+import math
 import traceback
 import warnings
 from dataclasses import dataclass, field
@@ -117,8 +118,26 @@ class App:
             self.console.print(text, markup=False, soft_wrap=True)  # one line: paths stay whole
 
     def emit_json(self, data: Any) -> None:
-        """Write JSON to stdout (plain, for scripts)."""
-        click.echo(json.dumps(data, indent=2, sort_keys=False, default=_json_default))
+        """Write JSON to stdout (plain, for scripts); non-finite numbers are written as null.
+
+        JSON has no NaN or infinity (RFC 8259, section 6), so a value such as an unreachable
+        budget is written as ``null`` rather than Python's non-standard ``Infinity``.
+        """
+        click.echo(json.dumps(_finite_or_null(data), indent=2, sort_keys=False, default=_json_default,
+                              allow_nan=False))
+
+
+def _finite_or_null(value: Any) -> Any:
+    """``value`` with every non-finite float (also in dicts, lists and numpy values) made None."""
+    if isinstance(value, dict):
+        return {key: _finite_or_null(item) for key, item in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_finite_or_null(item) for item in value]
+    if hasattr(value, "tolist") and not isinstance(value, (str, bytes)):  # numpy scalars and arrays
+        return _finite_or_null(value.tolist())
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    return value
 
 
 def _json_default(value: Any) -> Any:

@@ -346,13 +346,62 @@ def _to_table(arrow, source: str, sha: str, is_text: bool, lines, text_columns: 
             cells[name] = values
             continue
         if not pa.types.is_string(kind) and not pa.types.is_large_string(kind):
-            column = pc.cast(column, pa.string()) if not pa.types.is_null(kind) else column.cast(pa.string())
+            column = _as_text(column, name, source)
         column = pc.utf8_trim_whitespace(column)
         column = pc.if_else(pc.equal(column, ""), pa.scalar(None, pa.string()), column)
         empty[name] = column.is_null().to_numpy(zero_copy_only=False)
         cells[name] = pd.Series(column.to_numpy(zero_copy_only=False), dtype=object)
     frame = pd.DataFrame(cells, columns=[str(n) for n in arrow.column_names])
     return Table(frame, source, sha, is_text, numeric, empty, lines)
+
+
+def _as_text(column, name: str, source: str):
+    """Cast a non-numeric Arrow column to text, refusing nested values and bytes that are not UTF-8.
+
+    Only Parquet columns get here with such types (a CSV file's bytes are checked for UTF-8 as it
+    is read), so a bad value is named by its row.
+
+    Parameters
+    ----------
+    column : pyarrow.ChunkedArray
+        A column that is neither numeric (as read) nor already text.
+    name : str
+        Its name, for the message.
+    source : str
+        The file, for the message.
+
+    Returns
+    -------
+    pyarrow.ChunkedArray
+        The column as ``string``.
+
+    Raises
+    ------
+    InputError
+        Naming the column and its type, and for bytes that are not UTF-8 the first such row.
+    """
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    kind = column.type
+    if pa.types.is_null(kind):
+        return column.cast(pa.string())
+    if pa.types.is_nested(kind) or (pa.types.is_dictionary(kind) and pa.types.is_nested(kind.value_type)):
+        raise InputError(f"column '{name}' holds nested values (type {kind}); routeplan reads plain numbers "
+                         "and text only: flatten it into one column per value", source=source)
+    try:
+        return pc.cast(column, pa.string())
+    except pa.ArrowException:
+        pass
+    for position, value in enumerate(column.to_pylist()):
+        if isinstance(value, bytes):
+            try:
+                value.decode("utf-8")
+            except UnicodeDecodeError:
+                raise InputError(f"column '{name}' (type {kind}) holds bytes that are not UTF-8 text; store it as "
+                                 "UTF-8 text or leave it out", source=source, line=position + 1, unit="row") from None
+    raise InputError(f"column '{name}' has type {kind}, which routeplan cannot read as text; store it as numbers "
+                     "or text", source=source)
 
 
 def _check_header(table: Table) -> None:

@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import itertools
 import json
+from collections import Counter
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Iterator, Sequence
@@ -157,20 +158,29 @@ def import_cases(
     group_column : str, optional
         A column of groups (site, shift...) used by competence tables; not a feature.
     feature_columns : sequence of str, optional
-        The feature columns. Default: every other column whose cells are all numbers. The
-        first import fixes the feature columns; later imports must carry the same ones.
+        The feature columns, each named once. Default: every other column whose cells are all
+        numbers. The first import fixes the feature columns; later imports must carry the same
+        ones, and may name them again only as the same set.
 
     Returns
     -------
     ImportResult
+
+    Raises
+    ------
+    InputError
+        If the file or the options are not valid, among others when one column is given two
+        roles (id, truth, group, feature), or the feature columns differ from those stored.
     """
     table = read_table(path, text_columns=tuple(c for c in (id_column, truth_column or "truth", group_column) if c))
     result = ImportResult("cases", table.source)
     columns = list(table.frame.columns)
-    if truth_column is None and "truth" in columns:
+    truth_by_default = truth_column is None and "truth" in columns
+    if truth_by_default:
         truth_column = "truth"
     options = {"id_column": id_column, "truth_column": truth_column, "group_column": group_column,
                "feature_columns": None if feature_columns is None else list(feature_columns)}
+    _check_roles(table, options, truth_by_default=truth_by_default, stored_features=ws.feature_columns)
     prior = ws.input_detail("cases import", table.sha256)
     if prior is not None:
         _check_same_options(table, options, prior.get("options"))
@@ -245,10 +255,41 @@ def _check_same_options(table: Table, options: dict, before: dict | None) -> Non
             "them differently, start a new workspace with 'routeplan init')", source=table.source)
 
 
+def _check_roles(table: Table, options: dict, *, truth_by_default: bool, stored_features: Sequence[str]) -> None:
+    """Refuse a column given two roles (id, truth, group, feature): one of them would be lost.
+
+    The feature role is that of ``--feature-columns`` when given, else that of the features
+    the workspace stores (later imports read those).
+    """
+    truth_flag = "by default, as the header has 'truth'" if truth_by_default else "--truth-column"
+    roles = [(options["id_column"], "id column (--id-column)"),
+             (options["truth_column"], f"truth column ({truth_flag})"),
+             (options["group_column"], "group column (--group-column)")]
+    requested = options["feature_columns"]
+    whose = "--feature-columns" if requested else "the workspace's feature columns"
+    roles += [(name, f"feature column ({whose})") for name in dict.fromkeys(requested or stored_features)]
+    seen: dict[str, str] = {}
+    for name, role in roles:
+        if name is None:
+            continue
+        if name in seen:
+            raise InputError(f"column '{name}' is given two roles, {seen[name]} and {role}; give each column "
+                             "one role only", source=table.source, line=1)
+        seen[name] = role
+
+
 def _choose_features(ws: Workspace, table: Table, requested: Sequence[str] | None) -> list[str]:
     frame = table.frame
     candidates = [c for c in frame.columns if c not in ("case_id", "truth", "group")]
     fixed = ws.feature_columns
+    repeated = [name for name, count in Counter(requested or ()).items() if count > 1]
+    if repeated:
+        raise InputError(f"--feature-columns names '{repeated[0]}' more than once; name each feature column once",
+                         source=table.source, line=1)
+    if fixed and requested and set(requested) != set(fixed):
+        raise InputError(f"--feature-columns {','.join(requested)} differs from the workspace's feature columns "
+                         f"{','.join(fixed)} (fixed by the first cases import); name those or leave the option out",
+                         source=table.source, line=1)
     wanted = list(fixed) if fixed else (list(requested) if requested else None)
     if wanted is not None:
         missing = [c for c in wanted if c not in frame.columns]

@@ -40,7 +40,8 @@ def render_status(info: dict) -> Group:
     else:
         parts.append(Text("No experts yet: routeplan experts add NAME --fee F"))
     if info["rounds"]:
-        table = Table(title="Rounds", title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False, collapse_padding=True)
+        table = Table(title="Rounds", title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False, collapse_padding=True,
+                      show_edge=False)  # the blank edges would cost two of 80 columns and fold "answered"
         for name in ("round", "strategy", "budget", "spent", "state", "asked", "answered", "open", "overdue", "expired"):
             table.add_column(name, justify="left" if name in ("strategy", "state") else "right", overflow="fold")
         for r in info["rounds"]:

@@ -226,7 +226,7 @@ class Workspace:
         WorkspaceExists
             If ``folder`` already holds a workspace.
         InputError
-            If the labels or the error cost are not valid.
+            If the labels or the error cost are not valid, or the folder cannot be created.
         """
         labels = _check_labels(labels)
         if not (np.isfinite(error_cost) and error_cost > 0):
@@ -238,9 +238,13 @@ class Workspace:
                 f"{path} already exists; routeplan will not overwrite a workspace "
                 "(choose another folder with --workspace)"
             )
-        folder.mkdir(parents=True, exist_ok=True)
         tmp = folder / (DB_NAME + ".creating")
-        tmp.unlink(missing_ok=True)
+        try:
+            folder.mkdir(parents=True, exist_ok=True)
+            tmp.unlink(missing_ok=True)
+        except OSError as exc:  # a part of the path is a file, no permission, read-only disk...
+            raise InputError(f"cannot create the workspace folder ({exc.strerror or exc}); choose another "
+                             "folder with --workspace", source=str(folder)) from None
         db = cls._connect(tmp)
         db.execute("PRAGMA journal_mode = WAL")
         migrations.apply(db)
@@ -872,6 +876,12 @@ def _check_labels(labels: Sequence[str]) -> list[str]:
         raise InputError("--labels needs at least two labels, separated by commas (e.g. --labels first,second)")
     if len(set(labels)) != len(labels):
         raise InputError(f"--labels repeats a label: {','.join(labels)}")
+    folded: dict[str, str] = {}
+    for label in labels:  # labels match exactly, so 'A' and 'a' would look alike in a sheet yet differ
+        if label.casefold() in folded:
+            raise InputError(f"--labels has {folded[label.casefold()]!r} and {label!r}, which differ only in "
+                             "letter case; labels match exactly, so give them distinct names")
+        folded[label.casefold()] = label
     for label in labels:
         if not label or any(ord(ch) < 32 for ch in label) or "," in label:
             raise InputError(f"--labels has an empty or unprintable label: {label!r}")

@@ -50,11 +50,19 @@ def test_init_refuses_to_overwrite(stocked_ws):
     assert db_dump(stocked_ws) == before
 
 
-@pytest.mark.parametrize("labels", ["solo", "a,a", "a,,b"])
+@pytest.mark.parametrize("labels", ["solo", "a,a", "a,,b", "Accept,reject,accept"])
 def test_init_refuses_a_bad_label_set(tmp_path, labels):
     result = run_cli(tmp_path / "new", "init", "--labels", labels)
     assert_one_line_error(result, "--labels")
     assert not (tmp_path / "new" / "routeplan.sqlite").exists()
+
+
+def test_init_under_a_regular_file_is_refused_naming_the_path(tmp_path):
+    # a path through a regular file cannot be a folder (POSIX.1-2017, mkdir(): ENOTDIR)
+    (tmp_path / "somefile.txt").write_text("x")
+    target = tmp_path / "somefile.txt" / "ws"
+    result = run_cli(target, "init", "--labels", "a,b")
+    assert_one_line_error(result, str(target), "cannot create the workspace folder")
 
 
 def test_cases_import_stores_ids_truth_and_features(empty_ws, write_file):
@@ -336,6 +344,90 @@ def test_parquet_import_of_cases_equals_csv_import(template_dirs, tmp_path):
     assert out["parquet"] == out["csv"]
     stored = np.vstack([np.frombuffer(r[3], dtype="<f8") for r in out["parquet"][0]])
     np.testing.assert_array_equal(stored, X)  # shortest-repr floats round-trip exactly (IEEE 754)
+
+
+@pytest.mark.parametrize("kind", ["list", "struct", "binary"])
+def test_parquet_cases_with_a_column_not_readable_as_text_are_refused(empty_ws, tmp_path, kind):
+    # nested (LIST, struct groups) and raw BYTE_ARRAY columns are Parquet types of the Apache Parquet
+    # format specification (LogicalTypes.md); routeplan keeps every column, so it names the column
+    extra = {"list": pa.array([[1, 2], [3]]), "struct": pa.array([{"a": 1}, {"a": 2}]),
+             "binary": pa.array([b"ok", b"\xff\xfe"], pa.binary())}[kind]
+    pq.write_table(pa.table({"case_id": ["p1", "p2"], "f1": [1.0, 2.0], "extra": extra}), tmp_path / "cases.parquet")
+    before = db_dump(empty_ws)
+    result = run_cli(empty_ws, "cases", "import", tmp_path / "cases.parquet")
+    assert_one_line_error(result, "cases.parquet", "column 'extra'", kind)
+    assert db_dump(empty_ws) == before
+
+
+def test_cases_import_refuses_a_feature_column_named_twice(empty_ws, write_file):
+    # a feature named twice is a typing slip, not two features (common practice: refuse, do not guess)
+    path = write_file("cases.csv", "case_id,x1,x2\nn1,1,2\n")
+    before = db_dump(empty_ws)
+    result = run_cli(empty_ws, "cases", "import", path, "--feature-columns", "x1,x1")
+    assert_one_line_error(result, str(path), "'x1'", "more than once")
+    assert db_dump(empty_ws) == before
+
+
+ROLE_CLASHES = [
+    ("group-is-default-truth", "empty", ["--group-column", "truth"], ["'truth'", "truth column", "group column"]),
+    ("id-is-default-truth", "empty", ["--id-column", "truth"], ["'truth'", "id column", "truth column"]),
+    ("truth-is-group", "empty", ["--truth-column", "site", "--group-column", "site"],
+     ["'site'", "--truth-column", "--group-column"]),
+    ("id-is-feature", "empty", ["--feature-columns", "case_id,f1"], ["'case_id'", "id column", "feature column"]),
+    ("group-is-feature", "empty", ["--feature-columns", "f1,f2", "--group-column", "f2"],
+     ["'f2'", "group column", "--feature-columns"]),
+    ("group-is-stored-feature", "stocked", ["--group-column", "f1"],
+     ["'f1'", "group column", "the workspace's feature columns"]),
+]
+
+
+@pytest.mark.parametrize("kind,options,fragments", [c[1:] for c in ROLE_CLASHES], ids=[c[0] for c in ROLE_CLASHES])
+def test_cases_import_refuses_a_column_given_two_roles(kind, options, fragments, template_dirs, tmp_path, write_file):
+    # one column cannot be both, say, the truth and the group: one of the two would be dropped
+    # without a word (common practice: refuse, do not guess)
+    from conftest import copy_workspace
+
+    ws = copy_workspace(template_dirs[kind], tmp_path / "ws")
+    path = write_file("cases.csv", "case_id,f1,f2,truth,site\nn1,1,2,accept,north\nn2,3,4,,south\n")
+    before = db_dump(ws)
+    result = run_cli(ws, "cases", "import", path, *options)
+    assert_one_line_error(result, str(path), "two roles", *fragments)
+    assert db_dump(ws) == before
+
+
+def test_a_later_cases_import_names_the_stored_feature_columns_or_none(stocked_ws, write_file):
+    # the first import fixes the feature columns (README, command reference); another set named
+    # later would be ignored, so it is refused (common practice: refuse rather than ignore an option)
+    path = write_file("more.csv", "case_id,f2,f3,f1\nm1,2,3,1\n")
+    before = db_dump(stocked_ws)
+    for named in ("f1,f3", "f1", "f1,f2,f3"):
+        result = run_cli(stocked_ws, "cases", "import", path, "--feature-columns", named)
+        assert_one_line_error(result, str(path), f"--feature-columns {named}", "f1,f2")
+    assert db_dump(stocked_ws) == before
+    assert run_cli(stocked_ws, "cases", "import", path, "--feature-columns", "f1,f2").exit_code == 0
+    other = write_file("other.csv", "case_id,f1,f2\nm2,5,6\n")
+    assert run_cli(stocked_ws, "cases", "import", other, "--feature-columns", "f2,f1").exit_code == 0
+    stored = dict(query(stocked_ws, "SELECT case_id, features FROM cases WHERE case_id IN ('m1', 'm2')"))
+    # features are read by name in the stored order f1, f2 (the file's own order does not matter)
+    assert np.frombuffer(stored["m1"], dtype="<f8").tolist() == [1.0, 2.0]
+    assert np.frombuffer(stored["m2"], dtype="<f8").tolist() == [5.0, 6.0]
+
+
+def test_json_output_writes_non_finite_numbers_as_null(capsys):
+    # JSON has no NaN or infinity (RFC 8259, section 6); Python's json writes them as the
+    # non-standard Infinity and NaN unless told otherwise
+    from pathlib import Path
+
+    from routeplan.cli import App
+
+    def refuse(constant: str) -> None:
+        raise AssertionError(f"non-standard JSON constant {constant}")
+
+    App(folder=Path(".")).emit_json({"reach": float("inf"),
+                                     "rows": [{"cost": np.float64("nan")}, (np.float32(-np.inf), 1.5)],
+                                     "curve": np.array([0.5, np.inf]), "count": np.int64(3), "name": "x"})
+    data = json.loads(capsys.readouterr().out, parse_constant=refuse)
+    assert data == {"reach": None, "rows": [{"cost": None}, [None, 1.5]], "curve": [0.5, None], "count": 3, "name": "x"}
 
 
 # --------------------------------------------------------------------------- workspace selection

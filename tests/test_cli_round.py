@@ -705,3 +705,25 @@ def test_internal_fault_with_json_is_json_on_stdout(ws, monkeypatch):
     assert result.exit_code == 1
     data = json.loads(result.stdout)
     assert data["exit_code"] == 1 and "RuntimeError: boom" in data["error"]
+
+
+def test_status_rounds_table_keeps_its_headers_whole_at_80_columns():
+    # common practice: a terminal table must stay readable at the classic 80 columns;
+    # before, rich folded "answered" into "answere" / "d" with four-digit counts
+    from rich.console import Console
+
+    from routeplan.report import render_status
+
+    row = {"strategy": "uncertain", "budget": 1000.0, "spent": 999.94, "state": "closed",
+           "assignments": 12210, "answered": 12210, "open": 0, "overdue": 0, "expired": 0}
+    info = {"workspace": "ws", "schema_version": 2, "labels": ["a", "b"], "error_cost": 1.0,
+            "cases": {"total": 4000, "with_truth": 3000, "without_truth": 1000}, "feature_columns": ["x"],
+            "answers": {"total": 6106, "historical": 89}, "models": 25, "policies": 5, "experts": [],
+            "rounds": [{"round": r, **row} for r in range(1, 13)]}
+    console = Console(width=80, record=True, color_system=None)
+    console.print(render_status(info))
+    lines = console.export_text().splitlines()
+    header = next(line for line in lines if line.lstrip().startswith("round"))
+    assert header.split() == ["round", "strategy", "budget", "spent", "state", "asked", "answered", "open",
+                              "overdue", "expired"]
+    assert max(map(len, lines)) <= 80

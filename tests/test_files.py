@@ -211,6 +211,38 @@ def test_read_table_accepts_every_common_line_end(tmp_path, eol):
     assert table.frame.values.tolist() == [["c1", "ann", "yes"], ["c2", "bo", "no"]]
 
 
+@pytest.mark.parametrize("column,fragments", [
+    ("list", ["'extra'", "nested", "list<"]),
+    ("struct", ["'extra'", "nested", "struct<"]),
+    ("binary", ["'extra'", "binary", "not UTF-8", "row 2"]),
+])
+def test_read_table_refuses_parquet_columns_it_cannot_read_as_text(tmp_path, column, fragments):
+    # every column of a cases file is kept (features, roles or display), so an unreadable column is
+    # refused by name; Parquet's nested and byte-array types are in the Apache Parquet format
+    # specification (LogicalTypes.md: LIST, MAP; BYTE_ARRAY without the STRING annotation)
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    extra = {"list": pa.array([[1, 2], [3]]), "struct": pa.array([{"a": 1}, {"a": 2}]),
+             "binary": pa.array([b"ok", b"caf\xe9"], pa.binary())}[column]
+    pq.write_table(pa.table({"case_id": ["c1", "c2"], "f1": [1.0, 2.0], "extra": extra}), tmp_path / "t.parquet")
+    with pytest.raises(InputError) as caught:
+        read_table(tmp_path / "t.parquet", text_columns=("case_id",))
+    for fragment in fragments:
+        assert fragment in str(caught.value)
+
+
+def test_read_table_reads_utf8_bytes_of_parquet_as_text(tmp_path):
+    # a BYTE_ARRAY column that holds UTF-8 text still reads (Apache Parquet format, LogicalTypes.md:
+    # STRING is only an annotation of UTF-8 bytes)
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    pq.write_table(pa.table({"case_id": ["c1"], "note": pa.array([" caf\u00e9 ".encode("utf-8")], pa.binary())}),
+                   tmp_path / "t.parquet")
+    assert read_table(tmp_path / "t.parquet").frame["note"].tolist() == ["caf\u00e9"]
+
+
 def test_schemas_in_package_are_the_schemas_folder():
     """The installed package ships the same schema documents as ``schemas/``."""
     for name in SCHEMA_NAMES:

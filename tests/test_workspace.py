@@ -50,6 +50,26 @@ def test_create_refuses_bad_labels(tmp_path, labels):
     assert not (tmp_path / "w" / DB_NAME).exists()
 
 
+def test_create_refuses_labels_that_differ_only_in_letter_case(tmp_path):
+    # answers and truth must match a label exactly (ingest._check_labels_in_set), so 'A' and 'a'
+    # would be two labels that a spreadsheet reader cannot tell apart (common practice)
+    with pytest.raises(InputError, match="'Yes' and 'yes'.*letter case"):
+        Workspace.create(tmp_path / "w", ["Yes", "no", "yes"])
+    assert not (tmp_path / "w").exists()
+
+
+@pytest.mark.parametrize("under", ["file.txt/ws", "file.txt"])
+def test_create_where_a_file_blocks_the_folder_is_an_input_error(tmp_path, under):
+    # POSIX mkdir fails with ENOTDIR when a path component is a regular file and with EEXIST when
+    # the path itself is one (POSIX.1-2017, mkdir(); Python raises them as OSError subclasses)
+    (tmp_path / "file.txt").write_text("not a folder")
+    with pytest.raises(InputError) as caught:
+        Workspace.create(tmp_path / under, ["a", "b"])
+    assert str(tmp_path / under) in str(caught.value)
+    assert "cannot create the workspace folder" in str(caught.value)
+    assert (tmp_path / "file.txt").read_text() == "not a folder"
+
+
 @pytest.mark.parametrize("cost", [0.0, -1.0, float("nan"), float("inf")])
 def test_create_refuses_bad_error_cost(tmp_path, cost):
     with pytest.raises(InputError, match="--error-cost"):
