@@ -253,10 +253,12 @@ def main() -> None:
     planner = {}
     for item in args.planner:
         key, _, value = item.partition("=")
+        if not key or not value:
+            parser.error(f"--planner {item}: not KEY=VALUE")
         try:
-            planner[key] = value if key == "spread" else int(value) if value.isdigit() else float(value)
+            planner[key] = int(value) if value.isdigit() else float(value)
         except ValueError:
-            parser.error(f"--planner {item}: not KEY=NUMBER")
+            planner[key] = value  # a word, as in spread=pairs
     start = time.perf_counter()
     with ProcessPoolExecutor(max_workers=max(1, args.jobs)) as pool:
         margin = None if args.no_focus else args.focus_margin
