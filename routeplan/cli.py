@@ -30,14 +30,22 @@ class BadInput(click.ClickException):
 class _Group(click.Group):
     """A click group that maps library errors to the exit codes of the contract.
 
-    With ``--json`` on the command line, a failure also prints ``{"error": MESSAGE,
-    "exit_code": N}`` on stdout, so that a script reading stdout always gets JSON; the
-    one line on stderr stays as without ``--json``.
+    With ``--json`` on the command line (before a ``--``), a failure also prints ``{"error":
+    MESSAGE, "exit_code": N}`` on stdout, so that a script reading stdout always gets JSON; the
+    one line on stderr stays as without ``--json``. This covers errors of the commands and
+    the usage errors click raises while parsing, the root group's own options included (an
+    unknown root option, a bad ``--workspace``): those are raised in :meth:`parse_args`,
+    before :meth:`invoke` runs, so both places print the JSON failure.
     """
 
     def parse_args(self, ctx: click.Context, args: list[str]) -> list[str]:
         ctx.meta[_JSON_KEY] = "--json" in args[: args.index("--")] if "--" in args else "--json" in args
-        return super().parse_args(ctx, args)
+        try:
+            return super().parse_args(ctx, args)
+        except click.ClickException as exc:  # the root's own options: click shows it and exits 2
+            if not ctx.resilient_parsing:  # shell completion parses quietly
+                _json_failure(ctx, exc.format_message(), exc.exit_code)
+            raise
 
     def invoke(self, ctx: click.Context) -> Any:
         from .errors import InputError  # light: no numpy

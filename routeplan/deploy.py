@@ -562,6 +562,9 @@ def route_file(
         Bad policy, ``id_column`` one of the policy's input columns, bad cases file (a
         feature too large to standardise included), or an output path that is a folder,
         in a missing folder, or would overwrite an input or a workspace's database.
+    OutputError
+        The decisions file could not be written (no permission, read-only file system, disk
+        full); it is written atomically, so ``out`` is left as it was.
     """
     from .routing import route_exact, route_with_prices
 

@@ -53,6 +53,37 @@ class WorkspaceExists(InputError):
     """A workspace is already there; init refuses to overwrite it."""
 
 
+class OutputError(InputError):
+    """A file or folder could not be written: no permission, a read-only file system, a full disk.
+
+    The user can fix it (another path, free space, permissions), so it is reported as bad input
+    (exit code 2), naming the path and the system's reason.
+    """
+
+    @classmethod
+    def from_os_error(cls, exc: OSError, path: object, *, what: str = "write the file") -> "OutputError":
+        """The error for ``exc``, raised while writing ``path``.
+
+        Parameters
+        ----------
+        exc : OSError
+            What the operating system reported; its ``strerror`` (e.g. "No space left on
+            device") is the reason given.
+        path : str or path-like
+            The file or folder the user named (not a temporary file beside it).
+        what : str, default="write the file"
+            What could not be done, for the message.
+
+        Returns
+        -------
+        OutputError
+        """
+        reason = exc.strerror or str(exc) or type(exc).__name__
+        notes = "; ".join(getattr(exc, "__notes__", ()))
+        return cls(f"cannot {what} ({reason}){'; ' + notes if notes else ''}; check that the folder is "
+                   "writable and has free space, or choose another path", source=str(path))
+
+
 class NotFitted(InputError):
     """A command needs a fitted model and there is none yet."""
 

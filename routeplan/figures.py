@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -59,6 +60,20 @@ def check_plot_path(path: str | Path, option: str = "--plot") -> str:
     raise InputError(f"{problem}; use .png (or one of .{', .'.join(f for f in formats if f != 'png')})", source=str(path))
 
 
+def _save(fig: Any, path: Path) -> Path:
+    """Write ``fig`` to ``path`` atomically (:func:`routeplan.files.write_atomically`), then close it."""
+    import matplotlib.pyplot as plt
+
+    from .files import write_atomically
+
+    fmt = check_plot_path(path)  # the format named, so the temporary name does not matter
+    try:
+        write_atomically(path, lambda tmp: fig.savefig(tmp, format=fmt))
+    finally:
+        plt.close(fig)
+    return path
+
+
 def competence_heatmap(frame: pd.DataFrame, level: str, path: str | Path, *, accuracy_column: str = "accuracy") -> Path:
     """Heatmap of accuracy per expert (rows) x class or region (columns).
 
@@ -75,6 +90,11 @@ def competence_heatmap(frame: pd.DataFrame, level: str, path: str | Path, *, acc
     Returns
     -------
     Path
+
+    Raises
+    ------
+    OutputError
+        The file could not be written (it is written atomically: ``path`` is left as it was).
     """
     import matplotlib
 
@@ -98,10 +118,7 @@ def competence_heatmap(frame: pd.DataFrame, level: str, path: str | Path, *, acc
     ax.set_title(f"Accuracy per expert and {level}")
     fig.colorbar(image, ax=ax, fraction=0.04, label="accuracy")
     fig.tight_layout()
-    path = Path(path)
-    fig.savefig(path, format=check_plot_path(path))  # the format named, so the file is written under its own name
-    plt.close(fig)
-    return path
+    return _save(fig, Path(path))
 
 
 def rehearsal_plot(curves: pd.DataFrame, path: str | Path, *, bayes_cost: float | None,
@@ -120,6 +137,11 @@ def rehearsal_plot(curves: pd.DataFrame, path: str | Path, *, bayes_cost: float 
     Returns
     -------
     Path
+
+    Raises
+    ------
+    OutputError
+        The file could not be written (it is written atomically: ``path`` is left as it was).
     """
     import matplotlib
 
@@ -137,7 +159,4 @@ def rehearsal_plot(curves: pd.DataFrame, path: str | Path, *, bayes_cost: float 
     ax.set_title("Rehearsal: system cost against budget")
     ax.legend(frameon=False)
     fig.tight_layout()
-    path = Path(path)
-    fig.savefig(path, format=check_plot_path(path))  # the format named, so the file is written under its own name
-    plt.close(fig)
-    return path
+    return _save(fig, Path(path))

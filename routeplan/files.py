@@ -21,6 +21,7 @@ import io
 import json
 import os
 import re
+import shutil
 import tempfile
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
@@ -30,7 +31,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .errors import InputError
+from .errors import InputError, OutputError
 
 __all__ = [
     "Table",
@@ -750,6 +751,12 @@ def write_atomically(path: str | Path, write: Callable[[str], Any]) -> None:
         Destination.
     write : callable
         Writes the whole content to the path it is given.
+
+    Raises
+    ------
+    OutputError
+        The file could not be written (no permission, read-only file system, disk full...);
+        the message names ``path`` and the system's reason, and ``path`` is left as it was.
     """
     write_all_or_none({Path(path): write})
 
@@ -758,38 +765,121 @@ def write_all_or_none(writers: Mapping[Path, Callable[[str], Any]]) -> None:
     """Write several files all or none: each to a temporary file beside it, then the renames.
 
     Every file is written in full and flushed to disk (fsync) before any destination is
-    touched; if one write fails, the temporary files are removed and every destination is
-    left as it was. Only a failing rename, after every file was written, could leave some
-    files new and others old (common practice for atomic replacement on POSIX). The files
-    are readable by all (0644), as the files routeplan writes are meant to be shared.
+    touched. Then each destination that exists is copied to a hidden backup beside it, and
+    the new files are renamed into place. If a write, a copy or a rename fails, the
+    destinations already replaced get their backup back (or are removed if they did not
+    exist), so every destination is left as it was; the temporary and backup files are
+    removed in all cases. One file alone needs no backup: its rename is atomic (common
+    practice for atomic replacement on POSIX). Only a crash of the machine in the middle of
+    the renames can still leave some files new and others old. The files are readable by all
+    (0644), as the files routeplan writes are meant to be shared.
 
     Parameters
     ----------
     writers : mapping of Path to callable
         Destination of each file and the function that writes its whole content to the
         path it is given.
+
+    Raises
+    ------
+    OutputError
+        A file could not be written or renamed (no permission, read-only file system, disk
+        full...); the message names the destination and the system's reason.
     """
     staged: list[tuple[str, Path]] = []
     try:
         for path, write in writers.items():
             path = Path(path)
-            folder = path.parent if str(path.parent) else Path(".")
-            fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=folder)
-            os.close(fd)
-            staged.append((tmp, path))
-            write(tmp)
-            fd = os.open(tmp, os.O_RDONLY)
             try:
-                os.fsync(fd)
-            finally:
+                fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=_folder_of(path))
                 os.close(fd)
-            os.chmod(tmp, 0o644)  # mkstemp makes it private
-        for tmp, path in staged:
-            os.replace(tmp, path)
+                staged.append((tmp, path))
+                write(tmp)
+                _fsync(tmp)
+                os.chmod(tmp, 0o644)  # mkstemp makes it private
+            except OSError as exc:
+                raise OutputError.from_os_error(exc, path) from exc
+        _move_into_place(staged)
     finally:
         for tmp, _ in staged:
             with contextlib.suppress(OSError):
                 os.unlink(tmp)
+
+
+def _folder_of(path: Path) -> Path:
+    """The folder ``path`` is in (``.`` for a bare name)."""
+    return path.parent if str(path.parent) else Path(".")
+
+
+def _fsync(path: str) -> None:
+    """Flush a written file to disk."""
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def _move_into_place(staged: list[tuple[str, Path]]) -> None:
+    """Rename each temporary file over its destination, all or none (backups of old files)."""
+    if len(staged) == 1:  # one rename is atomic by itself
+        tmp, path = staged[0]
+        try:
+            os.replace(tmp, path)
+        except OSError as exc:
+            raise OutputError.from_os_error(exc, path) from exc
+        return
+    backups: dict[Path, str] = {}
+    replaced: list[Path] = []
+    current = staged[0][1]
+    try:
+        for _, current in staged:
+            if os.path.lexists(current):
+                backups[current] = _back_up(current)
+        for tmp, current in staged:
+            os.replace(tmp, current)
+            replaced.append(current)
+    except BaseException as exc:
+        _put_back(replaced, backups, exc)
+        if isinstance(exc, OSError):
+            raise OutputError.from_os_error(exc, current) from exc
+        raise
+    finally:
+        for backup in backups.values():
+            with contextlib.suppress(OSError):
+                os.unlink(backup)
+
+
+def _back_up(path: Path) -> str:
+    """Copy ``path`` to a new hidden file beside it (a symbolic link is copied as a link)."""
+    fd, backup = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".old", dir=_folder_of(path))
+    os.close(fd)
+    try:
+        if path.is_symlink():
+            os.unlink(backup)
+            os.symlink(os.readlink(path), backup)
+        else:
+            shutil.copy2(path, backup)
+    except BaseException:
+        with contextlib.suppress(OSError):
+            os.unlink(backup)
+        raise
+    return backup
+
+
+def _put_back(replaced: list[Path], backups: dict[Path, str], error: BaseException) -> None:
+    """Undo the renames done so far; a backup that cannot be put back is kept and named."""
+    for path in reversed(replaced):
+        try:
+            if path in backups:
+                os.replace(backups[path], path)
+                del backups[path]
+            else:
+                os.unlink(path)
+        except OSError as exc:
+            kept = backups.pop(path, None)  # kept on disk: the only copy of the old content
+            where = f"its old content is in {kept}" if kept else "it holds the new content"
+            error.add_note(f"{path} could not be put back ({exc.strerror or exc}); {where}")
 
 
 def check_new_files(paths: list[Path | None], overwrite: bool) -> None:

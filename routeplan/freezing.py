@@ -150,6 +150,9 @@ def freeze_workspace(ws: Any, out: str | os.PathLike, *, card: str | os.PathLike
         does not exist, or (without ``overwrite``) an output file that does. The policy
         file and the card are written all or none, and recorded in the workspace only if
         both were written.
+    OutputError
+        The policy file or the card could not be written (no permission, read-only file
+        system, disk full); neither is replaced and nothing is recorded.
     """
     from .fitting import load_router
     from .policy import render_policy

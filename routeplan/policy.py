@@ -95,6 +95,9 @@ def write_policy(path: str | os.PathLike, manifest: Mapping[str, Any],
     ------
     ValueError
         If the manifest or an array is not valid (a programming error, not user input).
+    OutputError
+        The file could not be written (no permission, read-only file system, disk full);
+        ``path`` is left as it was.
     """
     text, digest = render_policy(manifest, arrays)
     write_atomically(Path(path), lambda tmp: Path(tmp).write_text(text, encoding="utf-8"))

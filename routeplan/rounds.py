@@ -58,7 +58,7 @@ from .acquisition import (
     router_focus,
     select_assignments,
 )
-from .errors import InputError, NotFitted
+from .errors import InputError, NotFitted, OutputError
 from .files import write_csvs
 from .workspace import Workspace, refuse_workspace_files
 
@@ -570,6 +570,9 @@ def export_round(
     InputError
         Unknown round or column, an unsafe expert name, a sheet that is (a link to) the
         workspace's database, or a sheet already there.
+    OutputError
+        The folder or a sheet could not be written (no permission, read-only file system,
+        disk full); the sheets are written all or none.
     """
     record = ws.round_record(round_id)
     if record is None:
@@ -581,7 +584,10 @@ def export_round(
     folder = Path(out_dir)
     if folder.exists() and not folder.is_dir():
         raise InputError(f"--out {folder} is a file, not a folder")
-    folder.mkdir(parents=True, exist_ok=True)
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:  # no permission, read-only file system, a file in the path...
+        raise OutputError.from_os_error(exc, folder, what="create the --out folder") from exc
     experts = sorted(set(rows["expert"]))
     targets = {e: sheet_path(folder, e) for e in experts}
     refuse_workspace_files({f"--out (the sheet of {e})": p for e, p in targets.items()}, ws.folder)

@@ -29,7 +29,7 @@ from __future__ import annotations
 import json
 import os
 import sqlite3
-from contextlib import contextmanager
+from contextlib import contextmanager, suppress
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
@@ -226,7 +226,9 @@ class Workspace:
         WorkspaceExists
             If ``folder`` already holds a workspace.
         InputError
-            If the labels or the error cost are not valid, or the folder cannot be created.
+            If the labels or the error cost are not valid, or the folder or the database
+            cannot be created there (no permission, read-only file system, disk full); the
+            half-made database file is removed.
         """
         labels = _check_labels(labels)
         if not (np.isfinite(error_cost) and error_cost > 0):
@@ -245,17 +247,30 @@ class Workspace:
         except OSError as exc:  # a part of the path is a file, no permission, read-only disk...
             raise InputError(f"cannot create the workspace folder ({exc.strerror or exc}); choose another "
                              "folder with --workspace", source=str(folder)) from None
-        db = cls._connect(tmp)
-        db.execute("PRAGMA journal_mode = WAL")
-        migrations.apply(db)
-        ws = cls(folder, db)
-        with ws.transaction():
-            db.conn.executemany("INSERT INTO label_set VALUES (?, ?)", list(enumerate(labels)))
-            ws._set("error_cost", float(error_cost))
-            ws._set("created_at", _now())
-            ws.log("init", {"labels": list(labels), "error_cost": float(error_cost)})
-        db.close()
-        os.replace(tmp, path)
+        db = None
+        try:
+            db = cls._connect(tmp)
+            db.execute("PRAGMA journal_mode = WAL")
+            migrations.apply(db)
+            ws = cls(folder, db)
+            with ws.transaction():
+                db.conn.executemany("INSERT INTO label_set VALUES (?, ?)", list(enumerate(labels)))
+                ws._set("error_cost", float(error_cost))
+                ws._set("created_at", _now())
+                ws.log("init", {"labels": list(labels), "error_cost": float(error_cost)})
+            db.close()
+            os.replace(tmp, path)
+        except (sqlite3.Error, OSError) as exc:
+            _discard(db, tmp)
+            if not _is_storage_error(exc):
+                raise
+            reason = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
+            raise InputError(f"cannot create the workspace database ({reason}); check that the folder is "
+                             "writable and has free space, or choose another folder with --workspace",
+                             source=str(path)) from exc
+        except BaseException:
+            _discard(db, tmp)
+            raise
         return cls.open(folder)
 
     @classmethod
@@ -298,7 +313,12 @@ class Workspace:
 
     @contextmanager
     def transaction(self) -> Iterator["Workspace"]:
-        """Run the block in one write transaction (``BEGIN IMMEDIATE``): all of it or none."""
+        """Run the block in one write transaction (``BEGIN IMMEDIATE``): all of it or none.
+
+        If the block (or the ``COMMIT``) fails, the transaction is rolled back and the error
+        that stopped it is raised. Should the rollback fail as well, its failure is added to
+        that error as a note (:meth:`BaseException.add_note`) rather than raised in its place.
+        """
         conn = self.db.conn
         if conn.in_transaction:
             with self.db.atomic():
@@ -307,10 +327,10 @@ class Workspace:
         conn.execute("BEGIN IMMEDIATE")
         try:
             yield self
-        except BaseException:
-            conn.execute("ROLLBACK")
+            conn.execute("COMMIT")
+        except BaseException as exc:
+            _roll_back(conn, exc)
             raise
-        conn.execute("COMMIT")
 
     def log(self, command: str, detail: dict, *, input_file: str | None = None, input_sha256: str | None = None) -> None:
         """Append one entry to the journal (call inside :meth:`transaction`)."""
@@ -803,6 +823,46 @@ class Workspace:
                 "JOIN temp.keys k ON k.case_id = t.case_id AND k.expert = t.expert"
             )
         }
+
+
+def _roll_back(conn: sqlite3.Connection, error: BaseException) -> None:
+    """Roll back after ``error``; a rollback that fails is noted on ``error``, not raised."""
+    if not conn.in_transaction:  # SQLite already ended it (e.g. RAISE(ROLLBACK), a full disk)
+        return
+    try:
+        conn.execute("ROLLBACK")
+    except Exception as failure:
+        error.add_note(f"The rollback after this error failed too: {type(failure).__name__}: {failure}")
+
+
+#: SQLite result codes (and their extended forms) that mean the file system refused: the user can
+#: fix them by choosing another folder, freeing space or granting permission (sqlite.org, "Result
+#: and Error Codes").
+_STORAGE_CODES = ("SQLITE_CANTOPEN", "SQLITE_FULL", "SQLITE_IOERR", "SQLITE_READONLY", "SQLITE_PERM")
+
+
+def _is_storage_error(exc: BaseException) -> bool:
+    """True for an OSError, or an SQLite error caused by the file system (not by our SQL).
+
+    An :class:`sqlite3.OperationalError` raised without a result code (not by SQLite itself,
+    e.g. by a wrapper) is taken as one too: SQLite's own errors always carry their code.
+    """
+    if isinstance(exc, OSError):
+        return True
+    if not isinstance(exc, sqlite3.OperationalError):
+        return False
+    name = getattr(exc, "sqlite_errorname", None)
+    return name is None or name.startswith(_STORAGE_CODES)
+
+
+def _discard(db: Database | None, tmp: Path) -> None:
+    """Close ``db`` if open and remove the half-made database ``tmp`` with its sidecar files."""
+    if db is not None:
+        with suppress(Exception):
+            db.close()
+    for name in [tmp, *(tmp.with_name(tmp.name + suffix) for suffix in SQLITE_SIDECARS)]:
+        with suppress(OSError):
+            name.unlink(missing_ok=True)
 
 
 def database_files(folder: str | Path) -> list[Path]:

@@ -211,3 +211,24 @@ def test_audit_heatmap_without_audit_answers_is_refused(iris_workspace, tmp_path
     assert not (tmp_path / "audit.png").exists()
     invoke(folder, "competence", "--plot", tmp_path / "truth.png")
     assert (tmp_path / "truth.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_a_plot_on_a_full_disk_is_exit_2_and_leaves_no_file(iris_workspace, tmp_path, monkeypatch):
+    # A full disk (ENOSPC, POSIX.1-2017 <errno.h>) is the user's to fix: exit 2 with one line
+    # naming the plot and the system's reason; the plot is written atomically (temporary file
+    # and rename, common practice), so no half image or temporary file stays behind.
+    import errno
+    import os
+
+    import matplotlib.figure
+
+    def half_then_full(self, fname, **kwargs):
+        Path(fname).write_bytes(b"\x89PNG half")
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+    monkeypatch.setattr(matplotlib.figure.Figure, "savefig", half_then_full)
+    png = tmp_path / "heat.png"
+    line = _refused(iris_workspace[0], "--plot", png)
+    assert line == f"Error: {png}: cannot write the file (No space left on device); check that the folder is " \
+                   "writable and has free space, or choose another path"
+    assert list(tmp_path.iterdir()) == []

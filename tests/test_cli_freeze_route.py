@@ -14,6 +14,7 @@ import csv
 import hashlib
 import json
 import math
+import os
 import re
 import shutil
 import sqlite3
@@ -681,25 +682,35 @@ def test_freeze_refuses_a_folder_where_the_card_goes(built, tmp_path):
     assert not (tmp_path / "p.json").exists() and _db_dump(ws) == before
 
 
-def test_freeze_writes_the_policy_and_the_card_all_or_none(built, tmp_path, monkeypatch):
-    # common practice (atomic replacement on POSIX): a failure while writing the card leaves
-    # the old policy, the old card and the workspace as they were, and no temporary file
+@pytest.mark.parametrize("step", ["write", "rename"])
+def test_freeze_writes_the_policy_and_the_card_all_or_none(built, tmp_path, monkeypatch, step):
+    # common practice (atomic replacement on POSIX): a failure while writing or renaming the
+    # card leaves the old policy, the old card and the workspace as they were, and no temporary
+    # or backup file; a full disk (ENOSPC, POSIX <errno.h>) is bad input: exit 2, one line
     ws = shutil.copytree(built["ws"], tmp_path / "ws")
     policy, card = tmp_path / "p.json", tmp_path / "p.md"
     policy.write_text("old policy\n")
     card.write_text("old card\n")
     before = _db_dump(ws)
-    real_write_text = Path.write_text
+    real_write_text, real_replace = Path.write_text, os.replace
 
     def failing_write_text(self, data, *args, **kwargs):
         if self.name.startswith(".p.md."):
             raise OSError(28, "No space left on device")
         return real_write_text(self, data, *args, **kwargs)
 
-    monkeypatch.setattr(Path, "write_text", failing_write_text)
+    def failing_replace(src, dst):  # the policy is renamed into place first, then the card fails
+        if str(src).endswith(".part") and Path(dst) == card:
+            raise OSError(28, "No space left on device")
+        return real_replace(src, dst)
+
+    if step == "write":
+        monkeypatch.setattr(Path, "write_text", failing_write_text)
+    else:
+        monkeypatch.setattr(os, "replace", failing_replace)
     result = invoke(ws, "freeze", "--out", policy, "--overwrite")
     monkeypatch.undo()
-    assert result.exit_code == 1 and "No space left" in result.stderr
+    one_line_error(result, f"{card}: cannot write the file (No space left on device)")
     assert policy.read_text() == "old policy\n" and card.read_text() == "old card\n"
     assert sorted(p.name for p in tmp_path.iterdir()) == ["p.json", "p.md", "ws"]
     assert _db_dump(ws) == before

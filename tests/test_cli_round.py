@@ -667,9 +667,40 @@ def test_export_writes_every_sheet_or_none(ws, tmp_path, monkeypatch):
 
     monkeypatch.setattr(routeplan.files, "_csv_writer", failing)
     result = invoke(ws, "round", "export", info["round"], "--out", out, "--overwrite")
-    assert result.exit_code == 1 and len(calls) == len(sheets)
+    # a full disk is the user's to fix: exit 2, one line naming the sheet and the system's reason
+    one_line_error(result, f"{sheets[1]}: cannot write the file (No space left on device)")
+    assert len(calls) == len(sheets)
     assert all(sheet.read_text().endswith("# filled in\n") for sheet in sheets)
     assert sorted(out.iterdir()) == sheets  # no temporary file left behind
+
+
+def test_export_into_a_folder_that_cannot_be_written_is_exit_2(ws, tmp_path, monkeypatch):
+    # No permission on the folder (EACCES, POSIX.1-2017 <errno.h>), simulated because the tests
+    # run as root, where file modes do not stop writes: exit 2 with one line naming the path and
+    # the system's reason, and no sheet, temporary file or backup left behind (common practice).
+    import errno
+    import tempfile
+
+    info = plan(ws, "--budget", 4)
+    out = tmp_path / "sheets"
+    out.mkdir()
+
+    def refused(*args, **kwargs):
+        raise PermissionError(errno.EACCES, os.strerror(errno.EACCES), kwargs.get("dir"))
+
+    monkeypatch.setattr(tempfile, "mkstemp", refused)
+    result = invoke(ws, "round", "export", info["round"], "--out", out)
+    one_line_error(result, f"{out}/", "cannot write the file (Permission denied)")
+    assert list(out.iterdir()) == []
+    monkeypatch.undo()
+
+    def no_folder(self, *args, **kwargs):
+        raise PermissionError(errno.EACCES, os.strerror(errno.EACCES), str(self))
+
+    monkeypatch.setattr(Path, "mkdir", no_folder)
+    result = invoke(ws, "round", "export", info["round"], "--out", tmp_path / "new")
+    one_line_error(result, f"{tmp_path / 'new'}: cannot create the --out folder (Permission denied)")
+    assert not (tmp_path / "new").exists()
 
 
 @pytest.mark.parametrize(

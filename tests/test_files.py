@@ -14,8 +14,10 @@ checked on its own below.
 
 from __future__ import annotations
 
+import errno
 import json
 import math
+import os
 from pathlib import Path
 
 import jsonschema
@@ -263,10 +265,177 @@ def test_write_atomically_keeps_the_old_file_when_the_write_fails(tmp_path):
         Path(tmp).write_text("half", encoding="utf-8")
         raise OSError("disk full")
 
-    with pytest.raises(OSError, match="disk full"):
+    with pytest.raises(InputError, match="disk full"):  # an OutputError: exit 2, names the path
         write_atomically(path, half_then_fail)
     assert path.read_text(encoding="utf-8") == "old"
     assert [p.name for p in tmp_path.iterdir()] == ["out.txt"]
     write_atomically(path, lambda tmp: Path(tmp).write_text("new", encoding="utf-8"))
     assert path.read_text(encoding="utf-8") == "new"
     assert stat.S_IMODE(path.stat().st_mode) == 0o644
+
+
+# --------------------------------------------------------------------------- failures while writing
+
+# The errno values and their strerror texts are the operating system's (POSIX.1-2017, <errno.h>:
+# EACCES, EROFS, ENOSPC); Python raises them as OSError or its subclasses (PermissionError).
+_ENOSPC = OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+_EACCES = PermissionError(errno.EACCES, os.strerror(errno.EACCES))
+_EROFS = OSError(errno.EROFS, os.strerror(errno.EROFS))
+
+
+def _old_files(folder: Path) -> dict[str, str]:
+    """Two files with old content, in a folder of their own."""
+    folder.mkdir()
+    for name in ("a.txt", "b.txt"):
+        (folder / name).write_text(f"old {name}", encoding="utf-8")
+    return {p.name: p.read_text(encoding="utf-8") for p in folder.iterdir()}
+
+
+def _contents(folder: Path) -> dict[str, str]:
+    return {p.name: p.read_text(encoding="utf-8") for p in folder.iterdir()}
+
+
+def _writers(folder: Path, names=("a.txt", "b.txt", "c.txt")) -> dict:
+    return {folder / n: (lambda tmp, n=n: Path(tmp).write_text(f"new {n}", encoding="utf-8")) for n in names}
+
+
+@pytest.mark.parametrize("step, error", [("open", _EACCES), ("write", _ENOSPC), ("rename", _EROFS)])
+@pytest.mark.parametrize("n_files", [1, 3])
+def test_an_os_error_while_writing_is_an_input_error_naming_the_path(tmp_path, monkeypatch, step, error, n_files):
+    # A folder without write permission, a read-only file system or a full disk is the user's
+    # to fix (common practice: report it as bad input, naming the file and the system's reason);
+    # simulated, as the tests run as root, where file modes do not stop writes.
+    import tempfile
+
+    from routeplan.errors import OutputError
+    from routeplan.files import write_all_or_none
+
+    folder = tmp_path / "out"
+    before = _old_files(folder)
+    writers = _writers(folder, ("a.txt", "b.txt", "c.txt")[:n_files])
+    failing = list(writers)[-1]  # the last file fails
+    if step == "open":
+        real_mkstemp = tempfile.mkstemp
+
+        def mkstemp(*args, **kwargs):
+            if kwargs.get("prefix", "").startswith(f".{failing.name}."):
+                raise error
+            return real_mkstemp(*args, **kwargs)
+
+        monkeypatch.setattr(tempfile, "mkstemp", mkstemp)
+    elif step == "write":
+        def half_then_full(tmp):
+            Path(tmp).write_text("half", encoding="utf-8")
+            raise error
+
+        writers[failing] = half_then_full
+    else:
+        real_replace = os.replace
+
+        def replace(src, dst):
+            if Path(dst) == failing and str(src).endswith(".part"):
+                raise error
+            real_replace(src, dst)
+
+        monkeypatch.setattr(os, "replace", replace)
+    with pytest.raises(OutputError) as caught:
+        write_all_or_none(writers)
+    assert isinstance(caught.value, InputError)  # exit 2 in the CLI
+    assert str(caught.value).startswith(f"{failing}: cannot write the file ({error.strerror})")
+    assert _contents(folder) == before  # old files as they were; no new, temporary or backup file
+
+
+def _second_rename_fails(monkeypatch, *, restore_fails: bool = False) -> list[str]:
+    """Make os.replace fail (ENOSPC) on the second new file; returns the names it was asked for."""
+    real_replace, renamed = os.replace, []
+
+    def replace(src, dst):
+        if restore_fails and str(src).endswith(".old"):
+            raise _EROFS
+        if str(src).endswith(".part"):
+            renamed.append(Path(dst).name)
+            if len(renamed) == 2:
+                raise _ENOSPC
+        real_replace(src, dst)
+
+    monkeypatch.setattr(os, "replace", replace)
+    return renamed
+
+
+def test_a_failing_rename_puts_every_file_back(tmp_path, monkeypatch):
+    # All or none (common practice for one command's outputs): when the second of three renames
+    # fails, the first target gets its old content back, and a target that did not exist
+    # before (c.txt) is not left behind.
+    from routeplan.files import write_all_or_none
+
+    folder = tmp_path / "out"
+    before = _old_files(folder)
+    renamed = _second_rename_fails(monkeypatch)
+    with pytest.raises((OSError, InputError)):  # which one: the test above
+        write_all_or_none(_writers(folder))
+    assert renamed == ["a.txt", "b.txt"]
+    assert _contents(folder) == before
+
+
+def test_a_failing_rename_of_the_first_new_file_removes_it(tmp_path, monkeypatch):
+    # the same all-or-none rule when the file renamed first did not exist before
+    from routeplan.files import write_all_or_none
+
+    folder = tmp_path / "out"
+    before = _old_files(folder)
+    _second_rename_fails(monkeypatch)
+    writers = _writers(folder, ("c.txt", "a.txt"))
+    with pytest.raises((OSError, InputError)):
+        write_all_or_none(writers)
+    assert _contents(folder) == before
+
+
+def test_a_backup_that_cannot_be_put_back_is_kept_and_named(tmp_path, monkeypatch):
+    # If undoing a rename fails too, the old content must not be lost: its backup stays and
+    # the message says where it is (common practice: never delete the only copy).
+    from routeplan.files import write_all_or_none
+
+    folder = tmp_path / "out"
+    _old_files(folder)
+    _second_rename_fails(monkeypatch, restore_fails=True)  # and putting a.txt back fails too
+    with pytest.raises(InputError) as caught:
+        write_all_or_none(_writers(folder))
+    kept = [p for p in folder.iterdir() if p.name.endswith(".old")]
+    assert len(kept) == 1 and kept[0].read_text(encoding="utf-8") == "old a.txt"
+    assert f"its old content is in {kept[0]}" in str(caught.value)
+    assert (folder / "b.txt").read_text(encoding="utf-8") == "old b.txt"
+    assert not (folder / "c.txt").exists() and not list(folder.glob("*.part"))
+
+
+def test_all_or_none_keeps_a_symbolic_link_a_link(tmp_path, monkeypatch):
+    # os.replace over a symbolic link replaces the link itself (POSIX rename()); putting it back
+    # must restore the link, not a copy of the file it points to
+    from routeplan.files import write_all_or_none
+
+    folder = tmp_path / "out"
+    _old_files(folder)
+    (folder / "link.txt").symlink_to(folder / "a.txt")
+    _second_rename_fails(monkeypatch)
+    with pytest.raises((OSError, InputError)):
+        write_all_or_none(_writers(folder, ("link.txt", "b.txt")))
+    assert (folder / "link.txt").is_symlink() and os.readlink(folder / "link.txt") == str(folder / "a.txt")
+    assert sorted(p.name for p in folder.iterdir()) == ["a.txt", "b.txt", "link.txt"]
+
+
+def test_a_plot_that_cannot_be_written_leaves_no_partial_file(tmp_path, monkeypatch):
+    # A full disk while matplotlib writes: the plot is written atomically (temporary file and
+    # rename, common practice), so neither a half PNG nor a temporary file stays behind.
+    import matplotlib.figure
+
+    from routeplan.figures import rehearsal_plot
+
+    def half_then_full(self, fname, **kwargs):
+        Path(fname).write_bytes(b"\x89PNG half")
+        raise _ENOSPC
+
+    monkeypatch.setattr(matplotlib.figure.Figure, "savefig", half_then_full)
+    curves = pd.DataFrame({"strategy": ["a", "a"], "spend": [0.0, 1.0], "system_cost": [0.5, 0.4]})
+    path = tmp_path / "plot.png"
+    with pytest.raises(InputError, match=f"{path}: cannot write the file \\(No space left on device\\)"):
+        rehearsal_plot(curves, path, bayes_cost=None, full_information_cost=0.3)
+    assert list(tmp_path.iterdir()) == []

@@ -201,3 +201,91 @@ def test_refuse_workspace_files_guards_the_database_and_its_sidecars(tmp_path):
     with pytest.raises(InputError, match="copy.csv: --csv would overwrite"):
         refuse_workspace_files({"--csv": tmp_path / "copy.csv"}, folder)
     refuse_workspace_files({"--csv": folder / "table.csv", "--plot": folder / "routeplan.png"}, folder)
+
+
+class _RollbackFails:
+    """A connection whose ROLLBACK fails (a disk gone, a lost lock), for Workspace.transaction."""
+
+    def __init__(self) -> None:
+        self.in_transaction = False
+
+    def execute(self, sql: str):
+        if sql == "ROLLBACK":
+            raise sqlite3.OperationalError("disk I/O error")
+        self.in_transaction = sql.startswith("BEGIN")
+        return None
+
+
+def test_a_failing_rollback_does_not_hide_the_original_error(tmp_path):
+    # The error that stopped the block is what the caller must see; the rollback's own failure
+    # is added as a note (PEP 678, Python 3.11), not raised in its place.
+    from types import SimpleNamespace
+
+    ws = Workspace(tmp_path, SimpleNamespace(conn=_RollbackFails()))
+    with pytest.raises(InputError, match="bad row") as caught:
+        with ws.transaction():
+            raise InputError("bad row")
+    notes = getattr(caught.value, "__notes__", [])
+    assert any("rollback" in note and "disk I/O error" in note for note in notes), notes
+
+
+def test_a_transaction_that_sqlite_already_rolled_back_keeps_its_error(stocked_ws):
+    # SQLite ends the transaction itself on some errors (RAISE(ROLLBACK) in a trigger; sqlite.org,
+    # "CREATE TRIGGER"); a second ROLLBACK then fails with "no transaction is active" and must
+    # not take the place of the first error.
+    before = db_dump(stocked_ws)
+    with Workspace.open(stocked_ws) as ws:
+        ws.db.conn.execute("CREATE TEMP TRIGGER stop BEFORE INSERT ON experts "
+                           "BEGIN SELECT RAISE(ROLLBACK, 'stopped by trigger'); END")
+        with pytest.raises(sqlite3.IntegrityError, match="stopped by trigger"):
+            with ws.transaction():
+                ws.upsert_experts([("zed", 1.0, 0.5)])
+        assert not ws.db.conn.in_transaction
+    assert db_dump(stocked_ws) == before
+
+
+def _connect_fails(path):
+    """Stand-in for Workspace._connect in a folder SQLite cannot write: the file half made."""
+    path.write_bytes(b"")  # SQLite may leave the file it began to create
+    raise sqlite3.OperationalError("unable to open database file")
+
+
+def test_create_where_sqlite_cannot_write_is_an_input_error(tmp_path, monkeypatch):
+    # SQLite's "unable to open database file" (SQLITE_CANTOPEN, sqlite.org result codes) in a
+    # folder that exists but cannot be written; simulated because the tests run as root, where
+    # file modes do not stop writes. Bad input, naming the path; no half-made file stays.
+    folder = tmp_path / "w"
+    folder.mkdir()
+    monkeypatch.setattr(Workspace, "_connect", staticmethod(_connect_fails))
+    with pytest.raises(InputError) as caught:
+        Workspace.create(folder, ["a", "b"])
+    assert str(caught.value).startswith(f"{folder / DB_NAME}: cannot create the workspace database "
+                                        "(unable to open database file)")
+    assert list(folder.iterdir()) == []
+
+
+def test_create_on_a_full_disk_removes_the_half_made_database(tmp_path, monkeypatch):
+    # SQLITE_FULL, "database or disk is full" (sqlite.org result codes), raised by the schema's
+    # first write after the file and its write-ahead log exist
+    import routeplan.workspace
+
+    def full(db):
+        db.execute("CREATE TABLE scratch (x)")  # the file and its -wal are on disk now
+        error = sqlite3.OperationalError("database or disk is full")
+        error.sqlite_errorcode, error.sqlite_errorname = sqlite3.SQLITE_FULL, "SQLITE_FULL"
+        raise error
+
+    monkeypatch.setattr(routeplan.workspace.migrations, "apply", full)
+    with pytest.raises(InputError, match="cannot create the workspace database \\(database or disk is full\\)"):
+        Workspace.create(tmp_path / "w", ["a", "b"])
+    assert list((tmp_path / "w").iterdir()) == []
+
+
+def test_init_where_sqlite_cannot_write_is_exit_2(tmp_path, monkeypatch):
+    # the same through the command line: exit 2 and one line (routeplan.cli docstring)
+    from conftest import assert_one_line_error
+
+    monkeypatch.setattr(Workspace, "_connect", staticmethod(_connect_fails))
+    result = run_cli(tmp_path, "init", "--labels", "a,b")
+    assert_one_line_error(result, str(tmp_path / DB_NAME), "unable to open database file")
+    assert list(tmp_path.iterdir()) == []
