@@ -149,9 +149,7 @@ def _finite_or_null(value: Any) -> Any:
 
 
 def _json_default(value: Any) -> Any:
-    if hasattr(value, "tolist"):
-        return value.tolist()
-    if isinstance(value, Path):
+    if isinstance(value, Path):  # numpy values were made plain by _finite_or_null
         return str(value)
     raise TypeError(f"not JSON-serialisable: {type(value).__name__}")
 

@@ -578,10 +578,7 @@ def route_file(
     _check_id_column(policy, id_column)
     ids, X = _read_cases(cases_path, id_column, policy.input_columns)
     _check_rows_scorable(policy, X, cases_path, id_column)
-    try:
-        costs, outside = _score_chunks(policy, X, int(chunk_size), console, progress)
-    except InputError as exc:
-        raise InputError(exc.message, source=str(cases_path)) from None
+    costs, outside = _score_chunks(policy, X, int(chunk_size), console, progress)
     del X
     steered = _steer_outside(costs, outside, policy.n_classes, outside_range)
     if exact:

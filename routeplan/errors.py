@@ -61,27 +61,30 @@ class OutputError(InputError):
     """
 
     @classmethod
-    def from_os_error(cls, exc: OSError, path: object, *, what: str = "write the file") -> "OutputError":
+    def from_os_error(cls, exc: Exception, path: object, *, what: str = "write the file",
+                      hint: str = "check that the folder is writable and has free space, or choose another "
+                                  "path") -> "OutputError":
         """The error for ``exc``, raised while writing ``path``.
 
         Parameters
         ----------
-        exc : OSError
-            What the operating system reported; its ``strerror`` (e.g. "No space left on
-            device") is the reason given.
+        exc : OSError or sqlite3.Error
+            What the operating system (or SQLite) reported; its ``strerror`` (e.g. "No space
+            left on device"), or else its message, is the reason given.
         path : str or path-like
             The file or folder the user named (not a temporary file beside it).
         what : str, default="write the file"
             What could not be done, for the message.
+        hint : str
+            What the user can do about it, for the message.
 
         Returns
         -------
         OutputError
         """
-        reason = exc.strerror or str(exc) or type(exc).__name__
+        reason = getattr(exc, "strerror", None) or str(exc) or type(exc).__name__
         notes = "; ".join(getattr(exc, "__notes__", ()))
-        return cls(f"cannot {what} ({reason}){'; ' + notes if notes else ''}; check that the folder is "
-                   "writable and has free space, or choose another path", source=str(path))
+        return cls(f"cannot {what} ({reason}){'; ' + notes if notes else ''}; {hint}", source=str(path))
 
 
 class NotFitted(InputError):

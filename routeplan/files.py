@@ -123,6 +123,9 @@ def file_sha256(path: str | Path) -> str:
     return digest.hexdigest()
 
 
+_NO_RECORDS = "the file has a header but no records"
+
+
 def read_table(path: str | Path, *, text_columns: tuple[str, ...] = ()) -> Table:
     """Read a CSV or Parquet file into a :class:`Table`.
 
@@ -160,7 +163,7 @@ def read_table(path: str | Path, *, text_columns: tuple[str, ...] = ()) -> Table
     table = _to_table(arrow, source, sha, is_text, lines, text_columns)
     _check_header(table)
     if len(table.frame) == 0:
-        raise InputError("the file has a header but no records", source=source)
+        raise InputError(_NO_RECORDS, source=source)
     return table
 
 
@@ -314,7 +317,7 @@ def _check_csv_shape(text: str, source: str) -> None:
     except csv.Error as exc:
         raise InputError(f"cannot parse the CSV: {exc}", source=source, line=reader.line_num) from None
     if n_records == 0:  # a header alone, without a line end after it, is not a parse error
-        raise InputError("the file has a header but no records", source=source)
+        raise InputError(_NO_RECORDS, source=source)
 
 
 def _read_parquet(data: bytes, source: str):
@@ -791,7 +794,7 @@ def write_all_or_none(writers: Mapping[Path, Callable[[str], Any]]) -> None:
         for path, write in writers.items():
             path = Path(path)
             try:
-                fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=_folder_of(path))
+                fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
                 os.close(fd)
                 staged.append((tmp, path))
                 write(tmp)
@@ -806,11 +809,6 @@ def write_all_or_none(writers: Mapping[Path, Callable[[str], Any]]) -> None:
                 os.unlink(tmp)
 
 
-def _folder_of(path: Path) -> Path:
-    """The folder ``path`` is in (``.`` for a bare name)."""
-    return path.parent if str(path.parent) else Path(".")
-
-
 def _fsync(path: str) -> None:
     """Flush a written file to disk."""
     fd = os.open(path, os.O_RDONLY)
@@ -822,6 +820,8 @@ def _fsync(path: str) -> None:
 
 def _move_into_place(staged: list[tuple[str, Path]]) -> None:
     """Rename each temporary file over its destination, all or none (backups of old files)."""
+    if not staged:
+        return
     if len(staged) == 1:  # one rename is atomic by itself
         tmp, path = staged[0]
         try:
@@ -852,7 +852,7 @@ def _move_into_place(staged: list[tuple[str, Path]]) -> None:
 
 def _back_up(path: Path) -> str:
     """Copy ``path`` to a new hidden file beside it (a symbolic link is copied as a link)."""
-    fd, backup = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".old", dir=_folder_of(path))
+    fd, backup = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".old", dir=path.parent)
     os.close(fd)
     try:
         if path.is_symlink():
@@ -907,7 +907,7 @@ def check_out_path(out: Path, inputs: list[Path]) -> None:
         with contextlib.suppress(OSError):
             if out.resolve() == path.resolve():
                 raise InputError("--out would overwrite an input file; choose another name", source=str(out))
-    folder = out.parent if str(out.parent) else Path(".")
+    folder = out.parent
     if not folder.is_dir():
         raise InputError(f"the folder {folder} does not exist", source=str(out))
     if out.is_dir():

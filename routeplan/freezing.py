@@ -161,7 +161,6 @@ def freeze_workspace(ws: Any, out: str | os.PathLike, *, card: str | os.PathLike
     out = Path(out)
     card_path = _card_path(out, card)
     check_outputs({"--out": out, "--card": card_path}, overwrite=overwrite, workspace=ws.folder)
-    _check_model_id(model_id)
     model_id, router, params, fit_metrics = load_router(ws, model_id)
     pool = load_pool(ws)
     frozen = _freeze_parts(router, params, fit_metrics, pool, model_id, confidence)
@@ -184,21 +183,6 @@ def freeze_workspace(ws: Any, out: str | os.PathLike, *, card: str | os.PathLike
                            card_path: lambda tmp: Path(tmp).write_text(card_text, encoding="utf-8")})
     return FreezeResult(str(out), str(card_path), sha, policy_id, model_id, str(params["router"]),
                         manifest["experts"], manifest["metrics"], frozen.notes)
-
-
-#: Largest model id a workspace can hold (SQLite's INTEGER is a signed 64-bit number).
-_MAX_MODEL_ID = 2**63 - 1
-
-
-def _check_model_id(model_id: int | None) -> None:
-    """Refuse a ``--model`` id beyond what SQLite can hold, before asking the database (which
-    would overflow); ids it can hold but does not are named by :func:`routeplan.fitting.load_router`."""
-    if model_id is None:
-        return
-    whole = isinstance(model_id, (int, np.integer)) and not isinstance(model_id, bool)
-    if not whole or not -_MAX_MODEL_ID <= model_id <= _MAX_MODEL_ID:
-        raise InputError(f"no model {model_id!r} in this workspace: a model id is a whole number from 1 to "
-                         f"{_MAX_MODEL_ID} (leave --model out to freeze the chosen model)")
 
 
 def _scores_changed_since(ws: Any, model_id: int) -> list[str]:

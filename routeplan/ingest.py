@@ -180,7 +180,8 @@ def import_cases(
         truth_column = "truth"
     options = {"id_column": id_column, "truth_column": truth_column, "group_column": group_column,
                "feature_columns": None if feature_columns is None else list(feature_columns)}
-    _check_roles(table, options, truth_by_default=truth_by_default, stored_features=ws.feature_columns)
+    stored_features = ws.feature_columns
+    _check_roles(table, options, truth_by_default=truth_by_default, stored_features=stored_features)
     prior = ws.input_detail("cases import", table.sha256)
     if prior is not None:
         _check_same_options(table, options, prior.get("options"))
@@ -203,7 +204,7 @@ def import_cases(
     if clash:
         raise InputError(f"column '{clash[0]}' is reserved; rename it or map it with an option", source=table.source, line=1)
     table = table.renamed(mapping)
-    features = _choose_features(ws, table, feature_columns)
+    features = _choose_features(stored_features, table, feature_columns)
     parsed = check_rows(table, load_schema("cases-row"), numeric_columns=tuple(features))
     frame = table.frame
     dup = _first_duplicate(frame["case_id"])
@@ -278,10 +279,10 @@ def _check_roles(table: Table, options: dict, *, truth_by_default: bool, stored_
         seen[name] = role
 
 
-def _choose_features(ws: Workspace, table: Table, requested: Sequence[str] | None) -> list[str]:
+def _choose_features(fixed: Sequence[str], table: Table, requested: Sequence[str] | None) -> list[str]:
+    """The feature columns: ``fixed`` (the workspace's, if any), else ``requested``, else the numeric ones."""
     frame = table.frame
     candidates = [c for c in frame.columns if c not in ("case_id", "truth", "group")]
-    fixed = ws.feature_columns
     repeated = [name for name, count in Counter(requested or ()).items() if count > 1]
     if repeated:
         raise InputError(f"--feature-columns names '{repeated[0]}' more than once; name each feature column once",

@@ -39,7 +39,7 @@ import numpy as np
 from sqlite_utils import Database
 from sqlite_utils.migrations import Migrations
 
-from .errors import InputError, WorkspaceExists, WorkspaceMissing
+from .errors import InputError, OutputError, WorkspaceExists, WorkspaceMissing
 
 __all__ = ["Workspace", "DB_NAME", "SCHEMA_VERSION", "RESERVED_ROUTE", "SQLITE_SIDECARS", "database_files",
            "refuse_workspace_files"]
@@ -245,8 +245,8 @@ class Workspace:
             folder.mkdir(parents=True, exist_ok=True)
             tmp.unlink(missing_ok=True)
         except OSError as exc:  # a part of the path is a file, no permission, read-only disk...
-            raise InputError(f"cannot create the workspace folder ({exc.strerror or exc}); choose another "
-                             "folder with --workspace", source=str(folder)) from None
+            raise OutputError.from_os_error(exc, folder, what="create the workspace folder",
+                                            hint="choose another folder with --workspace") from None
         db = None
         try:
             db = cls._connect(tmp)
@@ -260,17 +260,13 @@ class Workspace:
                 ws.log("init", {"labels": list(labels), "error_cost": float(error_cost)})
             db.close()
             os.replace(tmp, path)
-        except (sqlite3.Error, OSError) as exc:
+        except BaseException as exc:
             _discard(db, tmp)
             if not _is_storage_error(exc):
                 raise
-            reason = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
-            raise InputError(f"cannot create the workspace database ({reason}); check that the folder is "
-                             "writable and has free space, or choose another folder with --workspace",
-                             source=str(path)) from exc
-        except BaseException:
-            _discard(db, tmp)
-            raise
+            raise OutputError.from_os_error(exc, path, what="create the workspace database",
+                                            hint="check that the folder is writable and has free space, or "
+                                                 "choose another folder with --workspace") from exc
         return cls.open(folder)
 
     @classmethod
@@ -570,9 +566,15 @@ class Workspace:
         ------
         NotFitted
             If there is no such model.
+        InputError
+            If ``model_id`` is not a whole number SQLite's INTEGER can hold (it would overflow).
         """
         from .errors import NotFitted
 
+        whole = isinstance(model_id, (int, np.integer)) and not isinstance(model_id, bool)
+        if model_id is not None and not (whole and -(2**63) <= model_id < 2**63):
+            raise InputError(f"no model {model_id!r} in this workspace: a model id is a whole number from 1 to "
+                             f"{2**63 - 1} (leave --model out for the chosen model)")
         sql = "SELECT model_id, kind, params, metrics FROM models WHERE " + (
             "model_id = ?" if model_id is not None else "chosen = 1 ORDER BY model_id DESC LIMIT 1")
         row = self.db.execute(sql, (model_id,) if model_id is not None else ()).fetchone()
@@ -860,7 +862,7 @@ def _discard(db: Database | None, tmp: Path) -> None:
     if db is not None:
         with suppress(Exception):
             db.close()
-    for name in [tmp, *(tmp.with_name(tmp.name + suffix) for suffix in SQLITE_SIDECARS)]:
+    for name in _with_sidecars(tmp):
         with suppress(OSError):
             name.unlink(missing_ok=True)
 
@@ -878,7 +880,11 @@ def database_files(folder: str | Path) -> list[Path]:
     list of Path
         ``folder/routeplan.sqlite`` first, then its ``-wal``, ``-shm`` and ``-journal`` files.
     """
-    path = Path(folder) / DB_NAME
+    return _with_sidecars(Path(folder) / DB_NAME)
+
+
+def _with_sidecars(path: Path) -> list[Path]:
+    """``path`` and the SQLite sidecar files beside it (``-wal``, ``-shm``, ``-journal``)."""
     return [path] + [path.with_name(path.name + suffix) for suffix in SQLITE_SIDECARS]
 
 

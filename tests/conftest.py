@@ -8,6 +8,7 @@ bundled digits with the simulated expert of Mozannar & Sontag, ICML 2020).
 
 from __future__ import annotations
 
+import json
 import shutil
 import sqlite3
 import subprocess
@@ -123,6 +124,17 @@ def assert_one_line_error(result: Result, *fragments: str) -> str:
     for fragment in fragments:
         assert fragment in lines[0], (fragment, lines[0])
     return lines[0]
+
+
+def assert_json_failure(result: Result, *fragments: str) -> dict:
+    """Exit code 2 and, on stdout, the JSON failure ``{"error", "exit_code"}`` holding every
+    fragment (README, Command reference); returns it."""
+    assert result.exit_code == 2, (result.exit_code, result.stdout, result.stderr, result.exception)
+    data = json.loads(result.stdout)  # the json module as the reference parser
+    assert data["exit_code"] == 2
+    for fragment in fragments:
+        assert fragment in data["error"], (fragment, data["error"])
+    return data
 
 
 def routeplan_subprocess(*args: str, env: dict | None = None, timeout: float = 120) -> subprocess.CompletedProcess:

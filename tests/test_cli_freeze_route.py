@@ -26,6 +26,8 @@ import pytest
 from click.testing import CliRunner
 from jsonschema import Draft202012Validator
 
+from conftest import assert_json_failure, db_dump
+
 from routeplan.cli import cli
 from routeplan.workspace import DB_NAME
 
@@ -548,17 +550,10 @@ def test_card_basis_never_shows_a_present_share_as_zero():
 # --------------------------------------------------------------------------- hostile inputs
 
 
-def _db_dump(ws: Path) -> str:
-    with sqlite3.connect(ws / DB_NAME) as conn:
-        return "\n".join(conn.iterdump())  # sqlite3's own dump as the reference state
-
-
 def _json_failure(result, *fragments: str) -> dict:
-    """With --json a failure still prints {"error", "exit_code"} on stdout (README, Command reference)."""
+    """One line on stderr, and with --json the failure as JSON on stdout (README, Command reference)."""
     one_line_error(result, *fragments)
-    data = json.loads(result.stdout)  # the json module as the reference parser
-    assert data["exit_code"] == 2 and all(f in data["error"] for f in fragments)
-    return data
+    return assert_json_failure(result, *fragments)
 
 
 @pytest.mark.parametrize("fmt", ["csv", "parquet"])
@@ -610,7 +605,7 @@ def _lows_not_numbers(document: dict) -> None:
     document["manifest"]["features"]["lows"][0] = "x"
 
 
-def _lows_too_short(document: dict) -> None:
+def _highs_too_short(document: dict) -> None:
     document["manifest"]["features"]["highs"] = document["manifest"]["features"]["highs"][:1]
 
 
@@ -626,7 +621,7 @@ def _nan_weight(document: dict) -> None:
 
 @pytest.mark.parametrize("edit, fragment", [
     (_lows_not_numbers, "features/lows/0"),
-    (_lows_too_short, "highs must have one value per feature"),
+    (_highs_too_short, "highs must have one value per feature"),
     (_nan_weight, "holds NaN or infinity"),
 ])
 def test_rehashed_policy_edits_are_refused(built, tmp_path, edit, fragment):
@@ -676,10 +671,10 @@ def test_freeze_refuses_a_folder_where_the_card_goes(built, tmp_path):
     # default name, beside the policy, is a folder)
     ws = shutil.copytree(built["ws"], tmp_path / "ws")
     (tmp_path / "p.md").mkdir()
-    before = _db_dump(ws)
+    before = db_dump(ws)
     _json_failure(invoke(ws, "freeze", "--out", tmp_path / "p.json", "--overwrite", "--json"),
                   str(tmp_path / "p.md"), "is a folder")
-    assert not (tmp_path / "p.json").exists() and _db_dump(ws) == before
+    assert not (tmp_path / "p.json").exists() and db_dump(ws) == before
 
 
 @pytest.mark.parametrize("step", ["write", "rename"])
@@ -691,7 +686,7 @@ def test_freeze_writes_the_policy_and_the_card_all_or_none(built, tmp_path, monk
     policy, card = tmp_path / "p.json", tmp_path / "p.md"
     policy.write_text("old policy\n")
     card.write_text("old card\n")
-    before = _db_dump(ws)
+    before = db_dump(ws)
     real_write_text, real_replace = Path.write_text, os.replace
 
     def failing_write_text(self, data, *args, **kwargs):
@@ -713,7 +708,7 @@ def test_freeze_writes_the_policy_and_the_card_all_or_none(built, tmp_path, monk
     one_line_error(result, f"{card}: cannot write the file (No space left on device)")
     assert policy.read_text() == "old policy\n" and card.read_text() == "old card\n"
     assert sorted(p.name for p in tmp_path.iterdir()) == ["p.json", "p.md", "ws"]
-    assert _db_dump(ws) == before
+    assert db_dump(ws) == before
 
 
 def test_freeze_refuses_a_model_id_beyond_what_the_workspace_can_hold(built, tmp_path):

@@ -208,7 +208,8 @@ def test_dry_run_stores_nothing(ws):
         (["--budget", "5", "--due-days", "0"], "--due-days"),
         (["--budget", "5", "--due-days", "1e12"], "--due-days must be a number of days in (0, 3650]"),
         (["--budget", "5", "--max-per-expert", "0"], "--max-per-expert must be at least 1"),
-        # a finite budget so large that budget / fee overflows once was an internal error (exit 1)
+        # a finite budget so large that budget / fee overflows once was an internal error (exit 1);
+        # the README's command reference caps a round's budget, so it is a usage error (exit 2)
         (["--budget", "1e308"], "is beyond any round"),
     ],
 )
