@@ -256,36 +256,19 @@ def _score(policy: Policy, Z: np.ndarray) -> np.ndarray:
     return np.asarray(policy.router.predict_costs(X, class_proba=P / P.sum(axis=1)[:, None]), dtype=np.float64)
 
 
-#: The largest standardised value the routers' float32 inputs hold.
-_FLOAT32_MAX = float(np.finfo(np.float32).max)
-
-
-def _unscalable(policy: Policy, Z: np.ndarray) -> np.ndarray:
-    """(n, d) mask of feature values whose standardised value overflows float32 (the routers'
-    input type): finite numbers so far from the training mean that no router can score them.
-    Column by column against bounds, so that no (n, d) float copy is made."""
-    d = len(policy.spec.names)
-    out = np.zeros((Z.shape[0], d), dtype=bool)
-    with np.errstate(over="ignore", invalid="ignore"):
-        for j, (mean, scale) in enumerate(zip(policy.spec.means, policy.spec.scales)):
-            reach = _FLOAT32_MAX * float(scale)  # inf for a huge scale: no bound
-            column = Z[:, j]
-            out[:, j] = ~((column >= float(mean) - reach) & (column <= float(mean) + reach))
-    return out
-
-
 def _bad_rows(policy: Policy, Z: np.ndarray) -> np.ndarray:
     """Rows that cannot be scored: a feature too large to standardise, or (two-stage policy)
     class probabilities that are negative or do not sum to 1."""
-    return _unscalable(policy, Z).any(axis=1) | _bad_proba_rows(policy, Z)
+    far = policy.spec.unscalable(Z[:, :len(policy.spec.names)]).any(axis=1)
+    return far | _bad_proba_rows(policy, Z)
 
 
 def _row_problem(policy: Policy, row: np.ndarray) -> str:
     """What makes one input row unscorable, for a message."""
-    far = _unscalable(policy, row[None, :])[0]
+    far = policy.spec.unscalable(row[None, :len(policy.spec.names)])[0]
     if far.any():
         j = int(np.argmax(far))
-        limit = _FLOAT32_MAX * float(policy.spec.scales[j])
+        limit = policy.spec.reach()[j]
         return (f"column {policy.spec.names[j]!r} holds {row[j]:g}, too large to score: this policy takes values "
                 f"within {limit:.3g} of the training mean ({float(policy.spec.means[j]):.6g}); check the value")
     return _proba_problem(policy, row)

@@ -14,6 +14,9 @@ from .errors import InputError
 
 __all__ = ["FeatureSpec", "fit_features"]
 
+#: The largest value the routers' float32 inputs hold.
+_FLOAT32_MAX = float(np.finfo(np.float32).max)
+
 
 @dataclass(frozen=True)
 class FeatureSpec:
@@ -27,7 +30,8 @@ class FeatureSpec:
     scales : tuple of float
         Standard deviations (1.0 where a column is constant).
     lows, highs : tuple of float
-        The range seen in training; :meth:`outside_range` counts cases beyond it.
+        The range seen in training; :meth:`outside_range` counts cases beyond it
+        (:meth:`unscalable` marks values too far from the means to standardise at all).
     """
 
     names: tuple[str, ...]
@@ -48,6 +52,36 @@ class FeatureSpec:
         X = np.asarray(X, dtype=np.float64)
         pad = margin * np.asarray(self.scales)
         return ((X < np.asarray(self.lows) - pad) | (X > np.asarray(self.highs) + pad)).any(axis=1)
+
+    def unscalable(self, X: np.ndarray) -> np.ndarray:
+        """Mask of feature values too far from the training mean to standardise.
+
+        A value is unscalable when its standardised value would overflow float32, the
+        routers' input type (beyond ``np.finfo(np.float32).max``; see :meth:`reach`), or when
+        it is not a number: no router can score such a case. Checked column by column
+        against bounds, so that no (n, d) float copy of ``X`` is made.
+
+        Parameters
+        ----------
+        X : ndarray of shape (n_cases, n_features)
+            Raw feature values, in the order of :attr:`names`.
+
+        Returns
+        -------
+        ndarray of bool, shape (n_cases, n_features)
+        """
+        X = np.asarray(X)
+        out = np.zeros((X.shape[0], len(self.names)), dtype=bool)
+        with np.errstate(over="ignore", invalid="ignore"):
+            for j, (mean, reach) in enumerate(zip(self.means, self.reach())):
+                column = X[:, j]
+                out[:, j] = ~((column >= float(mean) - reach) & (column <= float(mean) + reach))
+        return out
+
+    def reach(self) -> tuple[float, ...]:
+        """How far from its training mean each feature may lie and still standardise to a
+        finite float32: ``np.finfo(np.float32).max * scale`` (inf for a huge scale: no bound)."""
+        return tuple(_FLOAT32_MAX * float(scale) for scale in self.scales)
 
     def to_dict(self) -> dict:
         """Plain data for JSON."""

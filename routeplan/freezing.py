@@ -172,8 +172,7 @@ def freeze_workspace(ws: Any, out: str | os.PathLike, *, card: str | os.PathLike
 
         frozen.manifest["router"]["class_proba_columns"] = score_columns(params["labels"])
         frozen.notes.extend(_scores_changed_since(ws, model_id))
-    policy_text, sha = render_policy(frozen.manifest, arrays)
-    manifest = json.loads(policy_text)["manifest"]  # what route will see (created time filled in)
+    policy_text, sha, manifest = render_policy(frozen.manifest, arrays)  # manifest: as route will read it
     card_text = policy_card(manifest, sha256=sha, path=out.name)
     with ws.transaction():  # the files last: if writing them fails, the records roll back
         policy_id = ws.add_policy(str(out.resolve()), sha, model_id, manifest)

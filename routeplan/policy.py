@@ -31,7 +31,7 @@ import math
 import os
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any, Mapping
+from typing import Any, Mapping, NamedTuple
 
 import numpy as np
 
@@ -42,6 +42,7 @@ __all__ = [
     "FORMAT_NAME",
     "FORMAT_VERSION",
     "SUPPORTED_VERSIONS",
+    "RenderedPolicy",
     "content_digest",
     "decode_arrays",
     "encode_arrays",
@@ -99,17 +100,37 @@ def write_policy(path: str | os.PathLike, manifest: Mapping[str, Any],
         The file could not be written (no permission, read-only file system, disk full);
         ``path`` is left as it was.
     """
-    text, digest = render_policy(manifest, arrays)
-    write_atomically(Path(path), lambda tmp: Path(tmp).write_text(text, encoding="utf-8"))
-    return digest
+    rendered = render_policy(manifest, arrays)
+    write_atomically(Path(path), lambda tmp: Path(tmp).write_text(rendered.text, encoding="utf-8"))
+    return rendered.sha256
 
 
-def render_policy(manifest: Mapping[str, Any], arrays: Mapping[str, np.ndarray]) -> tuple[str, str]:
-    """The text of a policy file and its sha256, without writing anything.
+class RenderedPolicy(NamedTuple):
+    """A policy file's text, its sha256 and the manifest it holds (:func:`render_policy`).
+
+    Attributes
+    ----------
+    text : str
+        The whole JSON document, ending with a newline.
+    sha256 : str
+        The hex sha256 stored in it.
+    manifest : dict
+        The manifest as written: plain JSON data with ``format``, ``format_version`` and
+        ``created`` filled in, equal to what :func:`read_policy` returns for the file.
+    """
+
+    text: str
+    sha256: str
+    manifest: dict
+
+
+def render_policy(manifest: Mapping[str, Any], arrays: Mapping[str, np.ndarray]) -> RenderedPolicy:
+    """The text of a policy file, its sha256 and its completed manifest, without writing anything.
 
     For a caller that writes the policy together with other files (all or none), as
-    ``routeplan freeze`` does with the policy card. :func:`write_policy` is this plus an
-    atomic write.
+    ``routeplan freeze`` does with the policy card, and needs the manifest as written (its
+    created time filled in) without parsing the text again. :func:`write_policy` is this
+    plus an atomic write.
 
     Parameters
     ----------
@@ -120,10 +141,8 @@ def render_policy(manifest: Mapping[str, Any], arrays: Mapping[str, np.ndarray])
 
     Returns
     -------
-    text : str
-        The whole JSON document, ending with a newline.
-    sha256 : str
-        The hex sha256 stored in it.
+    RenderedPolicy
+        ``(text, sha256, manifest)``.
 
     Raises
     ------
@@ -136,7 +155,8 @@ def render_policy(manifest: Mapping[str, Any], arrays: Mapping[str, np.ndarray])
         raise ValueError(f"cannot write policy: {problem}")
     digest = content_digest(body["manifest"], body["arrays"])
     document = {"manifest": body["manifest"], "arrays": body["arrays"], "sha256": digest}
-    return json.dumps(document, indent=1, allow_nan=False) + "\n", digest
+    text = json.dumps(document, indent=1, allow_nan=False) + "\n"
+    return RenderedPolicy(text, digest, body["manifest"])
 
 
 def read_policy(path: str | os.PathLike) -> tuple[dict, dict[str, np.ndarray]]:

@@ -59,8 +59,8 @@ from .acquisition import (
     select_assignments,
 )
 from .errors import InputError, NotFitted, OutputError
-from .files import write_csvs
-from .workspace import Workspace, refuse_workspace_files
+from .files import check_outputs, write_csvs
+from .workspace import Workspace
 
 __all__ = ["RoundPlan", "SheetExport", "RoundClosed", "plan_round", "export_round", "close_round", "sheet_path"]
 
@@ -590,8 +590,9 @@ def export_round(
         raise OutputError.from_os_error(exc, folder, what="create the --out folder") from exc
     experts = sorted(set(rows["expert"]))
     targets = {e: sheet_path(folder, e) for e in experts}
-    refuse_workspace_files({f"--out (the sheet of {e})": p for e, p in targets.items()}, ws.folder)
-    _check_targets(targets, overwrite)
+    _check_targets(targets)
+    check_outputs({f"--out (the sheet of {e})": p for e, p in targets.items()}, overwrite=overwrite,
+                  workspace=ws.folder)
     shown = _display_columns(ws, rows["case_id"].unique().tolist(), columns)
     sheets, frames = [], {}
     for expert in experts:
@@ -641,8 +642,10 @@ def _display_columns(ws: Workspace, case_ids: list[str], columns: list[str]) -> 
     return out
 
 
-def _check_targets(targets: dict[str, Path], overwrite: bool) -> None:
-    """Refuse two experts on one file (case-insensitive file systems) and, unless told, existing sheets."""
+def _check_targets(targets: dict[str, Path]) -> None:
+    """Refuse what :func:`routeplan.files.check_outputs` lets through: two experts whose sheets
+    differ only in letter case (one file on a case-insensitive file system), and a folder or
+    other non-file where a sheet goes, even with ``--overwrite``."""
     seen: dict[str, str] = {}
     for expert, path in targets.items():
         key = str(path).lower()
@@ -652,10 +655,6 @@ def _check_targets(targets: dict[str, Path], overwrite: bool) -> None:
     for path in targets.values():
         if path.exists() and not path.is_file():
             raise InputError(f"{path} is a folder or other non-file; move it away, since a sheet cannot replace it")
-    if not overwrite:
-        there = [p for p in targets.values() if p.exists()]
-        if there:
-            raise InputError(f"{there[0]} already exists; pass --overwrite to replace the sheets")
 
 
 # --------------------------------------------------------------------------- close

@@ -180,6 +180,19 @@ def test_freeze_writes_a_valid_recorded_policy_and_card(built):
     assert manifest["labels"] == list(LABELS) and manifest["features"]["names"] == built["names"]
 
 
+def test_freeze_records_and_describes_the_manifest_of_the_file(built):
+    # The workspace's record and the card describe the manifest exactly as the file holds it
+    # (created time included), read back here with the standard library's json parser.
+    from routeplan.card import policy_card
+
+    document = json.loads(built["policy"].read_text(encoding="utf-8"))
+    with sqlite3.connect(built["ws"] / DB_NAME) as conn:
+        (stored,) = conn.execute("SELECT manifest FROM policies WHERE sha256 = ?", (document["sha256"],)).fetchone()
+    assert json.loads(stored) == document["manifest"]
+    card = built["policy"].with_suffix(".md").read_text(encoding="utf-8")
+    assert card == policy_card(document["manifest"], sha256=document["sha256"], path=built["policy"].name)
+
+
 def test_policy_card_has_the_required_sections(built):
     card = built["policy"].with_suffix(".md").read_text(encoding="utf-8")
     # the brief's list of card contents (common practice for model cards)

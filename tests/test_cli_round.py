@@ -333,7 +333,8 @@ def test_export_keeps_filled_sheets_unless_told(ws, tmp_path):
     ok(invoke(ws, "round", "export", info["round"], "--out", out))
     sheet = next(out.glob("*.csv"))
     sheet.write_text(sheet.read_text() + "# filled in\n")
-    one_line_error(invoke(ws, "round", "export", info["round"], "--out", out), "already exists", "--overwrite")
+    one_line_error(invoke(ws, "round", "export", info["round"], "--out", out), f"{out.resolve()}/",
+                   "already exists", "--overwrite")
     assert sheet.read_text().endswith("# filled in\n")
     ok(invoke(ws, "round", "export", info["round"], "--out", out, "--overwrite"))
     assert not sheet.read_text().endswith("# filled in\n")
@@ -698,10 +699,12 @@ def test_export_into_a_folder_that_cannot_be_written_is_exit_2(ws, tmp_path, mon
     def no_folder(self, *args, **kwargs):
         raise PermissionError(errno.EACCES, os.strerror(errno.EACCES), str(self))
 
+    listing, state = sorted(tmp_path.iterdir()), dump(ws)
     monkeypatch.setattr(Path, "mkdir", no_folder)
     result = invoke(ws, "round", "export", info["round"], "--out", tmp_path / "new")
     one_line_error(result, f"{tmp_path / 'new'}: cannot create the --out folder (Permission denied)")
-    assert not (tmp_path / "new").exists()
+    # nothing written beside the folder that could not be made, and the workspace as it was
+    assert sorted(tmp_path.iterdir()) == listing and dump(ws) == state
 
 
 @pytest.mark.parametrize(

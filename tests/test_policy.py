@@ -13,6 +13,7 @@ from routeplan.errors import InputError
 from routeplan.policy import (
     content_digest,
     read_policy,
+    render_policy,
     training_fingerprint,
     write_policy,
 )
@@ -215,6 +216,22 @@ def test_write_replaces_atomically(tmp_path):
     assert first != second
     assert read_policy(path)[0]["labels"] == ["a", "b", "c"]
     assert [p.name for p in tmp_path.iterdir()] == ["p.json"]
+
+
+def test_render_hands_back_the_manifest_the_file_holds(tmp_path):
+    # The manifest render_policy returns is the one in its text, as the standard library's
+    # json parser reads it (the reference), key order included, and write_policy writes
+    # exactly that text: a caller needs no second parse.
+    manifest = {**_manifest(), "created": "2026-01-02T03:04:05+00:00"}
+    rendered = render_policy(manifest, _arrays())
+    parsed = json.loads(rendered.text)["manifest"]
+    assert rendered.manifest == parsed and list(rendered.manifest) == list(parsed)
+    path = tmp_path / "p.json"
+    assert write_policy(path, manifest, _arrays()) == rendered.sha256 == json.loads(rendered.text)["sha256"]
+    assert path.read_text(encoding="utf-8") == rendered.text
+    assert read_policy(path)[0] == rendered.manifest
+    filled = render_policy(_manifest(), _arrays())  # created time filled in where left out
+    assert filled.manifest["created"] == json.loads(filled.text)["manifest"]["created"]
 
 
 def test_training_fingerprint_ignores_order_and_sees_changes():
