@@ -885,7 +885,9 @@ def workspace_competence(
     Every check comes before anything is written: the output paths (not the workspace's
     database, not the same file twice, folder there, no file replaced without
     ``overwrite``, a plot extension matplotlib writes), a group column for ``by="group"``,
-    and, for the heatmap, at least one accuracy on the chosen basis to show.
+    and, for the heatmap, at least one accuracy on the chosen basis to show. The table and
+    the heatmap are then written all or none (:func:`routeplan.files.write_csvs`): if one
+    cannot be written, neither new file stays and files already there keep their content.
 
     Parameters
     ----------
@@ -911,9 +913,11 @@ def workspace_competence(
     InputError
         A bad output path, ``by="group"`` without an imported group column, or a heatmap
         with nothing to show.
+    OutputError
+        The table or the heatmap could not be written (no permission, a full disk...).
     """
-    from routeplan.figures import check_plot_path, competence_heatmap
-    from routeplan.files import check_outputs, write_csv
+    from routeplan.figures import check_plot_path, competence_heatmap_writer
+    from routeplan.files import check_outputs, write_csvs
     from routeplan.fitting import held_out_predictions
     from routeplan.pool import load_pool
 
@@ -932,10 +936,13 @@ def workspace_competence(
     column = "audit_accuracy" if basis == "audit" else "accuracy"
     if plot_path is not None:
         _check_plottable(getattr(report, f"by_{level}"), column, basis)
+    tables, plots = {}, {}
     if csv_path is not None:
-        write_csv(getattr(report, f"by_{by}") if by else report.accuracy, csv_path)
+        tables[csv_path] = getattr(report, f"by_{by}") if by else report.accuracy
     if plot_path is not None:
-        competence_heatmap(getattr(report, f"by_{level}"), level, plot_path, accuracy_column=column)
+        plots[plot_path] = competence_heatmap_writer(getattr(report, f"by_{level}"), level, plot_path,
+                                                     accuracy_column=column)
+    write_csvs(tables, others=plots)  # the table and the heatmap: both or neither
     return report
 
 

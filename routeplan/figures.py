@@ -2,13 +2,14 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pandas as pd
 
-__all__ = ["competence_heatmap", "rehearsal_plot", "plot_formats", "check_plot_path"]
+__all__ = ["competence_heatmap", "competence_heatmap_writer", "rehearsal_plot", "plot_formats", "check_plot_path"]
 
 #: Formats matplotlib can write that need more than matplotlib itself (pgf runs LaTeX).
 _NEEDS_MORE = frozenset({"pgf"})
@@ -96,14 +97,50 @@ def competence_heatmap(frame: pd.DataFrame, level: str, path: str | Path, *, acc
     OutputError
         The file could not be written (it is written atomically: ``path`` is left as it was).
     """
-    import matplotlib
+    from .files import write_atomically
 
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
+    path = Path(path)
+    write_atomically(path, competence_heatmap_writer(frame, level, path, accuracy_column=accuracy_column))
+    return path
+
+
+def competence_heatmap_writer(frame: pd.DataFrame, level: str, path: str | Path, *,
+                              accuracy_column: str = "accuracy") -> Callable[[str], Any]:
+    """The heatmap of :func:`competence_heatmap`, drawn now and written later.
+
+    For writing the heatmap together with other files, all or none
+    (:func:`routeplan.files.write_all_or_none`, :func:`routeplan.files.write_csvs`).
+
+    Parameters
+    ----------
+    frame, level, accuracy_column
+        As in :func:`competence_heatmap`.
+    path : str or Path
+        Where the image is to go; its extension chooses the format.
+
+    Returns
+    -------
+    callable
+        Writes the whole image, in the format of ``path``, to the path it is given.
+
+    Raises
+    ------
+    InputError
+        ``path`` has no extension, or one matplotlib cannot write.
+    """
+    fmt = check_plot_path(path)  # the format named, so the temporary name does not matter
+    fig = _competence_figure(frame, level, accuracy_column)
+    return lambda tmp: fig.savefig(tmp, format=fmt)
+
+
+def _competence_figure(frame: pd.DataFrame, level: str, accuracy_column: str) -> Any:
+    """Draw the heatmap on a figure outside pyplot (freed with its last reference, nothing to close)."""
+    from matplotlib.figure import Figure
 
     grid = frame.pivot_table(index="expert", columns=level, values=accuracy_column, aggfunc="first")
     counts = frame.pivot_table(index="expert", columns=level, values="n_scored", aggfunc="first")
-    fig, ax = plt.subplots(figsize=(1.2 + 0.9 * grid.shape[1], 1.0 + 0.5 * grid.shape[0]), dpi=120)
+    fig = Figure(figsize=(1.2 + 0.9 * grid.shape[1], 1.0 + 0.5 * grid.shape[0]), dpi=120)
+    ax = fig.subplots()
     image = ax.imshow(grid.to_numpy(dtype=float), vmin=0.0, vmax=1.0, cmap="viridis", aspect="auto")
     ax.set_xticks(range(grid.shape[1]), [str(c) for c in grid.columns], rotation=30, ha="right")
     ax.set_yticks(range(grid.shape[0]), [str(r) for r in grid.index])
@@ -118,7 +155,7 @@ def competence_heatmap(frame: pd.DataFrame, level: str, path: str | Path, *, acc
     ax.set_title(f"Accuracy per expert and {level}")
     fig.colorbar(image, ax=ax, fraction=0.04, label="accuracy")
     fig.tight_layout()
-    return _save(fig, Path(path))
+    return fig
 
 
 def rehearsal_plot(curves: pd.DataFrame, path: str | Path, *, bayes_cost: float | None,

@@ -717,17 +717,29 @@ def write_csv(frame: pd.DataFrame, path: str | Path, *, neutralise: bool = True)
     return path
 
 
-def write_csvs(frames: Mapping[Path, pd.DataFrame], *, neutralise: bool = True) -> None:
-    """Write several CSV files all or none (:func:`write_all_or_none`).
+def write_csvs(frames: Mapping[Path, pd.DataFrame], *, neutralise: bool = True,
+               others: Mapping[Path, Callable[[str], Any]] | None = None) -> None:
+    """Write several CSV files, and any other files that go with them, all or none (:func:`write_all_or_none`).
 
     Parameters
     ----------
     frames : mapping of Path to pandas.DataFrame
-        Destination and content of each file.
+        Destination and content of each CSV file.
     neutralise : bool, default=True
         As in :func:`write_csv`.
+    others : mapping of Path to callable, optional
+        Further files of the same group, written after the CSV files: the destination and
+        the function that writes its whole content to the path it is given (e.g.
+        :func:`routeplan.figures.competence_heatmap_writer`).
+
+    Raises
+    ------
+    OutputError
+        As :func:`write_all_or_none`: every destination is left as it was.
     """
-    write_all_or_none({Path(path): _csv_writer(frame, neutralise) for path, frame in frames.items()})
+    writers = {Path(path): _csv_writer(frame, neutralise) for path, frame in frames.items()}
+    writers.update({Path(path): write for path, write in (others or {}).items()})
+    write_all_or_none(writers)
 
 
 def _csv_writer(frame: pd.DataFrame, neutralise: bool) -> Callable[[str], Any]:

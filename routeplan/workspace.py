@@ -228,7 +228,8 @@ class Workspace:
         InputError
             If the labels or the error cost are not valid, or the folder or the database
             cannot be created there (no permission, read-only file system, disk full); the
-            half-made database file is removed.
+            half-made database file is removed, and so are the folders ``create`` made for
+            it, unless something else has been put in them.
         """
         labels = _check_labels(labels)
         if not (np.isfinite(error_cost) and error_cost > 0):
@@ -241,10 +242,12 @@ class Workspace:
                 "(choose another folder with --workspace)"
             )
         tmp = folder / (DB_NAME + ".creating")
+        made = _missing_folders(folder)
         try:
             folder.mkdir(parents=True, exist_ok=True)
             tmp.unlink(missing_ok=True)
         except OSError as exc:  # a part of the path is a file, no permission, read-only disk...
+            _remove_empty(made)
             raise OutputError.from_os_error(exc, folder, what="create the workspace folder",
                                             hint="choose another folder with --workspace") from None
         db = None
@@ -253,7 +256,7 @@ class Workspace:
             db.execute("PRAGMA journal_mode = WAL")
             migrations.apply(db)
             ws = cls(folder, db)
-            with ws.transaction():
+            with ws._atomic():  # a storage error is reported below, naming the file being created
                 db.conn.executemany("INSERT INTO label_set VALUES (?, ?)", list(enumerate(labels)))
                 ws._set("error_cost", float(error_cost))
                 ws._set("created_at", _now())
@@ -262,6 +265,7 @@ class Workspace:
             os.replace(tmp, path)
         except BaseException as exc:
             _discard(db, tmp)
+            _remove_empty(made)
             if not _is_storage_error(exc):
                 raise
             raise OutputError.from_os_error(exc, path, what="create the workspace database",
@@ -314,7 +318,28 @@ class Workspace:
         If the block (or the ``COMMIT``) fails, the transaction is rolled back and the error
         that stopped it is raised. Should the rollback fail as well, its failure is added to
         that error as a note (:meth:`BaseException.add_note`) rather than raised in its place.
+
+        Raises
+        ------
+        OutputError
+            SQLite could not write the database (a full disk, a read-only file, an I/O
+            error): the message names the database and SQLite's reason; the change was
+            rolled back, the original error is its ``__cause__``.
         """
+        try:
+            with self._atomic():
+                yield self
+        except sqlite3.OperationalError as exc:
+            if not _is_storage_error(exc):
+                raise
+            raise OutputError.from_os_error(
+                exc, self.folder / DB_NAME, what="write the workspace database",
+                hint="nothing was saved (the change was rolled back); free space on the disk or make the "
+                     "workspace writable, then run the command again") from exc
+
+    @contextmanager
+    def _atomic(self) -> Iterator["Workspace"]:
+        """The transaction of :meth:`transaction`, with SQLite's errors as they are."""
         conn = self.db.conn
         if conn.in_transaction:
             with self.db.atomic():
@@ -865,6 +890,25 @@ def _discard(db: Database | None, tmp: Path) -> None:
     for name in _with_sidecars(tmp):
         with suppress(OSError):
             name.unlink(missing_ok=True)
+
+
+def _missing_folders(folder: Path) -> list[Path]:
+    """The folders of ``folder``'s path that do not exist yet (what ``mkdir -p`` would make), deepest first."""
+    missing = []
+    for candidate in (folder, *folder.parents):
+        if os.path.lexists(candidate):
+            break
+        missing.append(candidate)
+    return missing
+
+
+def _remove_empty(folders: Sequence[Path]) -> None:
+    """Remove ``folders``, deepest first, while they are empty; stop at the first that is not (or is gone)."""
+    for folder in folders:
+        try:
+            folder.rmdir()  # refuses a folder with anything in it
+        except OSError:
+            return
 
 
 def database_files(folder: str | Path) -> list[Path]:

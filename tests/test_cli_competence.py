@@ -232,3 +232,30 @@ def test_a_plot_on_a_full_disk_is_exit_2_and_leaves_no_file(iris_workspace, tmp_
     assert line == f"Error: {png}: cannot write the file (No space left on device); check that the folder is " \
                    "writable and has free space, or choose another path"
     assert list(tmp_path.iterdir()) == []
+
+
+@pytest.mark.parametrize("earlier", [False, True])
+def test_csv_and_plot_are_written_all_or_none(iris_workspace, tmp_path, monkeypatch, earlier):
+    # --csv and --plot are one output (routeplan.files.write_all_or_none): when the plot cannot be
+    # put in place after the table was, neither new file stays and files already there keep their
+    # content. rename(2) may fail with ENOSPC when the folder cannot grow (POSIX.1-2017, rename).
+    import errno
+    import os
+
+    table, png = tmp_path / "table.csv", tmp_path / "heat.png"
+    if earlier:
+        table.write_text("old table\n", encoding="utf-8")
+        png.write_bytes(b"old image")
+    real = os.replace
+
+    def plot_cannot_move(src, dst, **kwargs):
+        if Path(dst) == png:
+            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+        return real(src, dst, **kwargs)
+
+    monkeypatch.setattr(os, "replace", plot_cannot_move)
+    line = _refused(iris_workspace[0], "--csv", table, "--plot", png, "--overwrite")
+    assert line.startswith(f"Error: {png}: cannot write the file (No space left on device)")
+    if earlier:
+        assert table.read_text(encoding="utf-8") == "old table\n" and png.read_bytes() == b"old image"
+    assert sorted(p.name for p in tmp_path.iterdir()) == (["heat.png", "table.csv"] if earlier else [])

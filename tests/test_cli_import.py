@@ -674,3 +674,65 @@ def test_a_damaged_database_is_an_internal_fault_without_traceback(tmp_path):
     assert done.returncode in (1, 2)
     assert "Traceback" not in done.stderr
     assert len(done.stderr.strip().splitlines()) == 1
+
+
+# --------------------------------------------------------------------------- storage failures
+
+
+def _storage_limited(monkeypatch, pragma: str) -> None:
+    """Open every workspace with ``pragma`` set, so that SQLite itself refuses to write.
+
+    ``max_page_count`` at the current size makes the next new page fail with SQLITE_FULL,
+    "database or disk is full", as a full disk does; ``query_only`` makes every write fail
+    with SQLITE_READONLY, "attempt to write a readonly database", as a read-only file does
+    (sqlite.org, "Pragma statements" and "Result and Error Codes"). Real SQLite errors,
+    simulated this way because the tests run as root, where file modes do not stop writes.
+    """
+    from routeplan.workspace import Workspace
+
+    real = Workspace._connect
+
+    def limited(path):
+        db = real(path)
+        pages = db.execute("PRAGMA page_count").fetchone()[0]
+        db.execute(pragma.format(pages=pages))
+        return db
+
+    monkeypatch.setattr(Workspace, "_connect", staticmethod(limited))
+
+
+_STORAGE_LIMITS = [
+    ("PRAGMA max_page_count = {pages}", "database or disk is full"),
+    ("PRAGMA query_only = ON", "attempt to write a readonly database"),
+]
+
+
+@pytest.mark.parametrize("pragma, reason", _STORAGE_LIMITS)
+def test_a_database_that_cannot_be_written_is_exit_2_and_keeps_the_workspace(stocked_ws, write_file,
+                                                                            monkeypatch, pragma, reason):
+    # A full disk or a read-only database is the user's to fix (routeplan.errors.OutputError):
+    # exit 2 with one line naming the database and SQLite's reason, and the transaction
+    # rolled back, so the workspace is exactly as it was (routeplan.workspace docstring).
+    from routeplan.workspace import DB_NAME
+
+    rows = "".join(f"n{i:04d},{i * 0.5},{-i * 0.25},\n" for i in range(600))  # far more than one page
+    cases = write_file("many.csv", "case_id,f1,f2,truth\n" + rows)
+    before = db_dump(stocked_ws)
+    _storage_limited(monkeypatch, pragma)
+    result = run_cli(stocked_ws, "cases", "import", cases)
+    line = assert_one_line_error(result, f"{stocked_ws / DB_NAME}: cannot write the workspace database ({reason})",
+                                 "the change was rolled back")
+    assert line.startswith("Error: ")
+    assert db_dump(stocked_ws) == before
+
+
+def test_a_storage_failure_with_json_prints_the_json_failure(stocked_ws, monkeypatch):
+    # --json failures are JSON on stdout (README, Command reference), storage errors included
+    from conftest import assert_json_failure
+    from routeplan.workspace import DB_NAME
+
+    before = db_dump(stocked_ws)
+    _storage_limited(monkeypatch, "PRAGMA query_only = ON")
+    result = run_cli(stocked_ws, "experts", "add", "carol", "--fee", "0.3", "--json")
+    assert_json_failure(result, str(stocked_ws / DB_NAME), "attempt to write a readonly database")
+    assert db_dump(stocked_ws) == before

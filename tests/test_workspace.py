@@ -278,7 +278,7 @@ def test_create_on_a_full_disk_removes_the_half_made_database(tmp_path, monkeypa
     monkeypatch.setattr(routeplan.workspace.migrations, "apply", full)
     with pytest.raises(InputError, match="cannot create the workspace database \\(database or disk is full\\)"):
         Workspace.create(tmp_path / "w", ["a", "b"])
-    assert list((tmp_path / "w").iterdir()) == []
+    assert list(tmp_path.iterdir()) == []  # the folder create made is gone too
 
 
 def test_init_where_sqlite_cannot_write_is_exit_2(tmp_path, monkeypatch):
@@ -289,3 +289,41 @@ def test_init_where_sqlite_cannot_write_is_exit_2(tmp_path, monkeypatch):
     result = run_cli(tmp_path, "init", "--labels", "a,b")
     assert_one_line_error(result, str(tmp_path / DB_NAME), "unable to open database file")
     assert list(tmp_path.iterdir()) == []
+
+
+def test_init_removes_the_folders_it_made_when_the_database_fails(tmp_path, monkeypatch):
+    # A failed command leaves the disk as it found it (routeplan.cli docstring: "the workspace is
+    # left as it was"); init made both folders of the path, so it removes both, deepest first.
+    from conftest import assert_one_line_error
+
+    folder = tmp_path / "new" / "deeper"
+    monkeypatch.setattr(Workspace, "_connect", staticmethod(_connect_fails))
+    result = run_cli(folder, "init", "--labels", "a,b")
+    assert_one_line_error(result, str(folder / DB_NAME), "unable to open database file")
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_create_keeps_a_folder_that_was_there_before(tmp_path, monkeypatch):
+    # Only what create made is removed (common practice: clean up your own files, never the
+    # user's); an empty folder the user made stays, and so does its parent.
+    folder = tmp_path / "mine"
+    folder.mkdir()
+    monkeypatch.setattr(Workspace, "_connect", staticmethod(_connect_fails))
+    with pytest.raises(InputError, match="cannot create the workspace database"):
+        Workspace.create(folder / "made", ["a", "b"])
+    assert folder.is_dir() and list(folder.iterdir()) == []
+
+
+def test_create_keeps_a_folder_it_made_once_other_files_are_in_it(tmp_path, monkeypatch):
+    # Another program wrote into the new folder while create ran: the folder and that file stay
+    # (common practice: never delete what you did not write).
+    folder = tmp_path / "new"
+
+    def other_file_then_fail(path):
+        (path.parent / "notes.txt").write_text("not routeplan's", encoding="utf-8")
+        _connect_fails(path)
+
+    monkeypatch.setattr(Workspace, "_connect", staticmethod(other_file_then_fail))
+    with pytest.raises(InputError, match="cannot create the workspace database"):
+        Workspace.create(folder, ["a", "b"])
+    assert [p.name for p in folder.iterdir()] == ["notes.txt"]
