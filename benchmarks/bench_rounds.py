@@ -52,7 +52,7 @@ TOLERANCE = 0.01
 GOAL_RATIO, AIM_RATIO = 1 / 3, 1 / 5
 SCENARIOS = {
     "synthetic": {"first": 10.0, "last": 640.0, "n_rounds": 13, "n_regions": 6},
-    "digits": {"first": 1.0, "last": 64.0, "n_rounds": 13, "n_regions": 10},
+    "digits": {"first": 0.25, "last": 64.0, "n_rounds": 17, "n_regions": 10},
 }
 
 
@@ -237,18 +237,22 @@ def main() -> None:
     router = {}
     from probe_gap import parse_option  # benchmarks/ is the script's folder, first on sys.path
 
+    from routeplan.learner import EnsembleRouter, PluginRouter
+
+    defaults = EnsembleRouter().get_params()  # the plug-in router's settings and n_members
     for item in args.router:
-        key, value = parse_option(item)  # JSON: numbers, true / false, lists
-        if isinstance(value, str):
+        key, value = parse_option(item)  # JSON: numbers, true / false, lists; a word for a word setting
+        if isinstance(value, str) and not isinstance(defaults.get(key), str):
             parser.error(f"--router {item}: not KEY=VALUE with a JSON value")
         router[key] = value
-    from routeplan.learner import EnsembleRouter
-
-    known = set(EnsembleRouter().get_params())  # the plug-in router's settings and n_members
-    unknown = sorted(set(router) - known)
+    unknown = sorted(set(router) - set(defaults))
     if unknown:
         parser.error(f"--router {unknown[0]}: not a setting of the plug-in router "
-                     f"(one of {', '.join(sorted(known))})")
+                     f"(one of {', '.join(sorted(defaults))})")
+    try:  # a bad value fails here, not in every worker
+        PluginRouter(**{k: v for k, v in router.items() if k != "n_members"})._check_params()
+    except (TypeError, ValueError) as exc:
+        parser.error(f"--router: {exc}")
     tasks = [(k, s) for k in kinds for s in range(args.first_seed, args.first_seed + args.seeds)]
     planner = {}
     for item in args.planner:

@@ -459,22 +459,48 @@ class _BaseRouter(BaseEstimator):
         self._no_blend()
         if M == 0:
             return
-        known = train.known
-        right = (train.answers == train.y[:, None]) & known
-        # start from each expert's smoothed accuracy (rule of succession)
-        prior = (right.sum(0) + 1.0) / (known.sum(0) + 2.0)
-        with torch.no_grad():
-            net[-1].bias.copy_(torch.from_numpy(_logit(prior).astype(np.float32)))
         if warn:
             self._correctness_warnings(train, val)
+        history = self._train_correctness(net, train, val, gen, progress=progress, cancel=cancel)
+        if not train.known.any():
+            return
+        self.history_["correctness"] = history
+        if self.logistic_blend:
+            self._fit_blend(train, val)
+        if self.calibrate:
+            self._calibrate_correctness(val)
+
+    def _train_correctness(self, net: nn.Module, train: _Part, val: _Part, gen: torch.Generator, *,
+                           offsets: tuple[np.ndarray, np.ndarray] | None = None, progress: Any = None,
+                           cancel: threading.Event | None = None, name: str = "expert correctness"
+                           ) -> list:
+        """Train a correctness network on the known answers (weighted log-loss); return its history.
+
+        ``offsets``, (n_train, M) and (n_val, M) logits, are added to the network's output
+        in training and validation (an offset in the sense of generalised linear models:
+        McCullagh & Nelder, *Generalized Linear Models*, 2nd ed., 1989, sec. 6.2.5), so
+        the network learns only where the answers depart from them. Without offsets the
+        output bias starts at each expert's smoothed accuracy (rule of succession); with
+        them, at 0.
+        """
+        M = self.n_experts_
+        known = train.known
+        right = (train.answers == train.y[:, None]) & known
+        # start from each expert's smoothed accuracy (rule of succession), or from the offsets
+        prior = np.full(M, 0.5) if offsets is not None else (right.sum(0) + 1.0) / (known.sum(0) + 2.0)
+        with torch.no_grad():
+            net[-1].bias.copy_(torch.from_numpy(_logit(prior).astype(np.float32)))
         rows = known.any(axis=1)
         if not rows.any():
-            return
+            return []
+        off_train, off_val = (np.zeros((train.X.shape[0], M)), np.zeros((val.X.shape[0], M))) \
+            if offsets is None else offsets
         tensors = (self._std(train.X[rows]), torch.from_numpy(right[rows].astype(np.float32)),
-                   torch.from_numpy(train.weights[rows].astype(np.float32)))
+                   torch.from_numpy(train.weights[rows].astype(np.float32)),
+                   torch.from_numpy(off_train[rows].astype(np.float32)))
         v_known = val.known
         v_right = ((val.answers == val.y[:, None]) & v_known).astype(np.float32)
-        Xv = self._std(val.X)
+        Xv, v_off = self._std(val.X), torch.from_numpy(off_val.astype(np.float32))
         v_t, v_w = torch.from_numpy(v_right), torch.from_numpy(val.weights.astype(np.float32))
         settings = self._settings()
         settings.progress, settings.cancel = progress, cancel
@@ -482,22 +508,17 @@ class _BaseRouter(BaseEstimator):
         if not v_known.any():
             settings.max_epochs, settings.patience = min(20, settings.max_epochs), 10**9
 
-        def loss_fn(m: nn.Module, xb: torch.Tensor, tb: torch.Tensor, wb: torch.Tensor):
-            bce = F.binary_cross_entropy_with_logits(m(xb), tb, reduction="none")
+        def loss_fn(m: nn.Module, xb: torch.Tensor, tb: torch.Tensor, wb: torch.Tensor, ob: torch.Tensor):
+            bce = F.binary_cross_entropy_with_logits(m(xb) + ob, tb, reduction="none")
             return (wb * bce).sum() / (wb > 0).sum().clamp(min=1)
 
         def val_score(m: nn.Module) -> tuple[float, float]:
             if not v_known.any():  # nothing to score: any finite network will do
                 return (0.0, 0.0) if bool(torch.isfinite(m(Xv)).all()) else (np.inf, np.inf)
-            bce = F.binary_cross_entropy_with_logits(m(Xv), v_t, reduction="none")
+            bce = F.binary_cross_entropy_with_logits(m(Xv) + v_off, v_t, reduction="none")
             return (float((v_w * bce).sum() / v_w.sum()), 0.0)
 
-        self.history_["correctness"] = _train_loop(net, loss_fn, tensors, val_score, settings,
-                                                   gen, "expert correctness")
-        if self.logistic_blend:
-            self._fit_blend(train, val)
-        if self.calibrate:
-            self._calibrate_correctness(val)
+        return _train_loop(net, loss_fn, tensors, val_score, settings, gen, name)
 
     def _no_blend(self) -> None:
         """The network alone: zero logistic coefficients, network weight 1 per expert."""
@@ -526,9 +547,13 @@ class _BaseRouter(BaseEstimator):
         """Standardised features (clipped as when scoring), float64."""
         return _standardised(np.asarray(X, dtype=np.float64), self.x_mean_, self.x_scale_)
 
-    def _correctness_logits(self, X: np.ndarray) -> np.ndarray:
+    def _correctness_logits(self, X: np.ndarray, P: np.ndarray | None = None) -> np.ndarray:
         """Each expert's correctness logit before calibration, (n, M) float64: the network's,
-        blended with the logistic regression where ``correctness_mix_`` is below 1."""
+        blended with the logistic regression where ``correctness_mix_`` is below 1.
+
+        ``P``, the calibrated class probabilities of the rows, is for routers whose
+        correctness model takes the class route as an offset (the plug-in router); here
+        it is not used."""
         Z = _forward(self.correctness_net_, X, self.x_mean_, self.x_scale_).astype(np.float64)
         mix = self.correctness_mix_  # set by every fit and load (_no_blend at least)
         if np.all(mix == 1.0):
@@ -552,10 +577,13 @@ class _BaseRouter(BaseEstimator):
             warnings.warn("no known answer in the validation split: the correctness model "
                           "trains for a fixed 20 epochs", stacklevel=4)
 
-    def _calibrate_correctness(self, val: _Part) -> None:
-        """Platt scaling per expert on the validation answers that are known."""
-        Z = self._correctness_logits(val.X)
-        report = self.calibration_.setdefault("experts", [])
+    def _calibrate_correctness(self, val: _Part, Z: np.ndarray | None = None) -> None:
+        """Platt scaling per expert on the validation answers that are known.
+
+        ``Z``: the validation rows' correctness logits, when they need more than ``val.X``
+        (default :meth:`_correctness_logits` of ``val.X``); the report is written afresh."""
+        Z = self._correctness_logits(val.X) if Z is None else Z
+        report = self.calibration_["experts"] = []
         for j in range(self.n_experts_):
             k = val.known[:, j]
             t = (val.answers[k, j] == val.y[k]).astype(np.float64)
@@ -567,11 +595,11 @@ class _BaseRouter(BaseEstimator):
             report.append({"expert": j, "n_known": int(k.sum()), "platt_a": a, "platt_b": b,
                            "ece_before": before, "ece_after": after})
 
-    def _correct_proba(self, X: np.ndarray) -> np.ndarray:
-        """Calibrated P(expert j right | x), (n, M) float64."""
+    def _correct_proba(self, X: np.ndarray, P: np.ndarray | None = None) -> np.ndarray:
+        """Calibrated P(expert j right | x), (n, M) float64 (``P`` as in :meth:`_correctness_logits`)."""
         if self.n_experts_ == 0:
             return np.zeros((X.shape[0], 0))
-        Z = self._correctness_logits(X)
+        Z = self._correctness_logits(X, P)
         return cal.apply_platt(Z, self.expert_platt_[:, 0], self.expert_platt_[:, 1])
 
     def _imputed(self, part: _Part, q: np.ndarray) -> np.ndarray:

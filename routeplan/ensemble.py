@@ -21,7 +21,7 @@ from routeplan._routerbase import (
     _init_common,
     _jsonable,
 )
-from routeplan.plugin import ExpectedCostRouting, PluginRouter
+from routeplan.plugin import CLASS_OFFSET_DOC, ExpectedCostRouting, PluginRouter
 
 #: Prefix of member ``i``'s arrays in :meth:`EnsembleRouter.get_arrays`.
 _MEMBER = "member{}."
@@ -52,7 +52,7 @@ class EnsembleRouter(ExpectedCostRouting, BaseEstimator):
     Parameters
     ----------
     n_members : int, default=3
-        Plug-in routers averaged.""" + _COMMON_PARAMS_DOC + """
+        Plug-in routers averaged.""" + _COMMON_PARAMS_DOC + CLASS_OFFSET_DOC + """
     Attributes
     ----------
     members_ : list of PluginRouter
@@ -75,7 +75,8 @@ class EnsembleRouter(ExpectedCostRouting, BaseEstimator):
 
     def __init__(self, *, n_members: int = 3, n_classes: int | None = None, head: str = "mlp",
                  hidden: tuple[int, ...] | None = None, correctness_head: str | None = None,
-                 logistic_blend: bool = False, max_epochs: int = 200, batch_size: int = 512,
+                 logistic_blend: bool = False, class_offset: str = "auto",
+                 max_epochs: int = 200, batch_size: int = 512,
                  learning_rate: float = 1e-3,
                  weight_decay: float = 1e-4, patience: int = 15,
                  early_stopping: str = "loss", validation_fraction: float = 0.2,

@@ -49,6 +49,37 @@ from routeplan._routerbase import (
 # --------------------------------------------------------------------------------------
 
 
+#: Values of ``class_offset``: per expert by validation, for every expert, or not at all.
+CLASS_OFFSET_CHOICES = ("auto", "always", "never")
+
+CLASS_OFFSET_DOC = """    class_offset : {"auto", "always", "never"}, default="auto"
+        Two-stage mode only: also train a correctness network with the class route as an
+        offset, and use it for each expert whose validation log-loss it clearly lowers
+        (``"auto"``: by more than one standard error), for every expert, or not at all.
+        Chosen: ``offset_experts_``.
+"""
+
+
+def _weighted_log_loss(Z: np.ndarray, part: _Part) -> np.ndarray:
+    """Each answer's weighted log-loss under correctness logits ``Z``, (n, M); 0 where unknown."""
+    right = (part.answers == part.y[:, None]).astype(np.float64)
+    w = np.where(part.known, part.weights, 0.0)
+    return w * (np.logaddexp(0.0, Z) - right * Z)
+
+
+def _clearly_lower(loss: np.ndarray, other: np.ndarray, known: np.ndarray) -> np.ndarray:
+    """Per expert (column): is the mean of ``loss`` below ``other``'s by more than one standard
+    error of the paired difference over the known rows? The one-standard-error rule (Breiman,
+    Friedman, Olshen & Stone, *Classification and Regression Trees*, 1984, sec. 3.4.3): keep
+    the simpler model unless the data clearly favour the other."""
+    out = np.zeros(loss.shape[1], dtype=bool)
+    for j in range(loss.shape[1]):
+        d = (loss - other)[known[:, j], j]
+        if d.size >= 2:
+            out[j] = d.mean() + d.std(ddof=1) / np.sqrt(d.size) < 0
+    return out
+
+
 def _class_accuracy(part: _Part, n_classes: int, strength: float = 2.0) -> np.ndarray:
     """Each expert's accuracy per true class, (M, K), IPS-weighted and shrunk.
 
@@ -118,8 +149,19 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
     correctness probabilities Platt-scaled on the validation split
     (:mod:`routeplan.calibration`).
 
+    In two-stage mode the class route (each expert's accuracy per true class, weighted by
+    ``P(y | x)``: the diagonal of the class-conditional confusion model of Dawid & Skene,
+    "Maximum likelihood estimation of observer error-rates using the EM algorithm",
+    JRSS C 28(1), 1979) also enters the correctness model as an offset: a second network
+    learns only where each expert departs from it, and ``class_offset="auto"`` uses it for
+    an expert when its validation log-loss is lower than the plain network's by more than
+    one standard error of the paired difference. For experts whose reliability follows the
+    true class, the offset does most of the work from a few dozen answers; for experts
+    whose reliability follows the features, the network alone is kept. The imported probabilities are out of sample for the answers (unlike the
+    classifier's own on its training cases), which is why the offset is two-stage only.
+
     Parameters
-    ----------""" + _COMMON_PARAMS_DOC + """
+    ----------""" + _COMMON_PARAMS_DOC + CLASS_OFFSET_DOC + """
     Attributes
     ----------
     n_features_in_, n_classes_, n_experts_ : int
@@ -139,6 +181,11 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
         Platt ``(a, b)`` per expert.
     class_accuracy_ : ndarray of shape (M, K)
         Each expert's shrunk accuracy per true class (the class route).
+    correctness_offset_net_ : torch.nn.Module or None
+        The correctness network trained with the class route as an offset (two-stage, and
+        kept only when some expert uses it).
+    offset_experts_ : ndarray of bool, shape (M,)
+        The experts whose correctness logit is that network's plus the offset.
     expert_stack_ : ndarray of shape (M, 3)
         Stacking coefficients per expert: network logit, class route, intercept.
     calibration_ : dict
@@ -149,11 +196,12 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
         Validation scores per epoch of each network.
     """
 
-    _net_names = ("classifier", "correctness")
+    _net_names = ("classifier", "correctness", "correctness_offset")
 
     def __init__(self, *, n_classes: int | None = None, head: str = "mlp",
                  hidden: tuple[int, ...] | None = None, correctness_head: str | None = None,
-                 logistic_blend: bool = False, max_epochs: int = 200, batch_size: int = 512,
+                 logistic_blend: bool = False, class_offset: str = "auto",
+                 max_epochs: int = 200, batch_size: int = 512,
                  learning_rate: float = 1e-3,
                  weight_decay: float = 1e-4, patience: int = 15,
                  early_stopping: str = "loss", validation_fraction: float = 0.2,
@@ -181,17 +229,28 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
 
         Returns""")
 
+    def _check_params(self) -> None:
+        super()._check_params()
+        if self.class_offset not in CLASS_OFFSET_CHOICES:
+            raise ValueError(f"class_offset must be one of {', '.join(map(repr, CLASS_OFFSET_CHOICES))}, "
+                             f"got {self.class_offset!r}")
+
     def _fit_parts(self, train: _Part, val: _Part, gen: torch.Generator) -> None:
         """Correctness model and classifier (side by side, see below); then calibration."""
         self.calibration_ = {}
+        self.class_accuracy_ = _class_accuracy(train, self.n_classes_)
+        self.offset_experts_ = np.zeros(self.n_experts_, dtype=bool)
+        self.correctness_offset_net_ = None
         if self.two_stage_:
-            self._fit_correctness(train, val, gen)
-            self.classifier_net_ = None
             Z = np.log(np.clip(val.class_proba, _EPS, 1.0))
+            self.class_temperature_ = cal.fit_temperature(Z, val.y) if self.calibrate else 1.0
+            self._fit_correctness(train, val, gen)
+            self._fit_class_offset(train, val, gen)
+            self.classifier_net_ = None
         else:
             self.classifier_net_ = self._fit_both(train, val, gen)
             Z = _forward(self.classifier_net_, val.X, self.x_mean_, self.x_scale_)
-        self.class_temperature_ = cal.fit_temperature(Z, val.y) if self.calibrate else 1.0
+            self.class_temperature_ = cal.fit_temperature(Z, val.y) if self.calibrate else 1.0
         P_val = cal.apply_temperature(Z, self.class_temperature_)
         self.calibration_["classes"] = {
             "temperature": self.class_temperature_,
@@ -199,17 +258,61 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
             "ece_after": cal.expected_calibration_error(P_val, val.y)}
         self._fit_class_route(train, val, P_val)
 
+    def _fit_class_offset(self, train: _Part, val: _Part, gen: torch.Generator) -> None:
+        """Two-stage: the correctness network with the class route as an offset; per expert,
+        keep it where its validation log-loss is clearly below the plain network's (``"auto"``)."""
+        M = self.n_experts_
+        if self.class_offset == "never" or M == 0 or not train.known.any():
+            return
+        off_train, off_val = (self._class_offset_logits(self._two_stage_proba(part.class_proba))
+                              for part in (train, val))
+        net = self._correctness_net()
+        self.history_["correctness_offset"] = self._train_correctness(
+            net, train, val, gen, offsets=(off_train, off_val), name="expert correctness (class offset)")
+        if self.class_offset == "always":
+            chosen = np.ones(M, dtype=bool)
+        else:
+            plain = self._correctness_logits(val.X)
+            offset = _forward(net, val.X, self.x_mean_, self.x_scale_).astype(np.float64) + off_val
+            chosen = _clearly_lower(_weighted_log_loss(offset, val), _weighted_log_loss(plain, val), val.known)
+        if not chosen.any():
+            return
+        self.offset_experts_, self.correctness_offset_net_ = chosen, net
+        if self.calibrate:  # Platt again, on the logits now in use
+            self._calibrate_correctness(val, self._correctness_logits(
+                val.X, self._two_stage_proba(val.class_proba)))
+
+    def _two_stage_proba(self, class_proba: np.ndarray) -> np.ndarray:
+        """Imported class probabilities, temperature-scaled as the router uses them."""
+        return cal.apply_temperature(np.log(np.clip(class_proba, _EPS, 1.0)), self.class_temperature_)
+
+    def _class_offset_logits(self, P: np.ndarray) -> np.ndarray:
+        """The class route's logit per expert, ``logit(P @ class_accuracy_.T)``, (n, M)."""
+        return _logit(P @ self.class_accuracy_.T)
+
+    def _correctness_logits(self, X: np.ndarray, P: np.ndarray | None = None) -> np.ndarray:
+        """The plain network's logits (blended, see the base class); for the experts in
+        ``offset_experts_``, the offset network's plus the class route of ``P``."""
+        Z = super()._correctness_logits(X)
+        mask = getattr(self, "offset_experts_", None)
+        if mask is None or not mask.any():
+            return Z
+        if P is None:
+            raise ValueError("this router's correctness model needs the class probabilities")
+        Z_off = _forward(self.correctness_offset_net_, X, self.x_mean_, self.x_scale_).astype(np.float64)
+        Z[:, mask] = Z_off[:, mask] + self._class_offset_logits(P)[:, mask]
+        return Z
+
     def _fit_class_route(self, train: _Part, val: _Part, P_val: np.ndarray) -> None:
         """Per-class expert accuracy, and its stacking with the feature-based model."""
-        M, K = self.n_experts_, self.n_classes_
-        self.class_accuracy_ = _class_accuracy(train, K)
+        M = self.n_experts_
         self.expert_stack_ = np.tile([1.0, 0.0, 0.0], (M, 1))
         self.expert_stack_[:, 0] = self.expert_platt_[:, 0]
         self.expert_stack_[:, 2] = self.expert_platt_[:, 1]
         if M == 0 or not self.calibrate:
             return
-        z_x = self._correctness_logits(val.X)
-        z_c = _logit(P_val @ self.class_accuracy_.T)
+        z_x = self._correctness_logits(val.X, P_val)
+        z_c = self._class_offset_logits(P_val)
         reports = self.calibration_.get("experts", [{} for _ in range(M)])
         for j, rep in enumerate(reports):
             k = val.known[:, j]
@@ -313,8 +416,8 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
         M = self.n_experts_
         if M == 0:
             return np.zeros((X.shape[0], 0))
-        z_x = self._correctness_logits(X)
-        z_c = _logit(P @ self.class_accuracy_.T)
+        z_x = self._correctness_logits(X, P)
+        z_c = self._class_offset_logits(P)
         S = self.expert_stack_
         return expit(S[:, 0] * z_x + S[:, 1] * z_c + S[:, 2])
 
@@ -370,7 +473,8 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
     def _extra_arrays(self) -> dict[str, np.ndarray]:
         """The class temperature, per-class accuracies and stacking weights."""
         return {"class_temperature": np.array([self.class_temperature_]),
-                "class_accuracy": self.class_accuracy_, "expert_stack": self.expert_stack_}
+                "class_accuracy": self.class_accuracy_, "expert_stack": self.expert_stack_,
+                "offset_experts": self.offset_experts_.astype(np.int64)}
 
     def _restore(self, arrays: Mapping[str, np.ndarray], meta: Mapping[str, Any]) -> None:
         """Rebuild the networks and calibration."""
@@ -379,6 +483,10 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
         M, K = self.n_experts_, self.n_classes_
         self.class_accuracy_ = np.asarray(arrays["class_accuracy"], np.float64).reshape(M, K)
         self.expert_stack_ = np.asarray(arrays["expert_stack"], np.float64).reshape(M, 3)
+        # arrays written before the class offset existed have no such entry: no expert uses it
+        self.offset_experts_ = np.asarray(arrays.get("offset_experts", np.zeros(M)), np.int64).reshape(M) != 0
+        self.correctness_offset_net_ = _load_net(self._correctness_net(), "correctness_offset", arrays) \
+            if self.offset_experts_.any() else None
         self.classifier_net_ = None if self.two_stage_ else _load_net(
             _make_net(self.n_features_in_, self.n_classes_, self.head, self.hidden_),
             "classifier", arrays)

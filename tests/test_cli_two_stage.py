@@ -76,6 +76,10 @@ def test_fit_keeps_the_team_model_and_beats_model_and_expert(team, tmp_path):
 
     fit = json.loads(invoke(ws, "fit", "--seed", "0", "--max-epochs", "40", "--json").stdout)
     assert any(note.startswith("two-stage") for note in fit["notes"])
+    # the expert of Mozannar & Sontag is right or not by the true class alone (the
+    # class-conditional model of Dawid & Skene, 1979): with every answer known, the class
+    # offset is clearly better on validation, and fit says the kept router uses it
+    assert any("correctness model of oracle_k starts from" in note for note in fit["notes"]), fit["notes"]
     rows = {row["router"]: row for row in fit["table"]}
     assert set(r for r in rows if not r.endswith("alone") and not r.startswith("model alone")) == {
         "plugin-ensemble", "plugin"}
