@@ -6,7 +6,7 @@ import contextlib
 import math
 import threading
 from collections.abc import Mapping
-from concurrent.futures import ThreadPoolExecutor
+from concurrent.futures import ThreadPoolExecutor, wait
 from typing import Any
 
 import numpy as np
@@ -364,6 +364,8 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
             done.add_done_callback(lambda f: f.exception() is not None and settings.cancel.set())
             try:
                 self._train_classifier(clf_net, train, val, None, settings, clf_gen)
+                while not done.done():  # timed waits: a Ctrl-C that the system delivered to the
+                    wait([done], timeout=0.1)  # other thread is raised here within 0.1 s
                 done.result()
             except BaseException:  # including Ctrl-C while waiting for the other network
                 stop_correctness.set()
