@@ -196,6 +196,9 @@ def test_ctrl_c_while_waiting_for_the_correctness_fit_stops_it(small, monkeypatc
 
     monkeypatch.setattr(plugin, "_FIT_WORKERS", 2)
     monkeypatch.setattr(PluginRouter, "_train_classifier", lambda self, *a, **k: None)
+    # Python's own Ctrl-C handler, whatever the suite inherited: a shell starts background
+    # jobs with SIGINT ignored, and Python then installs no handler (Python docs, signal module)
+    previous = signal.signal(signal.SIGINT, signal.default_int_handler)
     X, y, A, fees = small
     router = PluginRouter(random_state=0, max_epochs=20_000, patience=10**9, hidden=(16,))
     timer = threading.Timer(1.0, os.kill, (os.getpid(), signal.SIGINT))
@@ -205,6 +208,7 @@ def test_ctrl_c_while_waiting_for_the_correctness_fit_stops_it(small, monkeypatc
             router.fit(X, y, A, fees=fees)
     finally:
         timer.cancel()
+        signal.signal(signal.SIGINT, previous)
     assert 1 <= len(router.history_["correctness"]) < 20_000
 
 
