@@ -595,11 +595,11 @@ class _BaseRouter(BaseEstimator):
             report.append({"expert": j, "n_known": int(k.sum()), "platt_a": a, "platt_b": b,
                            "ece_before": before, "ece_after": after})
 
-    def _correct_proba(self, X: np.ndarray, P: np.ndarray | None = None) -> np.ndarray:
-        """Calibrated P(expert j right | x), (n, M) float64 (``P`` as in :meth:`_correctness_logits`)."""
+    def _correct_proba(self, X: np.ndarray) -> np.ndarray:
+        """Calibrated P(expert j right | x), (n, M) float64."""
         if self.n_experts_ == 0:
             return np.zeros((X.shape[0], 0))
-        Z = self._correctness_logits(X, P)
+        Z = self._correctness_logits(X)
         return cal.apply_platt(Z, self.expert_platt_[:, 0], self.expert_platt_[:, 1])
 
     def _imputed(self, part: _Part, q: np.ndarray) -> np.ndarray:

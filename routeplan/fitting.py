@@ -22,7 +22,7 @@ from .pool import Pool, load_pool
 from .stats import effective_sample_size
 from .workspace import Workspace
 
-__all__ = ["FitReport", "answer_weights", "class_offset_experts", "round_weights", "fit_workspace", "held_out_predictions", "load_router", "MIN_TRUTH_CASES"]
+__all__ = ["FitReport", "answer_weights", "round_weights", "fit_workspace", "held_out_predictions", "load_router", "MIN_TRUTH_CASES"]
 
 MIN_TRUTH_CASES = 40
 """Fewer cases with truth than this cannot be split into fitting and selection parts usefully."""
@@ -154,7 +154,7 @@ def fit_workspace(
     if class_proba is not None:
         table.attrs["notes"].append("two-stage: your model's imported probabilities are the classifier (temperature-"
                                     "scaled only); the routers learned whom to defer to")
-        offset = class_offset_experts(fitted[best], list(pool.experts))
+        offset = _class_offset_experts(fitted[best], list(pool.experts))
         if offset:
             table.attrs["notes"].append(
                 f"two-stage: the kept router's correctness model of {', '.join(offset)} starts from each one's "
@@ -186,7 +186,7 @@ def fit_workspace(
                      len(training), len(selection), metrics.get("calibration", {}), effective)
 
 
-def class_offset_experts(router: Any, experts: list[str]) -> list[str]:
+def _class_offset_experts(router: Any, experts: list[str]) -> list[str]:
     """The experts whose correctness model in ``router`` (or in any of its members) takes the
     class route as an offset (:class:`routeplan.learner.PluginRouter`, ``class_offset``)."""
     masks = [m.offset_experts_ for m in getattr(router, "members_", [router]) if hasattr(m, "offset_experts_")]

@@ -264,8 +264,9 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
         M = self.n_experts_
         if self.class_offset == "never" or M == 0 or not train.known.any():
             return
-        off_train, off_val = (self._class_offset_logits(self._two_stage_proba(part.class_proba))
-                              for part in (train, val))
+        P_val = self._two_stage_proba(val.class_proba)
+        off_train = self._class_offset_logits(self._two_stage_proba(train.class_proba))
+        off_val = self._class_offset_logits(P_val)
         net = self._correctness_net()
         self.history_["correctness_offset"] = self._train_correctness(
             net, train, val, gen, offsets=(off_train, off_val), name="expert correctness (class offset)")
@@ -279,11 +280,10 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
             return
         self.offset_experts_, self.correctness_offset_net_ = chosen, net
         if self.calibrate:  # Platt again, on the logits now in use
-            self._calibrate_correctness(val, self._correctness_logits(
-                val.X, self._two_stage_proba(val.class_proba)))
+            self._calibrate_correctness(val, self._correctness_logits(val.X, P_val))
 
     def _two_stage_proba(self, class_proba: np.ndarray) -> np.ndarray:
-        """Imported class probabilities, temperature-scaled as the router uses them."""
+        """A split's imported class probabilities (checked when fit began), temperature-scaled."""
         return cal.apply_temperature(np.log(np.clip(class_proba, _EPS, 1.0)), self.class_temperature_)
 
     def _class_offset_logits(self, P: np.ndarray) -> np.ndarray:

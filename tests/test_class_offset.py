@@ -65,7 +65,7 @@ def test_the_offset_learns_class_dependent_experts_from_few_answers(digits, fitt
     assert loss["always"] < loss["never"] - 0.05, loss
 
 
-def test_auto_picks_per_expert_by_validation_log_loss(fitted):
+def test_the_choice_only_adds_a_network(fitted):
     # the choice only adds a network: the plain one is the same with or without it
     never, auto, always = fitted["never"], fitted["auto"], fitted["always"]
     assert not never.offset_experts_.any() and never.correctness_offset_net_ is None
