@@ -6,7 +6,8 @@ round and for each strategy, the spend, the answers bought, the gap to the
 full-information cost and the share of held-out cases the router sends to the model and
 to each expert, beside the same shares of the full-information routers. On the synthetic
 scenario, whose true option costs are known, it also splits the router's regret (its
-cost minus the Bayes-optimal cost) by the option it chose. A router that keeps nearly
+cost minus the Bayes-optimal cost) by the option it chose. Each row ends with the experts
+whose correctness model uses the class offset in that fit (``offset 0 1 0``). A router that keeps nearly
 every case on the model while the full-information router defers a fifth of them has not
 yet learned where the experts are right; that is how the class offset of
 :class:`routeplan.learner.PluginRouter` was found (see DEVELOPERS.md).
@@ -40,7 +41,7 @@ def main() -> None:
     router = {**ROUTER_SETTINGS, **dict(parse_option(text) for text in args.router)}
     spec = SCENARIOS[args.scenario]
     budgets = budget_schedule(spec["first"], spec["last"], spec["n_rounds"])
-    fitted: list[tuple[np.ndarray, np.ndarray]] = []  # (route shares, regret by chosen option) per fit
+    fitted: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []  # route shares, regret, offset experts
     measured_cost = rh._Stage.cost
 
     def cost(stage: rh._Stage, fitted_router) -> float:
@@ -51,8 +52,9 @@ def main() -> None:
         true = stage.true_costs
         regret = true[np.arange(n), routes] - true.min(axis=1)
         n_kinds = true.shape[1] - K + 1
+        offset = getattr(fitted_router, "offset_experts_", np.zeros(n_kinds - 1, dtype=bool))
         fitted.append((np.bincount(kind, minlength=n_kinds) / n,
-                       np.bincount(kind, weights=regret, minlength=n_kinds) / n))
+                       np.bincount(kind, weights=regret, minlength=n_kinds) / n, offset.astype(int)))
         return measured_cost(stage, fitted_router)
 
     rh._Stage.cost = cost  # this script only: record each fit's routes as it is scored
@@ -71,12 +73,17 @@ def main() -> None:
     print(f"{args.scenario}, seed {args.seed}; full-information cost {result.full_information_cost:.4f}"
           + ("" if known_truth else f", Bayes {result.bayes_cost:.4f}"))
     print("share of held-out cases sent to " + ", ".join(names))
-    for share, regret in fitted[:n_ref]:
-        print(f"  full information: {_row(share)}" + ("" if known_truth else f"; regret by chosen {_row(regret)}"))
-    for (share, regret), (_, row) in zip(fitted[n_ref:], result.curves.iterrows()):
+    for share, regret, offset in fitted[:n_ref]:
+        print(f"  full information: {_row(share)}" + ("" if known_truth else f"; regret by chosen {_row(regret)}")
+              + f"; offset {' '.join(map(str, offset))}")
+    for (share, regret, offset), (_, row) in zip(fitted[n_ref:], result.curves.iterrows()):
         print(f"  {row.strategy:>9} spend {row.spend:7.2f} answers {int(row.answers):5d} "
               f"gap {row.system_cost - result.full_information_cost:+.4f}: {_row(share)}"
-              + ("" if known_truth else f"; regret by chosen {_row(regret)}"))
+              + ("" if known_truth else f"; regret by chosen {_row(regret)}")
+              + f"; offset {' '.join(map(str, offset))}")
+    used = np.array([offset for _, _, offset in fitted[n_ref:]])
+    print("fits whose correctness model uses the class offset, per expert: "
+          + " ".join(f"{int(c)}/{len(used)}" for c in used.sum(axis=0)))
 
 
 def _row(values: np.ndarray) -> str:

@@ -424,9 +424,12 @@ def answers_import(app, files, strict, as_json):
 @click.option("--two-stage/--no-two-stage", "two_stage", default=None,
               help="Keep your own model (probabilities from 'routeplan scores import') and learn only the routing. "
                    "Default: when every case with truth has imported probabilities.")
+@click.option("--class-offset", type=click.Choice(["auto", "always", "never"]), default=None,
+              help="Two-stage only: start each expert's correctness model from its accuracy per true class "
+                   "when validation clearly favours it (auto, the default), for every expert, or never.")
 @json_option
 @pass_app
-def fit(app, seed, routers, max_epochs, two_stage, as_json):
+def fit(app, seed, routers, max_epochs, two_stage, class_offset, as_json):
     """Fit the classifier and router on the cases with truth and the answers gathered so far.
 
     Fits the candidate routers (a plug-in router: classifier plus per-expert correctness
@@ -444,12 +447,13 @@ def fit(app, seed, routers, max_epochs, two_stage, as_json):
         routeplan fit --seed 1
         routeplan fit --router plugin
         routeplan fit --two-stage        (after 'routeplan scores import')
+        routeplan fit --two-stage --class-offset never
     """
     from .fitting import fit_workspace
 
     with app.workspace() as ws:
         report = fit_workspace(ws, routers=tuple(routers) or None, random_state=seed, max_epochs=max_epochs,
-                               two_stage=two_stage,
+                               two_stage=two_stage, class_offset=class_offset,
                                verbose=app.console.is_terminal and not (app.quiet or as_json), console=app.console)
     if as_json:
         app.emit_json(report.to_dict())

@@ -80,6 +80,7 @@ def fit_workspace(
     random_state: int = 0,
     max_epochs: int | None = None,
     two_stage: bool | None = None,
+    class_offset: str | None = None,
     verbose: bool = False,
     console: Any = None,
 ) -> FitReport:
@@ -100,6 +101,9 @@ def fit_workspace(
         learn only the routing (two-stage learning to defer: Mao, Mohri & Zhong, NeurIPS
         2023); only plug-in candidates apply. Default: when every case with truth has
         imported probabilities. True with some of them missing is an error.
+    class_offset : {"auto", "always", "never"}, optional
+        Two-stage only: the plug-in routers' ``class_offset`` (default theirs, ``"auto"``);
+        see :class:`routeplan.learner.PluginRouter`. Given without two-stage, an error.
     verbose : bool, default=False
         Show progress bars.
     console : rich.console.Console, optional
@@ -111,7 +115,8 @@ def fit_workspace(
     Raises
     ------
     InputError
-        Too few cases with truth, no experts, or an unknown router name.
+        Too few cases with truth, no experts, an unknown router name, or ``class_offset``
+        without two-stage.
     """
     from .learner import CANDIDATES, fit_candidates
 
@@ -129,6 +134,10 @@ def fit_workspace(
     if len(np.unique(pool.y[mask])) < 2:
         raise InputError("every case with truth has the same label; fitting needs at least two labels")
     class_proba = _two_stage_proba(pool, mask, two_stage, routers)
+    if class_offset is not None and class_proba is None:
+        raise InputError("--class-offset applies to two-stage fits only (your model's probabilities from "
+                         "'routeplan scores import', with --two-stage)")
+    router_params = {k: v for k, v in (("max_epochs", max_epochs), ("class_offset", class_offset)) if v}
     spec = fit_features(pool.X[mask], pool.feature_names)
     X = spec.transform(pool.X[mask])
     y, A = pool.y[mask], pool.answers[mask]
@@ -138,7 +147,7 @@ def fit_workspace(
         best, fitted, table = fit_candidates(
             X, y, A, fees=pool.fees, cost_matrix=pool.cost_matrix(), sample_weight=weights,
             random_state=random_state, names=routers, expert_names=list(pool.experts), class_proba=class_proba,
-            router_params={"max_epochs": max_epochs} if max_epochs else None, verbose=verbose, console=console,
+            router_params=router_params or None, verbose=verbose, console=console,
         )
     for w in caught:
         if not issubclass(w.category, UserWarning):
@@ -181,7 +190,8 @@ def fit_workspace(
             model_ids[name] = ws.add_model(name, params, metrics if name == best else {"chosen": best},
                                            arrays, chosen=name == best)
         ws.log("fit", {"chosen": best, "model_ids": model_ids, "seed": random_state,
-                       "cases": int(mask.sum()), "answers": counts})
+                       "cases": int(mask.sum()), "answers": counts,
+                       **({"class_offset": class_offset} if class_offset else {})})
     return FitReport(best, model_ids, table, list(table.attrs.get("notes", [])), counts,
                      len(training), len(selection), metrics.get("calibration", {}), effective)
 

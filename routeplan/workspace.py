@@ -277,10 +277,18 @@ class Workspace:
     def open(cls, folder: str | Path) -> "Workspace":
         """Open the workspace in ``folder``, applying pending migrations.
 
+        A workspace on a read-only file system is opened read-only (see
+        :func:`_open_unchanging`): reading commands work, writing ones exit 2.
+
         Raises
         ------
         WorkspaceMissing
             If there is no workspace there.
+        InputError
+            If the file there is not an SQLite database.
+        OutputError
+            If SQLite cannot open it, or a pending migration cannot be written (a read-only
+            or full disk): the migration is rolled back and the message says so.
         """
         folder = Path(folder)
         path = folder / DB_NAME
@@ -293,10 +301,21 @@ class Workspace:
             db = cls._connect(path)
             db.execute("SELECT COUNT(*) FROM sqlite_master").fetchone()
         except sqlite3.DatabaseError as exc:
-            raise InputError(f"{path} is not a routeplan workspace ({exc}); restore it from a backup "
-                             "or point --workspace at another folder") from None
-        if migrations.pending(db):
-            migrations.apply(db)
+            if not (_is_storage_error(exc) and _has_sqlite_header(path)):
+                raise InputError(f"{path} is not a routeplan workspace ({exc}); restore it from a backup "
+                                 "or point --workspace at another folder") from None
+            db = _open_unchanging(path, exc)
+        try:
+            if migrations.pending(db):
+                migrations.apply(db)
+        except sqlite3.OperationalError as exc:
+            if not _is_storage_error(exc):
+                raise
+            db.close()
+            raise OutputError.from_os_error(
+                exc, path, what=f"upgrade the workspace database to schema version {SCHEMA_VERSION}",
+                hint="the step that failed was rolled back; make the workspace writable (or free space on its disk) "
+                     "and run the command again") from exc
         return cls(folder, db)
 
     def close(self) -> None:
@@ -880,6 +899,48 @@ def _is_storage_error(exc: BaseException) -> bool:
         return False
     name = getattr(exc, "sqlite_errorname", None)
     return name is None or name.startswith(_STORAGE_CODES)
+
+
+def _has_sqlite_header(path: Path) -> bool:
+    """True if ``path`` starts with the 16 bytes every SQLite 3 database file starts with
+    (sqlite.org, "Database File Format", sec. 1.3); False if it cannot be read."""
+    try:
+        with open(path, "rb") as fh:
+            return fh.read(16) == b"SQLite format 3\x00"
+    except OSError:
+        return False
+
+
+def _open_unchanging(path: Path, first: sqlite3.Error) -> Database:
+    """Open a workspace that SQLite could not open the usual way, read-only and unchanging.
+
+    A database in WAL mode needs its ``-shm`` file beside it, which cannot be made on a
+    read-only file system (a mounted archive, a read-only share). Opened with the URI
+    parameters ``mode=ro&immutable=1`` (sqlite.org, "Uniform Resource Identifiers"), SQLite
+    reads it without that file, so reading commands work; every write then fails as on a
+    read-only file and :meth:`Workspace.transaction` reports it. Refused when a non-empty
+    write-ahead log lies beside the database: changes in it would be silently ignored, so
+    the workspace must first be opened once where it is writable.
+
+    Raises
+    ------
+    OutputError
+        The log is there, or the read-only open failed as well (``first`` is SQLite's reason).
+    """
+    wal = path.with_name(path.name + "-wal")
+    hint = ("open it once where it is writable (SQLite then merges its write-ahead log), "
+            "or copy the workspace folder to a writable disk")
+    if wal.is_file() and wal.stat().st_size > 0:
+        raise OutputError.from_os_error(first, path, what="open the workspace database", hint=hint) from None
+    try:
+        conn = sqlite3.connect(f"{path.resolve().as_uri()}?mode=ro&immutable=1", uri=True,
+                               isolation_level=None)
+        conn.execute("PRAGMA foreign_keys = ON")
+        db = Database(conn, execute_plugins=False)
+        db.execute("SELECT COUNT(*) FROM sqlite_master").fetchone()
+    except sqlite3.DatabaseError as exc:
+        raise OutputError.from_os_error(first, path, what="open the workspace database", hint=hint) from exc
+    return db
 
 
 def _discard(db: Database | None, tmp: Path) -> None:

@@ -210,3 +210,38 @@ def test_freeze_says_when_the_scores_changed_after_the_fit(tmp_path, team):
     invoke(ws, "scores", "import", path, "--replace")
     again = json.loads(invoke(ws, "freeze", "--out", tmp_path / "b.json", "--json").stdout)
     assert any("replaced after model" in n and "fit again" in n for n in again["notes"])
+
+
+def test_class_offset_switch_of_fit(tmp_path, team):
+    # --class-offset passes PluginRouter's class_offset through: "never" keeps the plain
+    # network for every expert, "always" uses the offset for every one (the kept router's
+    # stored arrays say which; a fit note names them), and without two-stage it is refused
+    import sqlite3
+
+    ws = digits_workspace(tmp_path, k=5, n_answers=None)
+    invoke(ws, "scores", "import", team["scores"])
+
+    def fit_with(choice: str) -> tuple[list[str], np.ndarray]:
+        report = json.loads(invoke(ws, "fit", "--router", "plugin", "--max-epochs", "3", "--class-offset",
+                                   choice, "--json").stdout)
+        from routeplan.fitting import load_router
+        from routeplan.workspace import Workspace
+
+        with Workspace.open(ws) as opened:
+            router = load_router(opened, report["model_ids"]["plugin"])[1]
+        return report["notes"], router.offset_experts_
+
+    notes, used = fit_with("never")
+    assert not used.any() and not any("starts from each one's accuracy" in n for n in notes)
+    notes, used = fit_with("always")
+    assert used.all() and any("correctness model of oracle_k starts from" in n for n in notes)
+    conn = sqlite3.connect(ws / "routeplan.sqlite")
+    detail = json.loads(conn.execute("SELECT detail FROM journal WHERE command = 'fit' "
+                                     "ORDER BY entry_id DESC LIMIT 1").fetchone()[0])
+    conn.close()
+    assert detail["class_offset"] == "always"
+
+    plain = digits_workspace(tmp_path / "plain", k=5, n_answers=None)  # no imported scores
+    before = db_dump(plain)
+    assert_one_line_error(run_cli(plain, "fit", "--class-offset", "never"), "--class-offset applies to two-stage")
+    assert db_dump(plain) == before
