@@ -73,8 +73,9 @@ def _clearly_lower(loss: np.ndarray, other: np.ndarray, known: np.ndarray) -> np
     Friedman, Olshen & Stone, *Classification and Regression Trees*, 1984, sec. 3.4.3): keep
     the simpler model unless the data clearly favour the other."""
     out = np.zeros(loss.shape[1], dtype=bool)
+    diff = loss - other
     for j in range(loss.shape[1]):
-        d = (loss - other)[known[:, j], j]
+        d = diff[known[:, j], j]
         if d.size >= 2:
             out[j] = d.mean() + d.std(ddof=1) / np.sqrt(d.size) < 0
     return out

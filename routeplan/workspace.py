@@ -297,10 +297,13 @@ class Workspace:
                 f"no workspace in {folder.resolve()}; run 'routeplan init --labels A,B' there "
                 "or point --workspace (or ROUTEPLAN_WORKSPACE) at one"
             )
+        db = None
         try:
             db = cls._connect(path)
             db.execute("SELECT COUNT(*) FROM sqlite_master").fetchone()
         except sqlite3.DatabaseError as exc:
+            if db is not None:
+                db.close()
             if not (_is_storage_error(exc) and _has_sqlite_header(path)):
                 raise InputError(f"{path} is not a routeplan workspace ({exc}); restore it from a backup "
                                  "or point --workspace at another folder") from None
@@ -903,12 +906,19 @@ def _is_storage_error(exc: BaseException) -> bool:
 
 def _has_sqlite_header(path: Path) -> bool:
     """True if ``path`` starts with the 16 bytes every SQLite 3 database file starts with
-    (sqlite.org, "Database File Format", sec. 1.3); False if it cannot be read."""
+    (sqlite.org, "Database File Format", sec. 1.3).
+
+    Raises
+    ------
+    OutputError
+        The file cannot be read (no permission, an I/O error), naming the system's reason.
+    """
     try:
         with open(path, "rb") as fh:
             return fh.read(16) == b"SQLite format 3\x00"
-    except OSError:
-        return False
+    except OSError as exc:
+        raise OutputError.from_os_error(exc, path, what="read the workspace database",
+                                        hint="check that you may read the file and its folder") from None
 
 
 def _open_unchanging(path: Path, first: sqlite3.Error) -> Database:
@@ -919,28 +929,30 @@ def _open_unchanging(path: Path, first: sqlite3.Error) -> Database:
     parameters ``mode=ro&immutable=1`` (sqlite.org, "Uniform Resource Identifiers"), SQLite
     reads it without that file, so reading commands work; every write then fails as on a
     read-only file and :meth:`Workspace.transaction` reports it. Refused when a non-empty
-    write-ahead log lies beside the database: changes in it would be silently ignored, so
-    the workspace must first be opened once where it is writable.
+    write-ahead log (or rollback journal) lies beside the database: changes in it would be
+    silently ignored, so the workspace must first be opened once where it is writable.
 
     Raises
     ------
     OutputError
         The log is there, or the read-only open failed as well (``first`` is SQLite's reason).
     """
-    wal = path.with_name(path.name + "-wal")
+    logs = [path.with_name(path.name + suffix) for suffix in ("-wal", "-journal")]
     hint = ("open it once where it is writable (SQLite then merges its write-ahead log), "
             "or copy the workspace folder to a writable disk")
-    if wal.is_file() and wal.stat().st_size > 0:
+    if any(log.is_file() and log.stat().st_size > 0 for log in logs):
         raise OutputError.from_os_error(first, path, what="open the workspace database", hint=hint) from None
+    conn = None
     try:
         conn = sqlite3.connect(f"{path.resolve().as_uri()}?mode=ro&immutable=1", uri=True,
                                isolation_level=None)
         conn.execute("PRAGMA foreign_keys = ON")
-        db = Database(conn, execute_plugins=False)
-        db.execute("SELECT COUNT(*) FROM sqlite_master").fetchone()
+        conn.execute("SELECT COUNT(*) FROM sqlite_master").fetchone()
     except sqlite3.DatabaseError as exc:
+        if conn is not None:
+            conn.close()
         raise OutputError.from_os_error(first, path, what="open the workspace database", hint=hint) from exc
-    return db
+    return Database(conn, execute_plugins=False)
 
 
 def _discard(db: Database | None, tmp: Path) -> None:

@@ -133,3 +133,29 @@ def test_auto_keeps_the_plain_network_for_an_expert_whose_reliability_follows_a_
         shown[asked, j] = answers[asked, j]
     router = PluginRouter(random_state=0, **SETTINGS).fit(X, y, shown, fees=[0.05, 0.05], class_proba=digits["P"])
     assert router.offset_experts_.tolist() == [False, True]
+
+
+def test_the_one_standard_error_rule_passes_a_null_difference_at_the_t_rate():
+    # _clearly_lower says yes when mean(d) + SE < 0, d the paired loss differences. With no
+    # true difference that is a one-sided t-test at one standard error: it passes with
+    # probability P(T_{n-1} < -1) (scipy.stats.t as the reference; 0.159 for n = 400), and a
+    # true difference of 3 standard errors passes with P(T_{n-1} < 2), most of the time.
+    from scipy import stats
+
+    from routeplan.plugin import _clearly_lower
+
+    rng = np.random.default_rng(0)
+    n, m = 400, 4000
+    other = np.zeros((n, m))
+    known = np.ones((n, m), dtype=bool)
+    null = rng.standard_normal((n, m))
+    rate = _clearly_lower(null, other, known).mean()
+    expected = stats.t.cdf(-1.0, df=n - 1)
+    assert abs(rate - expected) < 3 * np.sqrt(expected * (1 - expected) / m)
+    shifted = null - 3.0 / np.sqrt(n)  # a true mean difference of 3 standard errors
+    rate = _clearly_lower(shifted, other, known).mean()
+    expected = stats.t.cdf(2.0, df=n - 1)
+    assert abs(rate - expected) < 3 * np.sqrt(expected * (1 - expected) / m)
+    known[:, :2] = False
+    known[0, 1] = True  # fewer than two known rows: never clearly lower
+    assert not _clearly_lower(null - 10.0, other, known)[:2].any()

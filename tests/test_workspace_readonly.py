@@ -125,3 +125,29 @@ def test_a_file_that_is_not_sqlite_is_still_not_a_workspace(tmp_path):
     (tmp_path / DB_NAME).write_bytes(b"case_id,f1\nc1,0.5\n" * 200)
     result = run_cli(tmp_path, "status")
     assert_one_line_error(result, "is not a routeplan workspace")
+
+
+def test_a_database_that_cannot_be_read_is_exit_2_naming_the_reason(stocked_ws, monkeypatch):
+    # SQLITE_CANTOPEN on a file that the system will not let us read (EACCES, simulated: the
+    # tests run as root) is the user's to fix, not a damaged workspace: exit 2, the reason named
+    import builtins
+
+    from routeplan.workspace import Workspace
+
+    def cannot_open(path):
+        error = sqlite3.OperationalError("unable to open database file")
+        error.sqlite_errorcode, error.sqlite_errorname = sqlite3.SQLITE_CANTOPEN, "SQLITE_CANTOPEN"
+        raise error
+
+    real_open = builtins.open
+
+    def refusing_open(file, *args, **kwargs):
+        if str(file).endswith(DB_NAME):
+            raise PermissionError(13, "Permission denied", str(file))
+        return real_open(file, *args, **kwargs)
+
+    monkeypatch.setattr(Workspace, "_connect", staticmethod(cannot_open))
+    monkeypatch.setattr(builtins, "open", refusing_open)
+    result = run_cli(stocked_ws, "status")
+    monkeypatch.undo()
+    assert_one_line_error(result, f"{stocked_ws / DB_NAME}: cannot read the workspace database (Permission denied)")
