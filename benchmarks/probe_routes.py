@@ -7,9 +7,10 @@ full-information cost and the share of held-out cases the router sends to the mo
 to each expert, beside the same shares of the full-information routers. On the synthetic
 scenario, whose true option costs are known, it also splits the router's regret (its
 cost minus the Bayes-optimal cost) by the option it chose. Each row ends with the experts
-whose correctness model uses the class offset in that fit (``offset 0 1 0``). A router that keeps nearly
-every case on the model while the full-information router defers a fifth of them has not
-yet learned where the experts are right; that is how the class offset of
+whose correctness model uses the class offset in that fit (``offset 0 1 0``; for an
+average of routers, in any member). A router that keeps nearly every case on the model
+while the full-information router defers a fifth of them has not yet learned where the
+experts are right; that is how the class offset of
 :class:`routeplan.learner.PluginRouter` was found (see DEVELOPERS.md).
 
 Run: ``.venv/bin/python benchmarks/probe_routes.py [--scenario digits] [--seed 0]
@@ -52,7 +53,8 @@ def main() -> None:
         true = stage.true_costs
         regret = true[np.arange(n), routes] - true.min(axis=1)
         n_kinds = true.shape[1] - K + 1
-        offset = getattr(fitted_router, "offset_experts_", np.zeros(n_kinds - 1, dtype=bool))
+        members = getattr(fitted_router, "members_", [fitted_router])
+        offset = np.any([getattr(m, "offset_experts_", np.zeros(n_kinds - 1, dtype=bool)) for m in members], axis=0)
         fitted.append((np.bincount(kind, minlength=n_kinds) / n,
                        np.bincount(kind, weights=regret, minlength=n_kinds) / n, offset.astype(int)))
         return measured_cost(stage, fitted_router)

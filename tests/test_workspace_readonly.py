@@ -8,10 +8,12 @@ root, where file modes do not stop writes.
 
 from __future__ import annotations
 
+import shlex
 import shutil
 import sqlite3
 import subprocess
 import sys
+import tempfile
 from pathlib import Path
 
 import pytest
@@ -55,10 +57,16 @@ def _read_only_mount_works() -> bool:
     """Can this machine make a private read-only bind mount (unshare -r -m)?"""
     if shutil.which("unshare") is None or shutil.which("mount") is None:
         return False
-    probe = subprocess.run(["unshare", "-r", "-m", "sh", "-c",
-                            "mount --bind /tmp /tmp && mount -o remount,ro,bind /tmp && ! touch /tmp/.rp_probe"],
-                           capture_output=True)
+    with tempfile.TemporaryDirectory() as folder:
+        probe = subprocess.run(["unshare", "-r", "-m", "sh", "-c", _read_only(folder) + " && ! touch "
+                                + shlex.quote(str(Path(folder) / "probe"))], capture_output=True)
     return probe.returncode == 0
+
+
+def _read_only(folder: Path | str) -> str:
+    """Shell commands that mount ``folder`` over itself, read-only (in the caller's namespace)."""
+    q = shlex.quote(str(folder))
+    return f"mount --bind {q} {q} && mount -o remount,ro,bind {q}"
 
 
 needs_read_only_mount = pytest.mark.skipif(not _read_only_mount_works(),
@@ -67,9 +75,8 @@ needs_read_only_mount = pytest.mark.skipif(not _read_only_mount_works(),
 
 def _run_read_only(folder: Path, *args: str) -> subprocess.CompletedProcess:
     """``routeplan --workspace FOLDER ARGS`` with FOLDER mounted read-only for that run only."""
-    quoted = " ".join(f"'{a}'" for a in ["--workspace", str(folder), *args])
-    script = (f"mount --bind '{folder}' '{folder}' && mount -o remount,ro,bind '{folder}' && "
-              f"exec '{sys.executable}' -m routeplan {quoted}")
+    command = shlex.join([sys.executable, "-m", "routeplan", "--workspace", str(folder), *args])
+    script = f"{_read_only(folder)} && exec {command}"
     return subprocess.run(["unshare", "-r", "-m", "sh", "-c", script], capture_output=True, text=True,
                           timeout=120)
 
