@@ -426,7 +426,8 @@ def answers_import(app, files, strict, as_json):
                    "Default: when every case with truth has imported probabilities.")
 @click.option("--class-offset", type=click.Choice(["auto", "always", "never"]), default=None,
               help="Two-stage only: start each expert's correctness model from its accuracy per true class "
-                   "when validation clearly favours it (auto, the default), for every expert, or never.")
+                   "when validation clearly favours it and its accuracy differs by class on its answers (auto, "
+                   "the default), for every expert, or never.")
 @json_option
 @pass_app
 def fit(app, seed, routers, max_epochs, two_stage, class_offset, as_json):

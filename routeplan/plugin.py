@@ -55,7 +55,9 @@ CLASS_OFFSET_CHOICES = ("auto", "always", "never")
 CLASS_OFFSET_DOC = """    class_offset : {"auto", "always", "never"}, default="auto"
         Two-stage mode only: also train a correctness network with the class route as an
         offset, and use it for each expert whose validation log-loss it clearly lowers
-        (``"auto"``: by more than one standard error), for every expert, or not at all.
+        (``"auto"``: by more than one standard error, and only for an expert whose
+        accuracy differs across true classes on its training answers, a chi-square test at
+        5%), for every expert, or not at all.
         Chosen: ``offset_experts_``.
 """
 
@@ -78,6 +80,32 @@ def _clearly_lower(loss: np.ndarray, other: np.ndarray, known: np.ndarray) -> np
         d = diff[known[:, j], j]
         if d.size >= 2:
             out[j] = d.mean() + d.std(ddof=1) / np.sqrt(d.size) < 0
+    return out
+
+
+def _class_heterogeneous(part: _Part, n_classes: int, alpha: float = 0.05) -> np.ndarray:
+    """Per expert: does its accuracy differ across true classes on these answers?
+
+    Pearson's chi-square test of homogeneity (Pearson, "On the criterion that a given system
+    of deviations...", Philosophical Magazine 50(302), 1900) on the table of right and wrong
+    answers per true class (classes without answers left out; counts, not weights), via
+    :func:`scipy.stats.chi2_contingency`, at level ``alpha``. An expert whose accuracy is the
+    same for every class gains nothing from the class route that the network's intercept
+    lacks, so its offset would only add noise. False where the test cannot be made (fewer
+    than two classes answered, or every answer right, or every one wrong).
+    """
+    from scipy.stats import chi2_contingency
+
+    out = np.zeros(part.answers.shape[1], dtype=bool)
+    for j in range(part.answers.shape[1]):
+        k = part.known[:, j]
+        right = part.answers[k, j] == part.y[k]
+        table = np.stack([np.bincount(part.y[k][right], minlength=n_classes),
+                          np.bincount(part.y[k][~right], minlength=n_classes)])
+        table = table[:, table.sum(axis=0) > 0]
+        if table.shape[1] < 2 or (table.sum(axis=1) == 0).any():
+            continue
+        out[j] = chi2_contingency(table).pvalue < alpha
     return out
 
 
@@ -156,7 +184,11 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
     JRSS C 28(1), 1979) also enters the correctness model as an offset: a second network
     learns only where each expert departs from it, and ``class_offset="auto"`` uses it for
     an expert when its validation log-loss is lower than the plain network's by more than
-    one standard error of the paired difference. For experts whose reliability follows the
+    one standard error of the paired difference and its accuracy differs across true
+    classes on the training answers (Pearson's chi-square test of homogeneity at 5%: without
+    that, the one-standard-error rule alone took the offset in about a tenth of the fits on
+    experts reliable by region, and each such fit steered later rounds; measured with
+    ``benchmarks/bench_rounds.py``, see DEVELOPERS.md). For experts whose reliability follows the
     true class, the offset does most of the work from a few dozen answers; for experts
     whose reliability follows the features, the network alone is kept. The imported probabilities are out of sample for the answers (unlike the
     classifier's own on its training cases), which is why the offset is two-stage only.
@@ -277,6 +309,7 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
             plain = self._correctness_logits(val.X)
             offset = _forward(net, val.X, self.x_mean_, self.x_scale_).astype(np.float64) + off_val
             chosen = _clearly_lower(_weighted_log_loss(offset, val), _weighted_log_loss(plain, val), val.known)
+            chosen &= _class_heterogeneous(train, self.n_classes_)
         if not chosen.any():
             return
         self.offset_experts_, self.correctness_offset_net_ = chosen, net

@@ -159,3 +159,31 @@ def test_the_one_standard_error_rule_passes_a_null_difference_at_the_t_rate():
     known[:, :2] = False
     known[0, 1] = True  # fewer than two known rows: never clearly lower
     assert not _clearly_lower(null - 10.0, other, known)[:2].any()
+
+
+def test_the_class_gate_tells_class_dependent_experts_from_constant_ones(digits):
+    # Pearson's chi-square test of homogeneity (1900), through scipy.stats.chi2_contingency: an
+    # expert right with the same probability in every class passes at about the test's level
+    # (at most 5%, plus three binomial standard errors), while Mozannar & Sontag's experts
+    # (always right on their classes, 1 time in 10 elsewhere) pass with 40 answers each.
+    from routeplan._routerbase import _Part
+    from routeplan.plugin import _class_heterogeneous
+
+    n = N_TRAIN
+    X, y, A = digits["X"], digits["y"], digits["A"]
+    part = _Part(X, y, A, np.where(A >= 0, 1.0, 0.0), np.full((n, 1), np.nan))
+    assert _class_heterogeneous(part, 10).all()
+
+    rng = np.random.default_rng(3)
+    m, per = 400, 60
+    answers = np.full((n, m), -1)
+    for j in range(m):
+        asked = rng.choice(n, per, replace=False)
+        right = rng.random(per) < 0.7
+        answers[asked, j] = np.where(right, y[asked], (y[asked] + 1 + rng.integers(0, 9, per)) % 10)
+    part = _Part(X, y, answers, np.where(answers >= 0, 1.0, 0.0), np.full((n, 1), np.nan))
+    rate = _class_heterogeneous(part, 10).mean()
+    assert rate <= 0.05 + 3 * np.sqrt(0.05 * 0.95 / m), rate
+    everyone_right = np.where(answers >= 0, y[:, None], -1)
+    part = _Part(X, y, everyone_right, np.where(answers >= 0, 1.0, 0.0), np.full((n, 1), np.nan))
+    assert not _class_heterogeneous(part, 10).any()  # no wrong answer: no test, no offset
