@@ -8,7 +8,8 @@ to each expert, beside the same shares of the full-information routers. On the s
 scenario, whose true option costs are known, it also splits the router's regret (its
 cost minus the Bayes-optimal cost) by the option it chose. Each row ends with the experts
 whose correctness model uses the class offset in that fit (``offset 0 1 0``; for an
-average of routers, in any member). A router that keeps nearly every case on the model
+average of routers, in any member) and the answers with truth each expert had given by then
+(``per expert 120 45 30``). A router that keeps nearly every case on the model
 while the full-information router defers a fifth of them has not yet learned where the
 experts are right; that is how the class offset of
 :class:`routeplan.learner.PluginRouter` was found (see DEVELOPERS.md).
@@ -42,8 +43,15 @@ def main() -> None:
     router = {**ROUTER_SETTINGS, **dict(parse_option(text) for text in args.router)}
     spec = SCENARIOS[args.scenario]
     budgets = budget_schedule(spec["first"], spec["last"], spec["n_rounds"])
-    fitted: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []  # route shares, regret, offset experts
-    measured_cost = rh._Stage.cost
+    fitted: list[tuple[np.ndarray, ...]] = []  # route shares, regret, offset experts, answers per expert
+    measured_cost, measured_fit = rh._Stage.cost, rh._Stage.fit
+    answers_seen: dict[int, np.ndarray] = {}  # id of a fitted router -> answers per expert it saw
+
+    def fit(stage: rh._Stage, answers: np.ndarray, weights, seed: int):
+        """The stage's fit, noting how many answers per expert the router was given."""
+        fitted_router = measured_fit(stage, answers, weights, seed)
+        answers_seen[id(fitted_router)] = (answers >= 0).sum(axis=0)
+        return fitted_router
 
     def cost(stage: rh._Stage, fitted_router) -> float:
         """The stage's exact cost, recording where the router sends each held-out case."""
@@ -56,10 +64,11 @@ def main() -> None:
         members = getattr(fitted_router, "members_", [fitted_router])
         offset = np.any([getattr(m, "offset_experts_", np.zeros(n_kinds - 1, dtype=bool)) for m in members], axis=0)
         fitted.append((np.bincount(kind, minlength=n_kinds) / n,
-                       np.bincount(kind, weights=regret, minlength=n_kinds) / n, offset.astype(int)))
+                       np.bincount(kind, weights=regret, minlength=n_kinds) / n, offset.astype(int),
+                       answers_seen.pop(id(fitted_router))))
         return measured_cost(stage, fitted_router)
 
-    rh._Stage.cost = cost  # this script only: record each fit's routes as it is scored
+    rh._Stage.cost, rh._Stage.fit = cost, fit  # this script only: record each fit's answers and routes
     try:
         common = {"budgets": budgets, "n_regions": spec["n_regions"], "strategies": strategies,
                   "router_params": router, "random_state": args.seed}
@@ -68,22 +77,22 @@ def main() -> None:
         else:
             result = rh.rehearse(digits_experts_scenario(random_state=args.seed), n_pool=900, **common)
     finally:
-        rh._Stage.cost = measured_cost
+        rh._Stage.cost, rh._Stage.fit = measured_cost, measured_fit
     known_truth = result.bayes_cost is None  # digits: the truth is one-hot, every regret is the model's
     n_ref = len(fitted) - len(result.curves)
     names = ["model"] + [f"expert {j + 1}" for j in range(len(fitted[0][0]) - 1)]
     print(f"{args.scenario}, seed {args.seed}; full-information cost {result.full_information_cost:.4f}"
           + ("" if known_truth else f", Bayes {result.bayes_cost:.4f}"))
     print("share of held-out cases sent to " + ", ".join(names))
-    for share, regret, offset in fitted[:n_ref]:
+    for share, regret, offset, _ in fitted[:n_ref]:
         print(f"  full information: {_row(share)}" + ("" if known_truth else f"; regret by chosen {_row(regret)}")
               + f"; offset {' '.join(map(str, offset))}")
-    for (share, regret, offset), (_, row) in zip(fitted[n_ref:], result.curves.iterrows()):
+    for (share, regret, offset, seen), (_, row) in zip(fitted[n_ref:], result.curves.iterrows()):
         print(f"  {row.strategy:>9} spend {row.spend:7.2f} answers {int(row.answers):5d} "
               f"gap {row.system_cost - result.full_information_cost:+.4f}: {_row(share)}"
               + ("" if known_truth else f"; regret by chosen {_row(regret)}")
-              + f"; offset {' '.join(map(str, offset))}")
-    used = np.array([offset for _, _, offset in fitted[n_ref:]])
+              + f"; offset {' '.join(map(str, offset))}; per expert {' '.join(map(str, seen))}")
+    used = np.array([offset for _, _, offset, _ in fitted[n_ref:]])
     print("fits whose correctness model uses the class offset, per expert: "
           + " ".join(f"{int(c)}/{len(used)}" for c in used.sum(axis=0)))
 
