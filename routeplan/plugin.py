@@ -96,12 +96,12 @@ def _class_heterogeneous(part: _Part, n_classes: int, alpha: float = 0.05) -> np
     """
     from scipy.stats import chi2_contingency
 
-    out = np.zeros(part.answers.shape[1], dtype=bool)
-    for j in range(part.answers.shape[1]):
-        k = part.known[:, j]
-        right = part.answers[k, j] == part.y[k]
-        table = np.stack([np.bincount(part.y[k][right], minlength=n_classes),
-                          np.bincount(part.y[k][~right], minlength=n_classes)])
+    Y = _onehot(part.y, n_classes)
+    right = ((part.answers == part.y[:, None]) & part.known).T @ Y  # (M, K) right answers per class
+    wrong = part.known.T @ Y - right
+    out = np.zeros(right.shape[0], dtype=bool)
+    for j in range(right.shape[0]):
+        table = np.stack([right[j], wrong[j]])
         table = table[:, table.sum(axis=0) > 0]
         if table.shape[1] < 2 or (table.sum(axis=1) == 0).any():
             continue
@@ -293,9 +293,14 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
 
     def _fit_class_offset(self, train: _Part, val: _Part, gen: torch.Generator) -> None:
         """Two-stage: the correctness network with the class route as an offset; per expert,
-        keep it where its validation log-loss is clearly below the plain network's (``"auto"``)."""
+        keep it where its accuracy differs by class and its validation log-loss is clearly below
+        the plain network's (``"auto"``). Not trained when no expert passes the class test."""
         M = self.n_experts_
         if self.class_offset == "never" or M == 0 or not train.known.any():
+            return
+        auto = self.class_offset == "auto"
+        chosen = _class_heterogeneous(train, self.n_classes_) if auto else np.ones(M, dtype=bool)
+        if not chosen.any():  # no expert could take the offset: no network to train
             return
         P_val = self._two_stage_proba(val.class_proba)
         off_train = self._class_offset_logits(self._two_stage_proba(train.class_proba))
@@ -303,15 +308,12 @@ class PluginRouter(ExpectedCostRouting, _BaseRouter):
         net = self._correctness_net()
         self.history_["correctness_offset"] = self._train_correctness(
             net, train, val, gen, offsets=(off_train, off_val), name="expert correctness (class offset)")
-        if self.class_offset == "always":
-            chosen = np.ones(M, dtype=bool)
-        else:
+        if auto:
             plain = self._correctness_logits(val.X)
             offset = _forward(net, val.X, self.x_mean_, self.x_scale_).astype(np.float64) + off_val
-            chosen = _clearly_lower(_weighted_log_loss(offset, val), _weighted_log_loss(plain, val), val.known)
-            chosen &= _class_heterogeneous(train, self.n_classes_)
-        if not chosen.any():
-            return
+            chosen &= _clearly_lower(_weighted_log_loss(offset, val), _weighted_log_loss(plain, val), val.known)
+            if not chosen.any():
+                return
         self.offset_experts_, self.correctness_offset_net_ = chosen, net
         if self.calibrate:  # Platt again, on the logits now in use
             self._calibrate_correctness(val, self._correctness_logits(val.X, P_val))
