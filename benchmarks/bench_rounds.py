@@ -33,8 +33,9 @@ medians are over 8 seeds (``--seeds``): with one fit and 5 seeds the budget a se
 jumped by a factor of 2 or 4 between runs that differed in nothing that mattered.
 
 Run: ``.venv/bin/python benchmarks/bench_rounds.py [--seeds 8] [--first-seed 0] [--jobs 2] [--fits 2]
-[--planner spread=pairs] [--router n_members=3] [--no-focus]`` (about 8 minutes on a 2-core
-machine).
+[--planner spread=pairs] [--router n_members=3] [--no-focus] [--strategies value,random]
+[--curves FILE]`` (about 8 minutes on a 2-core machine). Two ``--curves`` files of two versions
+on the same seeds are compared seed by seed with ``benchmarks/compare_rounds.py``.
 """
 
 from __future__ import annotations
@@ -43,6 +44,7 @@ import argparse
 import math
 import time
 from concurrent.futures import ProcessPoolExecutor
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -57,7 +59,8 @@ SCENARIOS = {
 
 
 def play(kind: str, seed: int, n_fits: int, weighting: str, planner: dict | None = None,
-         focus_margin: float | None = 0.1, router: dict | None = None) -> dict:
+         focus_margin: float | None = 0.1, router: dict | None = None,
+         strategies: tuple[str, ...] = STRATEGIES) -> dict:
     """One rehearsal of every strategy on one scenario and seed (runs in a worker process)."""
     import torch
 
@@ -70,15 +73,15 @@ def play(kind: str, seed: int, n_fits: int, weighting: str, planner: dict | None
     start = time.perf_counter()
     if kind == "synthetic":
         result = rehearse(n_pool=3000, n_eval=5000, budgets=budgets, n_regions=spec["n_regions"],
-                          strategies=STRATEGIES, n_router_fits=n_fits, weighting=weighting,
+                          strategies=strategies, n_router_fits=n_fits, weighting=weighting,
                           planner_options=planner, focus_margin=focus_margin, router_params=router_params,
                           random_state=seed)
     else:
         result = rehearse(digits_experts_scenario(random_state=seed), n_pool=900, budgets=budgets,
-                          n_regions=spec["n_regions"], strategies=STRATEGIES, n_router_fits=n_fits,
+                          n_regions=spec["n_regions"], strategies=strategies, n_router_fits=n_fits,
                           weighting=weighting, planner_options=planner, focus_margin=focus_margin,
                           router_params=router_params, random_state=seed)
-    curves = result.curves.assign(budget=np.tile(budgets, len(STRATEGIES)), seed=seed)
+    curves = result.curves.assign(budget=np.tile(budgets, len(strategies)), seed=seed)
     return {"kind": kind, "seed": seed, "curves": curves, "full": result.full_information_cost,
             "bayes": result.bayes_cost, "seconds": time.perf_counter() - start}
 
@@ -145,19 +148,19 @@ def _ratio(a: float, b: float) -> str:
     return "inf (value never reached)" if math.isinf(a) else f"{a / b:.2f}"
 
 
-def report(kind: str, runs: list[dict]) -> dict:
+def report(kind: str, runs: list[dict], strategies: tuple[str, ...] = STRATEGIES) -> dict:
     """Print per-seed and median figures for one scenario; return the medians."""
     runs = sorted(runs, key=lambda r: r["seed"])
     print(f"\n== {kind}: {len(runs)} seeds ==")
-    print(f"{'seed':>4} {'full':>7} {'bayes':>7} " + " ".join(f"{s:>10}" for s in STRATEGIES)
+    print(f"{'seed':>4} {'full':>7} {'bayes':>7} " + " ".join(f"{s:>10}" for s in strategies)
           + f" {'value/random':>13}   (first budget within full + {TOLERANCE}; sustained in brackets)")
-    table = {s: [] for s in STRATEGIES}
-    table_sus = {s: [] for s in STRATEGIES}
-    table_int = {s: [] for s in STRATEGIES}
+    table = {s: [] for s in strategies}
+    table_sus = {s: [] for s in strategies}
+    table_int = {s: [] for s in strategies}
     for run in runs:
         target = run["full"] + TOLERANCE
         cells = []
-        for s in STRATEGIES:
+        for s in strategies:
             curve = run["curves"][run["curves"]["strategy"] == s]
             first, kept = reach(curve, target, False), reach(curve, target, True)
             table[s].append(first)
@@ -167,34 +170,34 @@ def report(kind: str, runs: list[dict]) -> dict:
         bayes = "-" if run["bayes"] is None else f"{run['bayes']:.4f}"
         print(f"{run['seed']:>4} {run['full']:7.4f} {bayes:>7} " + " ".join(cells)
               + f" {_ratio(table['value'][-1], table['random'][-1]):>13}")
-    med = {s: float(np.median(table[s])) for s in STRATEGIES}
-    med_sus = {s: float(np.median(table_sus[s])) for s in STRATEGIES}
-    print("median budget to reach: " + ", ".join(f"{s} {_fmt(med[s])}" for s in STRATEGIES)
+    med = {s: float(np.median(table[s])) for s in strategies}
+    med_sus = {s: float(np.median(table_sus[s])) for s in strategies}
+    print("median budget to reach: " + ", ".join(f"{s} {_fmt(med[s])}" for s in strategies)
           + f"; value/random = {_ratio(med['value'], med['random'])} (goal <= {GOAL_RATIO:.2f}, aim {AIM_RATIO:.2f})")
-    print("median budget, sustained: " + ", ".join(f"{s} {_fmt(med_sus[s])}" for s in STRATEGIES)
+    print("median budget, sustained: " + ", ".join(f"{s} {_fmt(med_sus[s])}" for s in strategies)
           + f"; value/random = {_ratio(med_sus['value'], med_sus['random'])}")
     low, high = bootstrap_ratio(table["value"], table["random"])
     print(f"95% bootstrap interval of the ratio of medians (seeds resampled): {low:.2f} to {high:.2f}")
-    med_int = {s: float(np.median(table_int[s])) for s in STRATEGIES}
+    med_int = {s: float(np.median(table_int[s])) for s in strategies}
     low_i, high_i = bootstrap_ratio(table_int["value"], table_int["random"])
     print("median budget to reach, read between scheduled budgets (log-linear): "
-          + ", ".join(f"{s} {_fmt(med_int[s])}" for s in STRATEGIES)
+          + ", ".join(f"{s} {_fmt(med_int[s])}" for s in strategies)
           + f"; value/random = {_ratio(med_int['value'], med_int['random'])} "
           f"(95% bootstrap interval {low_i:.2f} to {high_i:.2f})")
     curves = pd.concat([r["curves"].assign(gap=r["curves"]["system_cost"] - r["full"]) for r in runs])
     median_curve = curves.pivot_table(index="budget", columns="strategy", values="gap", aggfunc="median")
     spend = curves.pivot_table(index="budget", columns="strategy", values="spend", aggfunc="median")
     print("median gap to the full-information cost (system cost - full), by cumulative budget:")
-    print(f"{'budget':>8} " + " ".join(f"{s:>10}" for s in STRATEGIES) + f" {'spent (value)':>14}")
+    print(f"{'budget':>8} " + " ".join(f"{s:>10}" for s in strategies) + f" {'spent (value)':>14}")
     for budget, row in median_curve.iterrows():
-        print(f"{budget:8.3g} " + " ".join(f"{row[s]:+10.4f}" for s in STRATEGIES) + f" {spend.loc[budget, 'value']:14.3g}")
+        print(f"{budget:8.3g} " + " ".join(f"{row[s]:+10.4f}" for s in strategies) + f" {spend.loc[budget, 'value']:14.3g}")
     worse = median_curve.index[median_curve["value"] > median_curve["random"]].tolist()
     print("value <= random at every point of the median curve: "
           + ("yes" if not worse else f"NO (worse at budgets {', '.join(f'{b:.3g}' for b in worse)})"))
     if worse:
         _print_paired(curves, worse)
     mean_gap = median_curve.mean()
-    print("mean over the schedule of the median gap: " + ", ".join(f"{s} {mean_gap[s]:+.4f}" for s in STRATEGIES))
+    print("mean over the schedule of the median gap: " + ", ".join(f"{s} {mean_gap[s]:+.4f}" for s in strategies))
     return {"median": med, "sustained": med_sus, "worse_at": worse}
 
 
@@ -229,11 +232,22 @@ def main() -> None:
     parser.add_argument("--planner", action="append", default=[], metavar="KEY=VALUE",
                         help="A keyword of routeplan.acquisition.select_assignments (repeatable), "
                              "e.g. spread=pairs or min_value_per_fee=2.")
+    parser.add_argument("--strategies", default=",".join(STRATEGIES),
+                        help="Comma-separated strategies to play; value and random are needed for the goal "
+                             "(leaving out uncertain saves a third of the time).")
+    parser.add_argument("--curves", type=Path, default=None, metavar="FILE",
+                        help="Also write every seed's curve to this CSV, for benchmarks/compare_rounds.py.")
     parser.add_argument("--router", action="append", default=[], metavar="KEY=VALUE",
                         help="A setting of the rehearsal's router over routeplan.rehearse.ROUTER_SETTINGS "
                              "(repeatable), e.g. n_members=3 for the average of three plug-in routers.")
     args = parser.parse_args()
     kinds = [args.only] if args.only else list(SCENARIOS)
+    strategies = tuple(s.strip() for s in args.strategies.split(",") if s.strip())
+    if not {"value", "random"} <= set(strategies) or not set(strategies) <= set(STRATEGIES):
+        parser.error(f"--strategies: value and random, and only strategies of {', '.join(STRATEGIES)}")
+    strategies = tuple(s for s in STRATEGIES if s in strategies)  # one order, whatever was typed
+    if args.curves is not None and not args.curves.parent.is_dir():
+        parser.error(f"--curves: no folder {args.curves.parent}")
     router = {}
     from probe_gap import parse_option  # benchmarks/ is the script's folder, first on sys.path
 
@@ -266,14 +280,17 @@ def main() -> None:
     start = time.perf_counter()
     with ProcessPoolExecutor(max_workers=max(1, args.jobs)) as pool:
         margin = None if args.no_focus else args.focus_margin
-        futures = [pool.submit(play, k, s, args.fits, args.weighting, planner, margin, router) for k, s in tasks]
+        futures = [pool.submit(play, k, s, args.fits, args.weighting, planner, margin, router, strategies)
+                   for k, s in tasks]
         runs = [f.result() for f in futures]
-    print(f"strategies {', '.join(STRATEGIES)}; weighting {args.weighting}; planner {planner or 'defaults'}; "
+    if args.curves is not None:
+        pd.concat([r["curves"].assign(kind=r["kind"], full=r["full"]) for r in runs]).to_csv(args.curves, index=False)
+    print(f"strategies {', '.join(strategies)}; weighting {args.weighting}; planner {planner or 'defaults'}; "
           f"router {router or 'defaults'}; "
           f"focus {'off' if margin is None else f'margin {margin:g}'}; "
           f"{args.fits} router fit(s) per point; "
           f"{len(tasks)} rehearsals in {time.perf_counter() - start:.0f} s wall with {args.jobs} worker(s)")
-    summary = {k: report(k, [r for r in runs if r["kind"] == k]) for k in kinds}
+    summary = {k: report(k, [r for r in runs if r["kind"] == k], strategies) for k in kinds}
     print("\nsummary (median budget to reach full-information cost + 0.01):")
     for k, fig in summary.items():
         m = fig["median"]
