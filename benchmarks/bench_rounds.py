@@ -208,12 +208,14 @@ def _print_paired(curves: pd.DataFrame, budgets: list[float]) -> None:
     budget; the paired mean difference over seeds and its standard error (the usual paired
     comparison, e.g. Wasserman, *All of Statistics*, 2004, ch. 10) say how large that is.
     """
+    from compare_rounds import paired_summary  # benchmarks/ is the script's folder, first on sys.path
+
     by_seed = curves.pivot_table(index=["seed", "budget"], columns="strategy", values="gap")
     for budget in budgets:
         d = (by_seed["value"] - by_seed["random"]).xs(budget, level="budget").to_numpy()
-        se = d.std(ddof=1) / np.sqrt(d.size) if d.size > 1 else float("nan")
-        print(f"  budget {budget:.3g}: value - random per seed, mean {d.mean():+.4f} "
-              f"(standard error {se:.4f}); value worse on {int((d > 0).sum())} of {d.size} seeds")
+        mean, se, worse = paired_summary(d)
+        print(f"  budget {budget:.3g}: value - random per seed, mean {mean:+.4f} "
+              f"(standard error {se:.4f}); value worse on {worse} of {d.size} seeds")
 
 
 def main() -> None:

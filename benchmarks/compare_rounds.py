@@ -34,6 +34,13 @@ def read_curves(path: str | Path) -> pd.DataFrame:
     return curves
 
 
+def paired_summary(d: np.ndarray) -> tuple[float, float, int]:
+    """Mean of per-seed differences, its standard error (NaN with one seed), seeds above 0."""
+    d = np.asarray(d, dtype=float)
+    se = float(d.std(ddof=1) / np.sqrt(d.size)) if d.size > 1 else float("nan")
+    return float(d.mean()), se, int((d > 0).sum())
+
+
 def paired_differences(before: pd.DataFrame, after: pd.DataFrame, strategy: str = "value") -> pd.DataFrame:
     """Per budget, the seed-paired difference of a strategy's gap to the full-information cost.
 
@@ -61,17 +68,12 @@ def paired_differences(before: pd.DataFrame, after: pd.DataFrame, strategy: str 
     joined = pd.concat({"before": gaps(before), "after": gaps(after)}, axis=1, join="inner")
     if joined.empty:
         raise ValueError("the two files share no (seed, budget): run both on the same seeds and schedule")
-    joined["d"] = joined["after"] - joined["before"]
-    by_budget = joined.groupby(level="budget")
-    out = pd.DataFrame({
-        "before": by_budget["before"].mean(),
-        "after": by_budget["after"].mean(),
-        "difference": by_budget["d"].mean(),
-        "se": by_budget["d"].std(ddof=1) / np.sqrt(by_budget["d"].count()),
-        "worse": by_budget["d"].apply(lambda d: int((d > 0).sum())),
-        "seeds": by_budget["d"].count(),
-    })
-    return out
+    rows = []
+    for budget, group in joined.groupby(level="budget"):
+        mean, se, worse = paired_summary((group["after"] - group["before"]).to_numpy())
+        rows.append({"budget": budget, "before": group["before"].mean(), "after": group["after"].mean(),
+                     "difference": mean, "se": se, "worse": worse, "seeds": len(group)})
+    return pd.DataFrame(rows).set_index("budget")
 
 
 def main() -> None:
