@@ -33,9 +33,11 @@ medians are over 8 seeds (``--seeds``): with one fit and 5 seeds the budget a se
 jumped by a factor of 2 or 4 between runs that differed in nothing that mattered.
 
 Run: ``.venv/bin/python benchmarks/bench_rounds.py [--seeds 8] [--first-seed 0] [--jobs 2] [--fits 2]
-[--planner spread=pairs] [--router n_members=3] [--no-focus] [--strategies value,random]
-[--curves FILE]`` (about 8 minutes on a 2-core machine). Two ``--curves`` files of two versions
-on the same seeds are compared seed by seed with ``benchmarks/compare_rounds.py``.
+[--planner spread=pairs] [--router n_members=3] [--no-focus | --one-sided-focus]
+[--strategies value,random] [--curves FILE]`` (about 8 minutes on a 2-core machine). Two ``--curves`` files of two versions
+on the same seeds are compared seed by seed with ``benchmarks/compare_rounds.py``;
+``--from-curves FILE [FILE ...]`` plays nothing and reports saved curves, pooling the seeds of
+several files (runs of one environment on different seeds).
 """
 
 from __future__ import annotations
@@ -60,7 +62,7 @@ SCENARIOS = {
 
 def play(kind: str, seed: int, n_fits: int, weighting: str, planner: dict | None = None,
          focus_margin: float | None = 0.1, router: dict | None = None,
-         strategies: tuple[str, ...] = STRATEGIES) -> dict:
+         strategies: tuple[str, ...] = STRATEGIES, two_sided: bool = True) -> dict:
     """One rehearsal of every strategy on one scenario and seed (runs in a worker process)."""
     import torch
 
@@ -74,13 +76,13 @@ def play(kind: str, seed: int, n_fits: int, weighting: str, planner: dict | None
     if kind == "synthetic":
         result = rehearse(n_pool=3000, n_eval=5000, budgets=budgets, n_regions=spec["n_regions"],
                           strategies=strategies, n_router_fits=n_fits, weighting=weighting,
-                          planner_options=planner, focus_margin=focus_margin, router_params=router_params,
-                          random_state=seed)
+                          planner_options=planner, focus_margin=focus_margin, focus_two_sided=two_sided,
+                          router_params=router_params, random_state=seed)
     else:
         result = rehearse(digits_experts_scenario(random_state=seed), n_pool=900, budgets=budgets,
                           n_regions=spec["n_regions"], strategies=strategies, n_router_fits=n_fits,
                           weighting=weighting, planner_options=planner, focus_margin=focus_margin,
-                          router_params=router_params, random_state=seed)
+                          focus_two_sided=two_sided, router_params=router_params, random_state=seed)
     curves = result.curves.assign(budget=np.tile(budgets, len(strategies)), seed=seed)
     return {"kind": kind, "seed": seed, "curves": curves, "full": result.full_information_cost,
             "bayes": result.bayes_cost, "seconds": time.perf_counter() - start}
@@ -201,6 +203,31 @@ def report(kind: str, runs: list[dict], strategies: tuple[str, ...] = STRATEGIES
     return {"median": med, "sustained": med_sus, "worse_at": worse}
 
 
+def runs_from_curves(paths: list[Path]) -> list[dict]:
+    """The runs of earlier ``--curves`` files, one per (scenario, seed), for :func:`report`.
+
+    Several files pool their seeds, so that sets of seeds measured in separate runs of one
+    environment are summarised together; a seed of a scenario in two files is refused, as
+    is a seed whose rows disagree on the full-information cost. The Bayes cost is not in the
+    files and prints as "-".
+    """
+    from compare_rounds import read_curves  # benchmarks/ is the script's folder, first on sys.path
+
+    frames = [read_curves(path).assign(source=i) for i, path in enumerate(paths)]
+    curves = pd.concat(frames, ignore_index=True)
+    runs = []
+    for (kind, seed), rows in curves.groupby(["kind", "seed"], sort=True):
+        if rows["source"].nunique() > 1 or rows.duplicated(["strategy", "budget"]).any():
+            files = ", ".join(str(paths[i]) for i in rows["source"].unique())
+            raise ValueError(f"{kind} seed {seed} appears twice ({files})")
+        full = rows["full"].unique()
+        if full.size != 1:
+            raise ValueError(f"{kind} seed {seed}: rows disagree on the full-information cost")
+        runs.append({"kind": str(kind), "seed": int(seed), "full": float(full[0]), "bayes": None,
+                     "curves": rows.drop(columns=["source", "kind", "full"])})
+    return runs
+
+
 def _print_paired(curves: pd.DataFrame, budgets: list[float]) -> None:
     """Seed-paired difference of value and random where value's median is worse.
 
@@ -231,6 +258,9 @@ def main() -> None:
     parser.add_argument("--focus-margin", type=float, default=0.1,
                         help="Margin of the router's focus (routeplan.acquisition.router_focus).")
     parser.add_argument("--no-focus", action="store_true", help="Plan without the router's focus.")
+    parser.add_argument("--one-sided-focus", action="store_true",
+                        help="The focus of the versions before 12-05: also the cases the router clearly sends "
+                             "to the expert (routeplan.acquisition.router_focus, two_sided=False).")
     parser.add_argument("--planner", action="append", default=[], metavar="KEY=VALUE",
                         help="A keyword of routeplan.acquisition.select_assignments (repeatable), "
                              "e.g. spread=pairs or min_value_per_fee=2.")
@@ -239,10 +269,16 @@ def main() -> None:
                              "(leaving out uncertain saves a third of the time).")
     parser.add_argument("--curves", type=Path, default=None, metavar="FILE",
                         help="Also write every seed's curve to this CSV, for benchmarks/compare_rounds.py.")
+    parser.add_argument("--from-curves", type=Path, nargs="+", default=None, metavar="FILE",
+                        help="Play nothing: report the curves of earlier runs (--curves files), pooling their "
+                             "seeds; --only picks a scenario, the play options are ignored.")
     parser.add_argument("--router", action="append", default=[], metavar="KEY=VALUE",
                         help="A setting of the rehearsal's router over routeplan.rehearse.ROUTER_SETTINGS "
                              "(repeatable), e.g. n_members=3 for the average of three plug-in routers.")
     args = parser.parse_args()
+    if args.from_curves is not None:
+        _report_saved(parser, args.from_curves, args.only)
+        return
     kinds = [args.only] if args.only else list(SCENARIOS)
     strategies = tuple(s.strip() for s in args.strategies.split(",") if s.strip())
     if not {"value", "random"} <= set(strategies) or not set(strategies) <= set(STRATEGIES):
@@ -282,17 +318,44 @@ def main() -> None:
     start = time.perf_counter()
     with ProcessPoolExecutor(max_workers=max(1, args.jobs)) as pool:
         margin = None if args.no_focus else args.focus_margin
-        futures = [pool.submit(play, k, s, args.fits, args.weighting, planner, margin, router, strategies)
-                   for k, s in tasks]
+        futures = [pool.submit(play, k, s, args.fits, args.weighting, planner, margin, router, strategies,
+                               not args.one_sided_focus) for k, s in tasks]
         runs = [f.result() for f in futures]
     if args.curves is not None:
         pd.concat([r["curves"].assign(kind=r["kind"], full=r["full"]) for r in runs]).to_csv(args.curves, index=False)
+    sides = "one" if args.one_sided_focus else "two"
     print(f"strategies {', '.join(strategies)}; weighting {args.weighting}; planner {planner or 'defaults'}; "
           f"router {router or 'defaults'}; "
-          f"focus {'off' if margin is None else f'margin {margin:g}'}; "
+          f"focus {'off' if margin is None else f'margin {margin:g}, {sides}-sided'}; "
           f"{args.fits} router fit(s) per point; "
           f"{len(tasks)} rehearsals in {time.perf_counter() - start:.0f} s wall with {args.jobs} worker(s)")
-    summary = {k: report(k, [r for r in runs if r["kind"] == k], strategies) for k in kinds}
+    _summary({k: report(k, [r for r in runs if r["kind"] == k], strategies) for k in kinds})
+
+
+def _report_saved(parser: argparse.ArgumentParser, paths: list[Path], only: str | None) -> None:
+    """``--from-curves``: report saved curves without playing."""
+    try:
+        runs = runs_from_curves(paths)
+    except (OSError, ValueError) as exc:
+        parser.error(f"--from-curves: {exc}")
+    runs = [r for r in runs if only is None or r["kind"] == only]
+    if not runs:
+        parser.error("--from-curves: no curve of " + (f"scenario {only}" if only else "any scenario"))
+    kinds = sorted({r["kind"] for r in runs})
+    summary = {}
+    for kind in kinds:
+        mine = [r for r in runs if r["kind"] == kind]
+        common = set.intersection(*(set(r["curves"]["strategy"]) for r in mine))
+        if not {"value", "random"} <= common:
+            parser.error(f"--from-curves: every {kind} seed needs curves of value and random")
+        strategies = tuple(s for s in STRATEGIES if s in common)
+        summary[kind] = report(kind, mine, strategies)
+    print(f"\n(reported from {len(paths)} curves file(s); nothing played)")
+    _summary(summary)
+
+
+def _summary(summary: dict) -> None:
+    """The closing lines: per scenario, the medians, their ratio and the goal's verdict."""
     print("\nsummary (median budget to reach full-information cost + 0.01):")
     for k, fig in summary.items():
         m = fig["median"]

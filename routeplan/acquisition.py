@@ -87,13 +87,15 @@ Focus on the router's open decisions
 ------------------------------------
 ``focus`` (from :func:`router_focus`) restricts what ``value`` and ``uncertain`` may pick,
 after the audit, to the pairs where the current router's estimated cost of asking the expert
-is within a margin of its best other option: the cases where the router could send the case
-to that expert, or nearly, so that an answer there can change or confirm one of its
-decisions. This is margin sampling (Scheffer, Decomain & Wrobel, "Active hidden Markov
-models for information extraction", IDA 2001) applied to the router's deferral decisions,
-with the router's own beliefs: where it wrongly trusts an expert, the pairs are in focus and
-the answers correct it; where it rightly distrusts one, no money goes there. The audit, the
-floor's seeded order and ``random`` are unchanged; within the focused pairs the cell counts,
+is within a margin of its best other option, on either side: the cases where the router's
+choice about that expert is open, so that an answer there can change one of its decisions
+(two-sided since 12-05; the measurements below first describe the one-sided focus that held
+also the cases the router clearly sends to the expert). This is margin sampling (Scheffer,
+Decomain & Wrobel, "Active hidden Markov models for information extraction", IDA 2001)
+applied to the router's deferral decisions, with the router's own beliefs: where it wrongly
+trusts an expert near one of its decisions, the pairs are in focus and the answers correct
+it; where it rightly distrusts one, no money goes there (the audit still samples
+everywhere). The audit, the floor's seeded order and ``random`` are unchanged; within the focused pairs the cell counts,
 the spread over classes and the selection probabilities are as below. When the focused pairs
 run out before the budget (a confident router has few open decisions), the rest is spent on
 the pairs out of focus by the same strategy, so a round spends what ``random`` would. The
@@ -112,6 +114,21 @@ of focus (the same script on that version), ``value`` left up to half of the dig
 unspent and was worse than ``random`` at the four largest budgets. A focus drawn from the
 *true* costs instead fails badly (``benchmarks/probe_focus.py``): the router must see its
 own mistakes, not only the places that matter.
+
+The one-sided focus (``router_focus(..., two_sided=False)``, ``bench_rounds.py
+--one-sided-focus``) also held every case the router sends to the expert by more than the
+margin, so much of the cheapest expert's budget confirmed what the router already believed;
+on the synthetic scenario its remaining mistakes lie near the boundaries between regions of
+competence, not far from the expert's answers (``benchmarks/probe_misroutes.py``). Measured
+(``bench_rounds.py --first-seed 108 --seeds 16 --strategies value,random``, seeds fresh for
+every setting, on a copy of the library with each focus): on the synthetic scenario ``value``
+needed 80 fee units against ``random``'s 226 (0.35; read between budgets 70.2 against 213,
+0.33) with the two-sided focus and 113 (0.50; 98.6 against 213) with the one-sided one, the
+seed-paired difference of the gap -0.0036 over the schedule and -0.0125 at 56.6 fee units
+(standard error 0.0027); on digits 1.41 against 4 (0.35; between budgets 0.28) and 1.91
+(0.48; 0.45), -0.0012 over the schedule. On seeds 92-107, where it was chosen among four
+variants, -0.0018 on the synthetic scenario and +0.0014 on digits (reaching the target at
+2.41 against 1.41 fee units); over the 32 seeds -0.0027 and +0.0001.
 
 Audit share
 -----------
@@ -627,8 +644,9 @@ def _check_pool(pool: PlannerInput) -> None:
         raise ValueError("error_cost must be a positive number")
 
 
-def router_focus(expected_costs: ArrayLike, n_classes: int, margin: float = 0.1) -> NDArray[np.bool_]:
-    """Pairs whose answer could change or confirm a decision of the current router.
+def router_focus(expected_costs: ArrayLike, n_classes: int, margin: float = 0.1,
+                 two_sided: bool | ArrayLike = True) -> NDArray[np.bool_]:
+    """Pairs where the current router's choice about the expert is open.
 
     Parameters
     ----------
@@ -639,7 +657,12 @@ def router_focus(expected_costs: ArrayLike, n_classes: int, margin: float = 0.1)
         K.
     margin : float, default=0.1
         In units of one error: expert ``j`` is in focus on a case when its estimated cost
-        is at most the best other option's plus ``margin``.
+        is within ``margin`` of the best other option's.
+    two_sided : bool or array-like of bool of shape (n_experts,), default=True
+        Within the margin on either side (margin sampling), so that the cases the router
+        sends to the expert by more than the margin are left out; False (for every expert,
+        or per expert) keeps them too: the expert's cost at most the best other option's
+        plus ``margin``, the one-sided focus of the versions before 12-05.
 
     Returns
     -------
@@ -652,6 +675,10 @@ def router_focus(expected_costs: ArrayLike, n_classes: int, margin: float = 0.1)
     if not (np.isfinite(margin) and margin >= 0):
         raise ValueError(f"margin must be a number >= 0, got {margin!r}")
     M = E.shape[1] - K
+    sides = np.asarray(two_sided)
+    if sides.dtype != bool or sides.shape not in ((), (M,)):
+        raise ValueError(f"two_sided must be a bool or {M} bools, one per expert")
+    sides = np.broadcast_to(sides, (M,))
     focus = np.zeros((E.shape[0], M), dtype=bool)
     if M == 0 or E.shape[0] == 0:
         return focus
@@ -661,7 +688,8 @@ def router_focus(expected_costs: ArrayLike, n_classes: int, margin: float = 0.1)
     best, second = E[rows, order[:, 0]], E[rows, order[:, 1]]
     for j in range(M):
         other = np.where(order[:, 0] == K + j, second, best)
-        focus[:, j] = E[:, K + j] <= other + margin
+        gap = E[:, K + j] - other
+        focus[:, j] = (np.abs(gap) if sides[j] else gap) <= margin
     return focus
 
 

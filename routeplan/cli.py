@@ -572,9 +572,9 @@ def route(app, policy_path, cases_path, out_path, exact, id_column, chunk_size, 
                    "rounds, which are picked from the features alone), stabilized over the rounds' designs, "
                    "or by each pick's own recorded probability.")
 @click.option("--focus-margin", type=click.FloatRange(min=0), default=0.1, show_default=True,
-              help="From the second round, value and uncertain ask only where the router fitted after the "
-                   "previous round could send the case to the expert (its cost within this margin of the "
-                   "best option), as 'round plan' does.")
+              help="From the second round, value and uncertain ask only where the choice of the router fitted "
+                   "after the previous round about the expert is open (its cost within this margin of the "
+                   "best other option, either side), as 'round plan' does.")
 @click.option("--no-focus", is_flag=True, help="Plan every round without the router's focus.")
 @click.option("--seed", type=SEED, default=0, show_default=True, help="Seeds the scenario, the rounds and the routers.")
 @click.option("--plot", "plot_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
@@ -721,9 +721,10 @@ def round_group() -> None:
 @click.option("--due-days", type=float, default=None,
               help="Answers are due this many days from now (at most 3650).")
 @click.option("--focus-margin", type=click.FloatRange(min=0), default=0.1, show_default=True,
-              help="Once 'fit' has kept a router, value and uncertain ask only where that router could send "
-                   "the case to the expert: its estimated cost within this margin (in errors) of the best "
-                   "option. The audit share stays uniform.")
+              help="Once 'fit' has kept a router, value and uncertain ask only where that router's choice "
+                   "about the expert is open: its estimated cost within this margin (in errors) of the best "
+                   "other option, either side, so the cases it clearly sends to the expert are left out. "
+                   "The audit share stays uniform.")
 @click.option("--no-focus", is_flag=True, help="Ignore the kept router when planning.")
 @click.option("--dry-run", is_flag=True, help="Show the plan without storing it.")
 @json_option

@@ -407,11 +407,12 @@ class _Stage:
         """Fit a two-stage plug-in router on the answers; return its exact held-out cost."""
         return self.cost(self.fit(answers, weights, seed))
 
-    def focus(self, router: Any, margin: float | None) -> np.ndarray | None:
+    def focus(self, router: Any, margin: float | None, two_sided: bool = True) -> np.ndarray | None:
         """The router's focus on the pool (:func:`routeplan.acquisition.router_focus`)."""
         if router is None or margin is None:
             return None
-        return acquisition.router_focus(router.predict_costs(self.X, class_proba=self.P), self.C.shape[0], margin)
+        return acquisition.router_focus(router.predict_costs(self.X, class_proba=self.P), self.C.shape[0], margin,
+                                        two_sided)
 
 
 def stabilized_weights(designs: Sequence[np.ndarray], region: np.ndarray, stratum: np.ndarray,
@@ -546,6 +547,7 @@ def rehearse(
     router_params: dict | None = None,
     weighting: str = "none",
     focus_margin: float | None = 0.1,
+    focus_two_sided: bool = True,
     n_router_fits: int = 1,
     n_folds: int = 5,
     n_reference_fits: int = 3,
@@ -589,6 +591,9 @@ def rehearse(
         the router fitted after the previous round (:func:`routeplan.acquisition.router_focus`
         with this margin), as ``routeplan round plan`` does with the workspace's kept router;
         None plans without focus.
+    focus_two_sided : bool, default=True
+        The focus within the margin on either side (the default of ``routeplan round plan``);
+        False keeps the cases the router clearly sends to the expert as well (one-sided).
     n_router_fits : int, default=1
         Router seeds averaged at each point of a curve (the last one steers the next round).
     n_folds : int, default=5
@@ -634,8 +639,8 @@ def rehearse(
         pool = _planner_input(stage.y, strata, region, revealed, answers_all, model_cost, stage.fees, 1.0,
                               scn.n_experts, n_regions)
         return acquisition.select_assignments(pool, budget=budget, strategy=strategy, audit_share=audit_share,
-                                              focus=stage.focus(router, focus_margin), random_state=rng,
-                                              **options)
+                                              focus=stage.focus(router, focus_margin, focus_two_sided),
+                                              random_state=rng, **options)
 
     weigh = _weigher(weighting, region, strata)
     rows = []
@@ -647,7 +652,7 @@ def rehearse(
                      float(stage.fees.sum() * n_pool),
                      {"n_pool": n_pool, "n_eval": int(stage.true_costs.shape[0]), "budgets": steps,
                       "audit_share": audit_share, "n_regions": n_regions, "seed": random_state,
-                      "focus_margin": focus_margin,
+                      "focus_margin": focus_margin, "focus_two_sided": bool(focus_two_sided),
                       "experts": list(scn.names), "fees": stage.fees.tolist(), "weighting": weighting,
                       "router": {k: list(v) if isinstance(v, tuple) else v for k, v in params.items()},
                       "planner": options})

@@ -26,9 +26,9 @@ Choices written down here
   ones included); open assignments of open rounds count as answers still to come.
 * Focus: once ``routeplan fit`` has kept a router fitted on the current labels, experts and
   feature columns, ``value`` and ``uncertain`` pick only pairs where that router's estimated
-  cost of asking the expert is within ``focus_margin`` of its best other option
-  (:func:`routeplan.acquisition.router_focus`); the audit stays uniform. The plan names the
-  model. A router that keeps the team's own model (two-stage) scores the candidates with
+  cost of asking the expert is within ``focus_margin`` of its best other option, on either
+  side: its open choices (:func:`routeplan.acquisition.router_focus`); the audit stays
+  uniform. The plan names the model. A router that keeps the team's own model (two-stage) scores the candidates with
   their imported probabilities; if some candidate has none, the round is planned without
   focus and says so. The planner's own ``P(y | x)`` above stays the linear model's.
 * The assignments are stored in a seeded random order, so a sheet does not reveal which rows
@@ -130,9 +130,10 @@ class RoundPlan:
         parts.append(Text("expected gain: expected drop of the summed decision cost over the workspace's "
                           "cases, in fee units, once these answers are in", style="dim"))
         if self.focus:
-            parts.append(Text(f"focus: pairs where model #{self.focus['model_id']} could send the case to "
-                              f"the expert (cost within {self.focus['margin']:g} of its best option): "
-                              f"{self.focus['pairs_in_focus']:.0%} of the candidate pairs", style="dim"))
+            parts.append(Text(f"focus: pairs where model #{self.focus['model_id']}'s choice about the expert "
+                              f"is open (its cost within {self.focus['margin']:g} of the best other option, "
+                              f"either side): {self.focus['pairs_in_focus']:.0%} of the candidate pairs",
+                              style="dim"))
         parts.extend(Text(f"note: {n}") for n in self.notes)
         return Group(*parts)
 
@@ -262,9 +263,9 @@ def plan_round(
     focus_margin : float or None, default=0.1
         With a kept router (``routeplan fit``) fitted on the workspace's current experts,
         labels and features, ``value`` and ``uncertain`` pick only pairs where that router's
-        estimated cost of asking the expert is within this margin of its best other option
-        (:func:`routeplan.acquisition.router_focus`); None, or no usable router, plans
-        without focus.
+        estimated cost of asking the expert is within this margin of its best other option,
+        on either side (:func:`routeplan.acquisition.router_focus`); None, or no usable
+        router, plans without focus.
     dry_run : bool, default=False
         Plan but store nothing.
 

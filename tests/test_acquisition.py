@@ -521,12 +521,33 @@ def test_router_focus_hand_example():
         [0.40, 0.60, 0.20, 0.50],   # A best: its best other is the model (0.40) -> in; B 0.50 > 0.20 + 0.1
         [0.40, 0.60, 0.45, 0.45],   # A and B tie at 0.45 against the model's 0.40: both within 0.1
     ])
-    assert router_focus(E, 2, 0.1).tolist() == [[False, True], [True, False], [True, True]]
-    assert router_focus(E, 2, 0.0).tolist() == [[False, False], [True, False], [False, False]]
+    assert router_focus(E, 2, 0.1, False).tolist() == [[False, True], [True, False], [True, True]]
+    assert router_focus(E, 2, 0.0, False).tolist() == [[False, False], [True, False], [False, False]]
     with pytest.raises(ValueError):
         router_focus(E, 2, -0.1)
     with pytest.raises(ValueError):
         router_focus(E[:, :1], 2)
+
+
+def test_two_sided_focus_hand_example():
+    # margin sampling proper (Scheffer, Decomain & Wrobel, IDA 2001): the margin between the
+    # option and its best alternative, on either side (the default); same hand-worked matrix
+    E = np.array([
+        [0.10, 0.90, 0.30, 0.15],   # B within 0.1 above the model: in either way
+        [0.40, 0.60, 0.20, 0.50],   # A beats the model by 0.20 > 0.1: a clear choice, out when two-sided
+        [0.40, 0.60, 0.45, 0.45],   # A and B within 0.05 of the model: in
+    ])
+    assert router_focus(E, 2, 0.1).tolist() == [[False, True], [False, False], [True, True]]
+    # per expert: only A two-sided; B as one-sided (row 2: B 0.50 > 0.20 + 0.1, out either way)
+    assert router_focus(E, 2, 0.1, np.array([True, False])).tolist() == [[False, True], [False, False], [True, True]]
+    assert router_focus(E, 2, 0.1, np.array([False, True])).tolist() == router_focus(E, 2, 0.1, False).tolist()
+    # with a margin of 0.25 A's clear choice (0.20 below the model) is open again
+    assert router_focus(E, 2, 0.25)[1].tolist() == [True, False]
+    # at margin 0 only exact ties are open: none here
+    assert not router_focus(E, 2, 0.0).any()
+    for bad in (np.array([True]), np.array([1, 0]), "yes"):
+        with pytest.raises(ValueError, match="two_sided"):
+            router_focus(E, 2, 0.1, bad)
 
 
 def test_focus_limits_the_strategy_but_not_the_audit_or_random():
