@@ -128,7 +128,10 @@ seed-paired difference of the gap -0.0036 over the schedule and -0.0125 at 56.6 
 (standard error 0.0027); on digits 1.41 against 4 (0.35; between budgets 0.28) and 1.91
 (0.48; 0.45), -0.0012 over the schedule. On seeds 92-107, where it was chosen among four
 variants, -0.0018 on the synthetic scenario and +0.0014 on digits (reaching the target at
-2.41 against 1.41 fee units); over the 32 seeds -0.0027 and +0.0001.
+2.41 against 1.41 fee units); over the 32 seeds -0.0027 and +0.0001. On seeds 124-139, also
+fresh, the synthetic median reach stayed at 113 fee units (0.59 of ``random``'s) with either focus
+but the two-sided curve was lower, -0.0026 over the schedule; over the 48 seeds 92-139 the
+synthetic ratio read between budgets is 0.42 against 0.50.
 
 Audit share
 -----------
