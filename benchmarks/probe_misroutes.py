@@ -1,9 +1,10 @@
 """Where a rehearsal's router loses against the full-information router, on the synthetic scenario.
 
-Plays the rounds of ``benchmarks/bench_rounds.py`` for one strategy and seed (same schedule,
-regions, router settings and focus; two router fits per round, the last steering the next
-round) up to a budget, then routes the held-out cases with the last router and with a
-router fitted on every answer of the pool. It prints
+Plays the rounds of ``benchmarks/bench_rounds.py`` for one strategy and seed (the same
+:func:`routeplan.rehearse.rehearse`: schedule, regions, router settings and focus; two router
+fits per round, the last steering the next round) up to a budget, then routes the held-out
+cases with the last router and with the rehearsal's full-information router (fitted on every
+answer of the pool). It prints
 
 * the answers each expert gave and both routers' exact held-out costs;
 * the pairs (router's route, full-information route) that carry the excess cost, largest
@@ -29,41 +30,42 @@ from sklearn.neighbors import NearestNeighbors
 
 from bench_rounds import SCENARIOS  # benchmarks/ is the script's folder, first on sys.path
 from routeplan import acquisition
-from routeplan.rehearse import ROUTER_SETTINGS, _planner_input, _stage, budget_schedule
-from routeplan.regions import regions_from_features
+from routeplan import rehearse as rh
 from routeplan.simulate import make_scenario
 
 N_POOL, N_EVAL, N_FITS = 3000, 5000, 2
 
 
 def play(seed: int, budget: float, strategy: str):
-    """The scenario, stage, answers revealed and last router after the rounds up to ``budget``."""
+    """The rehearsal of ``bench_rounds.py`` up to ``budget`` (one strategy): the scenario, the
+    stage, the full-information router, the answers revealed, the last router and the spend.
+
+    The rounds are :func:`routeplan.rehearse.rehearse`'s own; its stage's ``fit`` is wrapped
+    for this call only, to keep the routers it fits (the first is the full-information
+    reference on every answer, the last the strategy's router after the last round).
+    """
     spec = SCENARIOS["synthetic"]
-    scn = make_scenario(N_POOL + N_EVAL, random_state=seed)
-    stage, answers_all = _stage(scn, N_POOL, dict(ROUTER_SETTINGS), 5, seed)
-    n_regions = spec["n_regions"]
-    region = regions_from_features(stage.X, n_regions=n_regions, random_state=seed)
-    proba = acquisition.class_probabilities(stage.X, stage.y, scn.n_classes, random_state=seed)
-    model_cost = acquisition.model_decision_cost(proba, 1.0)
-    strata = proba.argmax(axis=1)
-    steps = [b for b in budget_schedule(spec["first"], spec["last"], spec["n_rounds"]) if b <= budget * (1 + 1e-9)]
+    steps = [b for b in rh.budget_schedule(spec["first"], spec["last"], spec["n_rounds"]) if b <= budget * (1 + 1e-9)]
     if not steps:
         raise SystemExit(f"--budget must be at least the schedule's first budget, {spec['first']:g}")
-    n, M = answers_all.shape
-    revealed = np.zeros((n, M), dtype=bool)
-    rng = np.random.default_rng([seed, acquisition.STRATEGIES.index(strategy)])
-    spend, router = 0.0, None
-    for cumulative in steps:
-        pool = _planner_input(stage.y, strata, region, revealed, answers_all, model_cost, stage.fees, 1.0, M,
-                              n_regions)
-        sel = acquisition.select_assignments(pool, budget=cumulative - spend, strategy=strategy, audit_share=0.1,
-                                             focus=stage.focus(router, 0.1), random_state=rng)
-        revealed[sel.case, sel.expert] = True
-        spend += float(sel.spend.sum())
-        shown = np.where(revealed, answers_all, -1)
-        for k in range(N_FITS):
-            router = stage.fit(shown, None, seed + 7919 * k)
-    return scn, stage, answers_all, revealed, router, spend
+    scn = make_scenario(N_POOL + N_EVAL, random_state=seed)
+    fits: list[tuple] = []  # (stage, answers shown, router) of every fit, in order
+    measured_fit = rh._Stage.fit
+
+    def fit(stage: rh._Stage, answers, weights, fit_seed: int):
+        router = measured_fit(stage, answers, weights, fit_seed)
+        fits.append((stage, answers, router))
+        return router
+
+    rh._Stage.fit = fit  # this call only: keep the fitted routers
+    try:
+        result = rh.rehearse(scn, n_pool=N_POOL, budgets=steps, n_regions=spec["n_regions"], strategies=(strategy,),
+                             n_router_fits=N_FITS, router_params=dict(rh.ROUTER_SETTINGS), random_state=seed)
+    finally:
+        rh._Stage.fit = measured_fit
+    stage, _, full = fits[0]
+    _, shown, router = fits[-1]
+    return scn, stage, full, shown >= 0, router, float(result.curves["spend"].iloc[-1])
 
 
 def main() -> None:
@@ -73,8 +75,7 @@ def main() -> None:
     parser.add_argument("--budget", type=float, default=80.0, help="Cumulative fee units to play up to.")
     parser.add_argument("--strategy", choices=acquisition.STRATEGIES, default="value")
     args = parser.parse_args()
-    scn, stage, answers_all, revealed, router, spend = play(args.seed, args.budget, args.strategy)
-    full = stage.fit(answers_all, None, args.seed)
+    scn, stage, full, revealed, router, spend = play(args.seed, args.budget, args.strategy)
     K = scn.n_classes
     mine = router.predict_route(stage.X_eval, class_proba=stage.P_eval)
     best = full.predict_route(stage.X_eval, class_proba=stage.P_eval)
